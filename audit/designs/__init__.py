@@ -1,0 +1,24 @@
+"""Study designs: one module per family, all exposing the interface of :class:`Design`.
+
+To add a design, subclass :class:`~audit.designs._base.Design` (or ``TDesign`` for t-test
+designs) in a module of its family and add an instance to ``DESIGNS`` below.
+"""
+
+from __future__ import annotations
+
+from audit.designs._base import Design, Scenario, TestSpec
+from audit.designs.estimate import Estimate
+from audit.designs.means import OneMean, PairedMeans, TwoMeans
+
+__all__ = ["DESIGNS", "Design", "Scenario", "TestSpec"]
+
+#: Every design the ``design`` column may name, by that name.
+DESIGNS: dict[str, Design] = {
+    d.name: d
+    for d in (
+        OneMean(),
+        PairedMeans(),
+        TwoMeans(),
+        Estimate(),
+    )
+}

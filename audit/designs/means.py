@@ -1,0 +1,204 @@
+"""Designs comparing means with a t test: one mean, paired means, two independent means.
+
+Effects are mean differences on the outcome's scale (``effect_scale = raw``) or standardized
+mean differences (``effect_scale = d``, the SD then taken as 1). A realized SD that was not
+reported falls back to the planned SD, with a note.
+
+References
+----------
+.. [1] Cohen, J. (1988). Statistical Power Analysis for the Behavioral Sciences, 2nd ed., ch. 2.
+.. [2] Borm, G. F., Fransen, J. & Lemmens, W. A. (2007). A simple sample size formula for analysis
+   of covariance in randomized clinical trials. J. Clin. Epidemiol. 60:1234-1238.
+"""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+import numpy as np
+import pandas as pd
+
+from audit.designs._base import Scenario, TDesign, _column
+
+__all__ = ["OneMean", "PairedMeans", "TwoMeans"]
+
+
+def _standardized_rows(rows: pd.DataFrame) -> np.ndarray:
+    if "effect_scale" not in rows.columns:
+        return np.zeros(len(rows), dtype=bool)
+    return (rows["effect_scale"] == "d").to_numpy(dtype=bool, na_value=False)
+
+
+class _MeanDesign(TDesign):
+    """Shared reading of SDs and the effect scale."""
+
+    stage_keys = ("n1", "sd")
+    ratio_keys: ClassVar[dict[str, tuple[str, str]]] = {"sd_ratio": ("planned_sd", "realized_sd")}
+    nuisance_keys = ("sd",)
+
+    def scenario(self, rows: pd.DataFrame, stage: str) -> Scenario:
+        sc = super().scenario(rows, stage)
+        planned_sd = _column(rows, "planned_sd")
+        if stage == "realized":
+            sc["sd"] = np.where(np.isnan(sc["sd"]), planned_sd, sc["sd"])
+        # Standardized effects are in SD units: the SD is 1 by definition.
+        sc["sd"] = np.where(_standardized_rows(rows), 1.0, sc["sd"])
+        return sc
+
+    def sources(self, stage: str) -> dict[str, str]:
+        out = super().sources(stage)
+        out["sd"] = "planned_sd" if stage == "planned" else "realized_sd (or planned_sd)"
+        return out
+
+    def sd(self, sc: Scenario) -> np.ndarray:
+        return sc["sd"]
+
+    def fallback_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str]]:
+        """Notes about assumptions made where the row left a value blank."""
+        real = _column(rows, "realized_sd")
+        plan = _column(rows, "planned_sd")
+        raw = ~_standardized_rows(rows)
+        return [
+            (
+                raw & np.isnan(real) & ~np.isnan(plan),
+                "realized_sd not reported: the planned SD is used for the realized design",
+            )
+        ]
+
+
+class _OneGroup(_MeanDesign):
+    size_keys = ("n1",)
+
+    def se(self, sc: Scenario, effect: np.ndarray | None = None) -> np.ndarray:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return sc["sd"] / np.sqrt(sc["n1"])
+
+    def df(self, sc: Scenario) -> np.ndarray:
+        return sc["n1"] - 1.0
+
+    def min_n1(self, sc: Scenario) -> np.ndarray:
+        return np.ones(len(sc["n1"]))
+
+    def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
+        return {**sc, "n1": np.broadcast_to(n1, sc["n1"].shape).astype(float)}
+
+    def rounded_total(self, sc: Scenario, n1: np.ndarray) -> np.ndarray:
+        return np.ceil(n1)
+
+    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+        out = []
+        for stage in ("planned", "realized"):
+            n = _column(rows, f"{stage}_n1")
+            out.append((n < 2, f"{stage}_n1", "must be at least 2 (the t test needs n - 1 > 0 df)"))
+        return out
+
+
+class OneMean(_OneGroup):
+    """One-sample t test of a mean against a fixed value.
+
+    ``se = sd / sqrt(n)``, ``df = n - 1``; the effect is the difference from the null value.
+    """
+
+    name = "one_mean"
+    family = "means"
+    title = "one mean against a fixed value (one-sample t test)"
+    effect_unit = "difference from the null value (outcome units, or d)"
+    standardized_as = "d"
+
+
+class PairedMeans(_OneGroup):
+    """Paired t test on within-pair differences.
+
+    ``sd`` is the SD of the differences, so the standardized effect is Cohen's ``d_z``;
+    ``n`` counts pairs; ``df = n - 1``.
+    """
+
+    name = "paired_means"
+    family = "means"
+    title = "paired means (t test on within-pair differences)"
+    effect_unit = "mean within-pair difference (outcome units, or d_z)"
+    standardized_as = "d_z"
+
+
+class TwoMeans(_MeanDesign):
+    """Two independent groups compared with a t test, optionally covariate-adjusted (ANCOVA).
+
+    ``se = sd * sqrt(1 - R^2) * sqrt(1/n1 + 1/n2)`` and ``df = n1 + n2 - 2 - q`` with ``q``
+    covariates explaining a share ``R^2`` of the outcome variance [2]_. Without covariates this is
+    the pooled two-sample t test [1]_. The standardized effect divides by the unadjusted SD.
+    """
+
+    name = "two_means"
+    family = "means"
+    title = "two independent means (t test, optional covariate adjustment)"
+    effect_unit = "difference in means (outcome units, or d)"
+    standardized_as = "d"
+    stage_keys = ("n1", "n2", "sd")
+    shared_keys = ("covariates", "covariate_r2")
+
+    def scenario(self, rows: pd.DataFrame, stage: str) -> Scenario:
+        sc = super().scenario(rows, stage)
+        r2 = sc["covariate_r2"]
+        q = sc["covariates"]
+        # A stated R^2 without a count is read as one covariate (the usual baseline adjustment);
+        # a count without R^2 costs df but is given no variance reduction.
+        sc["covariates"] = np.where(np.isnan(q), np.where(np.isnan(r2), 0.0, 1.0), q)
+        sc["covariate_r2"] = np.where(np.isnan(r2), 0.0, r2)
+        return sc
+
+    def fallback_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str]]:
+        r2 = _column(rows, "covariate_r2")
+        q = _column(rows, "covariates")
+        return [
+            *super().fallback_notes(rows),
+            (
+                ~np.isnan(r2) & np.isnan(q),
+                "covariate_r2 given without covariates: one covariate assumed",
+            ),
+            (
+                np.isnan(r2) & (q > 0),
+                "covariates given without covariate_r2: no variance reduction assumed",
+            ),
+        ]
+
+    def se(self, sc: Scenario, effect: np.ndarray | None = None) -> np.ndarray:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            residual = sc["sd"] * np.sqrt(1.0 - sc["covariate_r2"])
+            return residual * np.sqrt(1.0 / sc["n1"] + 1.0 / sc["n2"])
+
+    def df(self, sc: Scenario) -> np.ndarray:
+        return sc["n1"] + sc["n2"] - 2.0 - sc["covariates"]
+
+    def _ratio(self, sc: Scenario) -> np.ndarray:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = sc["n2"] / sc["n1"]
+        # Without planned sizes the allocation is taken as 1:1.
+        return np.where(np.isfinite(r) & (r > 0), r, 1.0)
+
+    def min_n1(self, sc: Scenario) -> np.ndarray:
+        # df > 0 and at least one unit per group.
+        r = self._ratio(sc)
+        return np.maximum((2.0 + sc["covariates"]) / (1.0 + r), np.maximum(1.0, 1.0 / r))
+
+    def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
+        n1 = np.broadcast_to(n1, sc["n1"].shape).astype(float)
+        return {**sc, "n1": n1, "n2": n1 * self._ratio(sc)}
+
+    def rounded_total(self, sc: Scenario, n1: np.ndarray) -> np.ndarray:
+        return np.ceil(n1) + np.ceil(n1 * self._ratio(sc) * (1.0 - 1e-12))
+
+    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+        q = _column(rows, "covariates")
+        q = np.where(np.isnan(q), np.where(np.isnan(_column(rows, "covariate_r2")), 0, 1), q)
+        out = []
+        for stage in ("planned", "realized"):
+            n1 = _column(rows, f"{stage}_n1")
+            n2 = _column(rows, f"{stage}_n2")
+            out.append(
+                (
+                    n1 + n2 - 2 - q < 1,
+                    f"{stage}_n2",
+                    "groups too small: n1 + n2 - 2 - covariates must be at least 1 (t-test df)",
+                )
+            )
+        return out

@@ -1,0 +1,111 @@
+"""The command line: exit codes, the JSON contract, CSV export, the demo."""
+
+from __future__ import annotations
+
+import csv
+import json
+
+import pytest
+
+from audit import METRICS
+from audit.cli import main
+from audit.resources import bundled_dir
+
+DEMO = bundled_dir("demo_data") / "demo_portfolio.csv"
+
+
+def test_check_writes_contract_json(tmp_path, capsys):
+    out = tmp_path / "a.json"
+    assert main(["check", str(DEMO), "--json", str(out), "--quiet"]) == 0
+    doc = json.loads(out.read_text())
+    assert doc["tool"] == "study-audit" and doc["version"]
+    assert doc["settings"]["target_power_default"] == 0.8
+    assert isinstance(doc["settings"]["rules"], list)
+    with DEMO.open() as handle:
+        ids = [r["study_id"] for r in csv.DictReader(handle)]
+    # Every input row appears, in input order, with the contract keys.
+    assert [s["study_id"] for s in doc["studies"]] == ids
+    for s in doc["studies"]:
+        assert set(s) >= {
+            "study_id",
+            "row",
+            "design",
+            "status",
+            "errors",
+            "notes",
+            "metrics",
+            "flags",
+        }
+        assert s["status"] in ("audited", "invalid")
+        assert set(METRICS) <= set(s["metrics"])
+    assert [s["row"] for s in doc["studies"]] == list(range(2, 2 + len(ids)))
+    p = doc["portfolio"]
+    assert p["studies"] == len(ids) and p["audited"] + p["invalid"] == len(ids)
+    for key in (
+        "median_power_at_planned_effect",
+        "share_at_target_power",
+        "median_mde_std",
+        "flag_counts",
+        "excess_significance",
+    ):
+        assert key in p
+    assert capsys.readouterr().out == ""
+
+
+def test_check_csv_keeps_user_columns_first(tmp_path):
+    out = tmp_path / "a.csv"
+    assert main(["check", str(DEMO), "--csv", str(out), "--quiet"]) == 0
+    with out.open() as handle:
+        rows = list(csv.reader(handle))
+    with DEMO.open() as handle:
+        header = next(csv.reader(handle))
+    assert rows[0][: len(header)] == header
+    assert {"status", "power_at_planned_effect", "mde", "errors", "notes", "flags"} <= set(rows[0])
+    assert len(rows) - 1 == sum(1 for _ in DEMO.open()) - 1
+
+
+def test_report_prints_a_table(capsys):
+    assert main(["check", str(DEMO)]) == 0
+    out = capsys.readouterr().out
+    assert "KF-101" in out and "not audited" in out
+
+
+def test_exit_2_for_unusable_input(tmp_path, capsys):
+    assert main(["check", str(tmp_path / "missing.csv")]) == 2
+    err = capsys.readouterr().err
+    assert "no such file" in err and "Traceback" not in err
+    bad = tmp_path / "b.csv"
+    bad.write_text("name,value\nx,1\n")
+    assert main(["check", str(bad)]) == 2
+    assert "study_id and design not found" in capsys.readouterr().err
+
+
+def test_invalid_rows_do_not_change_exit_status(tmp_path):
+    path = tmp_path / "p.csv"
+    path.write_text("study_id,design,realized_se\nA,estimate,1\nB,estimate,-1\n")
+    assert main(["check", str(path), "--quiet"]) == 0
+
+
+def test_fail_on_without_flags_exits_0(tmp_path):
+    assert main(["check", str(DEMO), "--quiet", "--fail-on", "note"]) == 0
+
+
+def test_json_to_stdout(capsys):
+    assert main(["check", str(DEMO), "--json", "-"]) == 0
+    captured = capsys.readouterr()
+    doc = json.loads(captured.out)
+    assert doc["studies"]
+    assert "KF-101" in captured.err  # the report moves to stderr
+
+
+def test_demo_writes_exports(tmp_path, capsys):
+    assert main(["demo", "--out", str(tmp_path / "d")]) == 0
+    assert (tmp_path / "d" / "audit.json").stat().st_size > 0
+    assert (tmp_path / "d" / "audit.csv").stat().st_size > 0
+    assert str(tmp_path / "d") in capsys.readouterr().out
+
+
+def test_usage_error_exits_2():
+    with pytest.raises(SystemExit) as exc:
+        main(["check"])
+    assert exc.value.code == 2
