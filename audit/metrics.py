@@ -40,6 +40,10 @@ METRICS: dict[str, str] = {
     "that differed from the plan",
     "power_cost_attrition": "power_if_planned_size - power_at_planned_effect: power lost to the "
     "size falling short of the plan",
+    "icc_ratio": "realized / planned intracluster correlation (cluster designs)",
+    "events_required_plan": "events needed at the planned hazard ratio for the target power "
+    "(survival)",
+    "events_ratio": "realized / planned number of events (survival)",
 }
 
 
@@ -186,6 +190,11 @@ def _design_metrics(
     for metric, reason in design.not_applicable.items():
         out[metric] = np.full(len(rows), np.nan)
         notes.add(positions, f"{metric}: not applicable, {reason}")
+    # Metrics defined only for other designs (events for survival, ICC for cluster trials): one
+    # note lists them rather than one note each.
+    foreign = [m for m in METRICS if m not in out]
+    if foreign:
+        notes.add(positions, f"not applicable to {design.name}: {', '.join(foreign)}")
 
     _note_nulls(design, rows, positions, notes, out, plan, real, effect, sesoi, test)
     for mask, text in design.fallback_notes(rows):

@@ -309,12 +309,14 @@ def test_power_rises_with_alpha(n, effect, alpha, sd):
 @given(n=_sizes, raw_effect=st.floats(min_value=0.01, max_value=20.0), alpha=_alphas, sd=_sds)
 def test_power_falls_with_sd(n, raw_effect, alpha, sd):
     design = DESIGNS["two_means"]
+
     def at(s):
         return design.power(
             _two_means(float(n), float(n), s),
             np.array([raw_effect]),
             _spec(1, alpha=alpha),
         )[0]
+
     assert at(sd * 1.2) <= at(sd)
 
 

@@ -126,6 +126,16 @@ class Design:
         """An effect given as a magnitude (the SESOI), pointed in the planned direction."""
         return direction * np.abs(value)
 
+    def to_analysis(self, effect: np.ndarray) -> np.ndarray:
+        """Effect in effect units -> the analysis scale, on which the estimate is approximately
+        normal with standard error ``se`` (identity here; log for hazard ratios, Fisher's z for
+        correlations)."""
+        return np.asarray(effect, dtype=float)
+
+    def from_analysis(self, value: np.ndarray) -> np.ndarray:
+        """Inverse of :meth:`to_analysis`."""
+        return np.asarray(value, dtype=float)
+
     def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         """Design-specific row checks: ``(bad_mask, column, reason)`` triples."""
         return []
@@ -140,6 +150,8 @@ class Design:
         return sum((sc[k] for k in self.size_keys), np.zeros_like(sc[self.size_keys[0]]))
 
     def se(self, sc: Scenario, effect: np.ndarray) -> np.ndarray:
+        """Expected standard error of the estimate on the analysis scale (see
+        :meth:`to_analysis`); ``effect`` matters only where the SE depends on it (proportions)."""
         raise NotImplementedError
 
     def power(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
