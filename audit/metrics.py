@@ -44,6 +44,7 @@ METRICS: dict[str, str] = {
     "events_required_plan": "events needed at the planned hazard ratio for the target power "
     "(survival)",
     "events_ratio": "realized / planned number of events (survival)",
+    "cluster_size_ratio": "realized / planned mean cluster size (cluster designs)",
 }
 
 
@@ -279,6 +280,15 @@ def _note_nulls(
             ],
             [],
         )
+    for metric, extra in design.null_explanations(rows, plan, real, effect, test).items():
+        if metric in specs and not extra.replace:
+            base_inputs, base_conditions = specs[metric]
+            specs[metric] = (
+                [*base_inputs, *extra.inputs],
+                [*extra.conditions, *base_conditions],
+            )
+        else:
+            specs[metric] = (list(extra.inputs), list(extra.conditions))
     for metric, value in out.items():
         if metric in design.not_applicable:
             continue

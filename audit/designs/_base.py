@@ -25,9 +25,29 @@ from scipy import special
 from audit.designs._power import t_ncp_for_power, t_power
 from audit.designs._solve import solve_increasing
 
-__all__ = ["Design", "Scenario", "TDesign", "TestSpec"]
+__all__ = ["Design", "NullReasons", "Scenario", "TDesign", "TestSpec"]
 
 Scenario = dict[str, np.ndarray]
+
+
+@dataclass(frozen=True)
+class NullReasons:
+    """Why a metric may come out null, for the notes (see :meth:`Design.null_explanations`).
+
+    Attributes
+    ----------
+    inputs : ``(blank_mask, column label)`` pairs: a null value where the mask is set is
+        explained as "missing <label>".
+    conditions : ``(mask, reason)`` pairs, tried in order for null values no blank input
+        explains.
+    replace : True when these are the metric's only reasons (the generic ones, read from the
+        scenario keys, would name the wrong columns); otherwise they are added to the generic
+        ones, conditions first.
+    """
+
+    inputs: tuple[tuple[np.ndarray, str], ...] = ()
+    conditions: tuple[tuple[np.ndarray, str], ...] = ()
+    replace: bool = False
 
 
 @dataclass(frozen=True)
@@ -177,6 +197,22 @@ class Design:
         self, plan: Scenario, real: Scenario, effect: np.ndarray, test: TestSpec
     ) -> dict[str, np.ndarray]:
         """Design-specific metrics beyond the common set (e.g. events for survival)."""
+        return {}
+
+    def null_explanations(
+        self,
+        rows: pd.DataFrame,
+        plan: Scenario,
+        real: Scenario,
+        effect: np.ndarray,
+        test: TestSpec,
+    ) -> dict[str, NullReasons]:
+        """Design-specific reasons for null metrics, by metric name.
+
+        Added to (or, with ``replace``, replacing) the generic reasons of :mod:`audit.metrics`,
+        which name the scenario keys' :meth:`sources`. A metric the generic notes do not know
+        (one of :meth:`extra_metrics`) needs its reasons here.
+        """
         return {}
 
 
