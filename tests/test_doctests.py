@@ -11,6 +11,7 @@ MODULES = [
     "audit.designs._power",
     "audit.designs.correlation",
     "audit.designs.proportions",
+    "audit.designs.variance",
     "audit.pipeline",
 ]
 

@@ -11,6 +11,7 @@ from audit.designs.correlation import Correlation
 from audit.designs.estimate import Estimate
 from audit.designs.means import OneMean, PairedMeans, TwoMeans
 from audit.designs.proportions import TwoProportions
+from audit.designs.variance import KMeans, Regression
 
 __all__ = ["DESIGNS", "Design", "NullReasons", "Scenario", "TestSpec"]
 
@@ -23,6 +24,8 @@ DESIGNS: dict[str, Design] = {
         TwoMeans(),
         TwoProportions(),
         Correlation(),
+        KMeans(),
+        Regression(),
         Estimate(),
     )
 }
