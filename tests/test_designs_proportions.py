@@ -140,9 +140,7 @@ def test_power_against_statsmodels():
     alpha = rng.uniform(0.001, 0.2, k)
     sides = rng.integers(1, 3, k).astype(float)
     direction = np.where(p2 < p1, -1.0, 1.0)
-    got = DESIGN.power(
-        _sc(n1, n2, p1), p2 - p1, TestSpec(alpha, sides, np.full(k, 0.8), direction)
-    )
+    got = DESIGN.power(_sc(n1, n2, p1), p2 - p1, TestSpec(alpha, sides, np.full(k, 0.8), direction))
     for i in range(k):
         alt = "two-sided" if sides[i] == 2 else ("larger" if direction[i] > 0 else "smaller")
         expected = power_proportions_2indep(

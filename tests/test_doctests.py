@@ -9,6 +9,7 @@ import pytest
 
 MODULES = [
     "audit.designs._power",
+    "audit.designs.cluster",
     "audit.designs.correlation",
     "audit.designs.proportions",
     "audit.designs.variance",

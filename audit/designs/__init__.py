@@ -7,6 +7,7 @@ designs) in a module of its family and add an instance to ``DESIGNS`` below.
 from __future__ import annotations
 
 from audit.designs._base import Design, NullReasons, Scenario, TestSpec
+from audit.designs.cluster import ClusterTwoMeans
 from audit.designs.correlation import Correlation
 from audit.designs.estimate import Estimate
 from audit.designs.means import OneMean, PairedMeans, TwoMeans
@@ -26,6 +27,7 @@ DESIGNS: dict[str, Design] = {
         Correlation(),
         KMeans(),
         Regression(),
+        ClusterTwoMeans(),
         Estimate(),
     )
 }
