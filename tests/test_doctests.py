@@ -12,6 +12,7 @@ MODULES = [
     "audit.designs.cluster",
     "audit.designs.correlation",
     "audit.designs.proportions",
+    "audit.designs.survival",
     "audit.designs.variance",
     "audit.pipeline",
 ]

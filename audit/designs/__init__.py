@@ -12,6 +12,7 @@ from audit.designs.correlation import Correlation
 from audit.designs.estimate import Estimate
 from audit.designs.means import OneMean, PairedMeans, TwoMeans
 from audit.designs.proportions import TwoProportions
+from audit.designs.survival import Survival
 from audit.designs.variance import KMeans, Regression
 
 __all__ = ["DESIGNS", "Design", "NullReasons", "Scenario", "TestSpec"]
@@ -28,6 +29,7 @@ DESIGNS: dict[str, Design] = {
         KMeans(),
         Regression(),
         ClusterTwoMeans(),
+        Survival(),
         Estimate(),
     )
 }
