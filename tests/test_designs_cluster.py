@@ -259,3 +259,15 @@ def test_too_few_clusters_is_a_row_error():
     r = _audit(realized_n1=1, realized_n2=1)
     assert r.status[0] == "invalid"
     assert "realized_n2" in set(r.errors["column"])
+
+
+def test_very_large_effect_needs_only_the_smallest_design():
+    # Where even one cluster per arm (2:1, so 1 + 2, df = 1) reaches the target, that is the
+    # required size, rather than "not reachable"; checked with statsmodels at that size.
+    sc = _sc(396.0, 792.0, 16.25, 0.149)
+    spec = _spec(1, alpha=0.1, sides=1.0)
+    d = np.array([3.16])
+    assert DESIGN.required_size(sc, d, spec)[0] == 3
+    es = d[0] * np.sqrt(16.25 / design_effect(16.25, 0.149))
+    got = TTestIndPower().power(effect_size=es, nobs1=1, ratio=2, alpha=0.1, alternative="larger")
+    assert got >= 0.8

@@ -23,7 +23,7 @@ import pandas as pd
 from scipy import special
 
 from audit.designs._power import t_ncp_for_power, t_power
-from audit.designs._solve import solve_increasing
+from audit.designs._solve import smallest_size
 
 __all__ = ["Design", "NullReasons", "Scenario", "TDesign", "TestSpec"]
 
@@ -309,7 +309,8 @@ class TDesign(Design):
             sub_test.power,
             sub_test.direction,
         )
-        n1 = solve_increasing(
+        # A very large effect may reach the target with the smallest usable design already.
+        n1 = smallest_size(
             power_at,
             sub_test.power,
             np.maximum(guess[ok], lower[ok] * 1.01),
