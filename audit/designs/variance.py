@@ -126,9 +126,11 @@ class _FDesign(Design):
         (f2u, dfnu, spentu, alphau, poweru), inverse = unique_rows(
             f2[ok], dfn[ok], spent[ok], test.alpha[ok], test.power[ok]
         )
-        # Start from the normal approximation used in f_lambda_for_power.
-        z = special.ndtri(1.0 - alphau) + special.ndtri(poweru)
-        guess = (z * z + dfnu) / f2u + spentu
+        # Start from the large-sample limit: dfn * F tends to a noncentral chi-square, whose
+        # noncentrality for the target power has a direct inverse. Finite error df need a
+        # slightly larger N (about 2 % at N = 150), which the bracket search covers.
+        critical = special.chdtri(dfnu, alphau)
+        guess = special.chndtrinc(critical, dfnu, 1.0 - poweru) / f2u
         # At least one denominator df (N > spent), and a power still below target there.
         lower = spentu + 1.0
         total = smallest_size(
