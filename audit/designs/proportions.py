@@ -351,7 +351,7 @@ class TwoProportions(Design):
         outside = "the realized control rate plus the planned risk difference lies outside [0, 1]"
         effect_blank = (np.isnan(effect), self.effect_sources())
         no_mde = (
-            np.ones(len(effect), dtype=bool),
+            test.power > test.alpha,
             "no risk difference in the planned direction reaches the target power from this "
             "control rate",
         )
