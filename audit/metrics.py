@@ -44,6 +44,7 @@ METRICS: dict[str, str] = {
     "events_required_plan": "events needed at the planned hazard ratio for the target power "
     "(survival)",
     "events_ratio": "realized / planned number of events (survival)",
+    "cluster_size_ratio": "realized / planned mean cluster size (cluster designs)",
 }
 
 
@@ -181,7 +182,11 @@ def _design_metrics(
         out["n_ratio"] = design.total_size(real) / planned_total
         for metric, (planned_col, realized_col) in design.ratio_keys.items():
             out[metric] = _col(rows, realized_col) / _col(rows, planned_col)
-        out["n_required_realized"] = design.required_size(replan, effect, test)
+        # Without nuisance parameters to replace, the replanned design is the plan itself.
+        same = replan.keys() == plan.keys() and all(replan[k] is plan[k] for k in plan)
+        out["n_required_realized"] = (
+            out["n_required_plan"] if same else design.required_size(replan, effect, test)
+        )
         out["power_if_planned_size"] = design.power(replan, effect, test)
         out["power_cost_nuisance"] = out["plan_power"] - out["power_if_planned_size"]
         out["power_cost_attrition"] = out["power_if_planned_size"] - out["power_at_planned_effect"]
@@ -279,6 +284,15 @@ def _note_nulls(
             ],
             [],
         )
+    for metric, extra in design.null_explanations(rows, plan, real, effect, test).items():
+        if metric in specs and not extra.replace:
+            base_inputs, base_conditions = specs[metric]
+            specs[metric] = (
+                [*base_inputs, *extra.inputs],
+                [*extra.conditions, *base_conditions],
+            )
+        else:
+            specs[metric] = (list(extra.inputs), list(extra.conditions))
     for metric, value in out.items():
         if metric in design.not_applicable:
             continue

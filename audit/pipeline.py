@@ -2,7 +2,7 @@
 
 >>> import pandas as pd, audit
 >>> df = pd.DataFrame({"study_id": ["A"], "design": ["estimate"], "realized_se": [1.0]})
->>> round(audit.audit_table(df).metrics.loc[0, "mde"], 2)
+>>> round(float(audit.audit_table(df).metrics.loc[0, "mde"]), 2)
 2.8
 """
 
@@ -169,9 +169,15 @@ def _jsonable(value: Any) -> Any:
     return value
 
 
-def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
+def audit_validated(
+    validated: Validated, *, rules: Any = None, continuity_correction: bool = False
+) -> AuditResult:
     """Audit an already validated table (see :func:`audit_table`)."""
-    table = validated.table
+    table = validated.table.copy()
+    # The run default applies where a row leaves continuity_correction blank.
+    table["continuity_correction"] = table["continuity_correction"].fillna(
+        1.0 if continuity_correction else 0.0
+    )
     valid = validated.valid
     computed = compute_metrics(table, valid)
     metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
@@ -186,6 +192,7 @@ def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
         "rules": [],
         "target_power_default": 0.8,
         "alpha_default": 0.05,
+        "continuity_correction_default": bool(continuity_correction),
         "source": validated.raw.source,
         "sheet": validated.raw.sheet,
     }
@@ -202,16 +209,27 @@ def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
     )
 
 
-def audit_table(df: pd.DataFrame | RawTable, *, rules: Any = None) -> AuditResult:
+def audit_table(
+    df: pd.DataFrame | RawTable, *, rules: Any = None, continuity_correction: bool = False
+) -> AuditResult:
     """Audit a table of studies given as a DataFrame (one row per study, contract columns).
 
     Cells may be numbers or text as in a spreadsheet (``"5%"``, ``"1,234"``). Rows are numbered
-    as if the frame were a sheet with its header on row 1.
+    as if the frame were a sheet with its header on row 1. ``continuity_correction`` is the
+    run's default for ``two_proportions`` rows that leave the column of that name blank.
     """
     raw = df if isinstance(df, RawTable) else raw_from_frame(df)
-    return audit_validated(validate(raw), rules=rules)
+    return audit_validated(validate(raw), rules=rules, continuity_correction=continuity_correction)
 
 
-def audit_file(path: str | Path, *, sheet: str | None = None, rules: Any = None) -> AuditResult:
-    """Read and audit a spreadsheet or CSV file."""
-    return audit_table(read_table(path, sheet=sheet), rules=rules)
+def audit_file(
+    path: str | Path,
+    *,
+    sheet: str | None = None,
+    rules: Any = None,
+    continuity_correction: bool = False,
+) -> AuditResult:
+    """Read and audit a spreadsheet or CSV file (see :func:`audit_table` for the options)."""
+    return audit_table(
+        read_table(path, sheet=sheet), rules=rules, continuity_correction=continuity_correction
+    )

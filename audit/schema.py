@@ -21,7 +21,7 @@ from audit.read import UNCACHED, RawTable, normalise_header
 
 __all__ = ["COLUMNS", "Column", "Validated", "parse_numbers", "validate"]
 
-Kind = Literal["text", "design", "number", "integer", "choice"]
+Kind = Literal["text", "design", "number", "integer", "choice", "flag"]
 
 
 @dataclass(frozen=True)
@@ -42,6 +42,8 @@ class Column:
     proportion: bool = False
 
     def range_text(self) -> str:
+        if self.kind == "flag":
+            return "yes or no (also true/false, 1/0)"
         if self.kind in ("choice", "design"):
             return "one of " + ", ".join(self.choices)
         lo = "" if self.low is None else f"{self.low:g}"
@@ -171,6 +173,12 @@ COLUMNS: tuple[Column, ...] = (
         low=0.0,
         low_open=False,
     ),
+    Column(
+        "continuity_correction",
+        "flag",
+        "test",
+        "two_proportions: continuity-corrected z test (yes/no; blank: the run's default).",
+    ),
     _count("planned_events", "sizes", "Events expected in planning (survival)."),
     _count("realized_events", "sizes", "Events observed (survival)."),
     Column(
@@ -195,6 +203,18 @@ COLUMNS: tuple[Column, ...] = (
 )
 
 SPECS: dict[str, Column] = {c.name: c for c in COLUMNS}
+
+#: Accepted spellings of a yes/no column (``flag``), after lower-casing and trimming.
+FLAG_VALUES: dict[str, float] = {
+    "yes": 1.0,
+    "y": 1.0,
+    "true": 1.0,
+    "1": 1.0,
+    "no": 0.0,
+    "n": 0.0,
+    "false": 0.0,
+    "0": 0.0,
+}
 
 #: Cell text meaning "not reported", compared after lower-casing and trimming.
 MISSING_TOKENS = frozenset(
@@ -351,7 +371,7 @@ def validate(raw: RawTable) -> Validated:
 
     for spec in COLUMNS:
         if spec.name not in data.columns:
-            if spec.kind in ("number", "integer"):
+            if spec.kind in ("number", "integer", "flag"):
                 default = np.nan if spec.default is None else float(spec.default)
                 table[spec.name] = np.full(n, default)
             elif spec.kind == "choice":
@@ -360,6 +380,15 @@ def validate(raw: RawTable) -> Validated:
                 table[spec.name] = pd.Series([None] * n, dtype=object)
             continue
         cells = data[spec.name].reset_index(drop=True)
+        if spec.kind == "flag":
+            text = cells.map(lambda v: None if v is None else _fmt(v).strip().lower())
+            blank = text.isna() | text.isin(MISSING_TOKENS)
+            flag = text.map(lambda v: FLAG_VALUES.get(v, np.nan) if v is not None else np.nan)
+            bad = (~blank & flag.isna()).to_numpy()
+            fail(bad, spec.name, f"expected {spec.range_text()}")
+            # Blank stays nan: the run's default applies (see audit.pipeline).
+            table[spec.name] = flag.to_numpy(dtype=float)
+            continue
         if spec.kind in ("text", "design", "choice"):
             text = cells.map(lambda v: None if v is None else _fmt(v).strip())
             blank = text.isna() | (text == "") | text.str.lower().isin(MISSING_TOKENS - {"-"})
