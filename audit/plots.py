@@ -13,6 +13,7 @@ design for all plotted studies). Rendering uses matplotlib's Agg backend: no dis
 from __future__ import annotations
 
 import re
+import textwrap
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -200,7 +201,7 @@ def write_plots(
         ax.set_ylabel("design-based power")
         title = str(row["study_id"])
         if isinstance(row.get("title"), str):
-            title += f" — {row['title'][:60]}"
+            title += " — " + textwrap.shorten(row["title"], width=64, placeholder="…")
         ax.set_title(title, loc="left", fontsize=10)
         ax.legend(
             frameon=False, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=3
