@@ -86,8 +86,18 @@ def test_invalid_rows_do_not_change_exit_status(tmp_path):
     assert main(["check", str(path), "--quiet"]) == 0
 
 
-def test_fail_on_without_flags_exits_0(tmp_path):
-    assert main(["check", str(DEMO), "--quiet", "--fail-on", "note"]) == 0
+@pytest.mark.parametrize("fail_on", ["note", "warning", "serious"])
+def test_fail_on_exit_status_follows_the_flags(tmp_path, fail_on):
+    out = tmp_path / "a.json"
+    status = main(["check", str(DEMO), "--quiet", "--json", str(out), "--fail-on", fail_on])
+    rank = {"note": 0, "warning": 1, "serious": 2}
+    flags = [f for s in json.loads(out.read_text())["studies"] for f in s["flags"]]
+    worst = max((rank[f["severity"]] for f in flags), default=-1)
+    assert status == (1 if worst >= rank[fail_on] else 0)
+
+
+def test_without_fail_on_flags_do_not_change_exit_status():
+    assert main(["check", str(DEMO), "--quiet"]) == 0
 
 
 def test_json_to_stdout(capsys):
