@@ -163,6 +163,14 @@ def _run_check(
         if csv_out:
             progress("writing CSV")
             write_csv(result, csv_out)
+    problems = result.rule_problems
+    for rule, problem in zip(problems["rule"], problems["problem"], strict=True):
+        # Even with --quiet: an audit with a rule that did not run is incomplete.
+        print(
+            f"study-audit: rule {rule} could not be evaluated ({problem}); no study was checked "
+            "against it. Please report this.",
+            file=sys.stderr,
+        )
     if not quiet:
         console = make_console(stderr=to_stdout)
         if study is not None:

@@ -208,3 +208,18 @@ def test_no_progress_bar_when_stderr_is_not_a_terminal(tmp_path, capsys, monkeyp
     monkeypatch.setattr(audit.cli, "PROGRESS_MIN_BYTES", 0)
     assert main(["check", str(FIXTURE)]) == 0
     assert capsys.readouterr().err == ""
+
+
+def test_a_rule_that_fails_is_reported_and_counts_for_fail_on(monkeypatch, capsys):
+    from audit import rules
+
+    def boom(self, data, params):
+        raise RuntimeError("simulated failure")
+
+    monkeypatch.setattr(rules.IsText, "evaluate", boom)  # only rules testing text fail
+    assert main(["check", str(FIXTURE), "--quiet", "--fail-on", "warning"]) == 1
+    err = capsys.readouterr().err
+    assert "rule control-rate-assumption-optimistic could not be evaluated" in err
+    assert "simulated failure" in err and "Traceback" not in err
+    # The other rules still ran: the serious finding of RX-01 is there.
+    assert main(["check", str(FIXTURE), "--quiet", "--fail-on", "serious"]) == 1
