@@ -394,7 +394,12 @@ def _format(value: Any, spec: str | None) -> str:
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return "n/a"
     if isinstance(value, str):
-        return format(value, spec) if spec else value
+        if spec:
+            try:  # a number held as text, like the 'sides' choice "2"
+                return format(float(value), spec)
+            except ValueError:
+                return format(value, spec)
+        return value
     if isinstance(value, (int, float, np.integer, np.floating)):
         return format(float(value), spec) if spec else format_number(float(value))
     return str(value)
@@ -470,11 +475,22 @@ class RuleSet:
         return len(self.rules)
 
 
-def _expect(kind: type | tuple[type, ...], value: Any, where: str, what: str) -> Any:
+_TYPE_NAMES = {
+    str: "text",
+    float: "a number",
+    int: "a number",
+    bool: "true or false",
+    dict: "a table",
+    list: "a list",
+}
+
+
+def _expect(kind: type, value: Any, where: str, what: str) -> Any:
+    """``value`` if it is of ``kind`` (booleans are not numbers), else a ConfigError."""
     if not isinstance(value, kind) or (isinstance(value, bool) and kind is not bool):
-        names = " or ".join(k.__name__ for k in (kind if isinstance(kind, tuple) else (kind,)))
-        names = names.replace("str", "text").replace("float", "number").replace("int", "number")
-        raise ConfigError(f"{where}: {what} must be {names}, got {value!r}.")
+        raise ConfigError(
+            f"{where}: {what} must be {_TYPE_NAMES.get(kind, kind.__name__)}, got {value!r}."
+        )
     return value
 
 
