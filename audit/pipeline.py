@@ -16,8 +16,11 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from audit.caveats import caveats
+from audit.errors import ConfigError
 from audit.metrics import METRICS, compute_metrics
-from audit.portfolio import portfolio_summary
+from audit.observed_power import observed_power_findings
+from audit.portfolio import EXCESS_DEFAULTS, ExcessSettings, portfolio_summary
 from audit.read import RawTable, raw_from_frame, read_table
 from audit.schema import Validated, validate
 
@@ -39,8 +42,10 @@ class AuditResult:
     notes : ``pos``, ``text``: why metrics are null and what was assumed.
     findings : ``pos``, ``rule``, ``severity``, ``message``: rule flags.
     portfolio : the portfolio block of the JSON contract.
-    settings : what the run used (rules in force, defaults, source).
+    settings : what the run used (rules in force, defaults, source, excess-significance test).
     raw : the table as read, for exports that give the user's columns back untouched.
+    caveats : plain-language caveats that apply (``topic``, ``title``, ``text``), for the
+        report's caveats section.
     """
 
     table: pd.DataFrame
@@ -53,6 +58,7 @@ class AuditResult:
     settings: dict[str, Any]
     raw: RawTable
     rules: list[Any] = field(default_factory=list)
+    caveats: list[dict[str, str]] = field(default_factory=list)
 
     @property
     def valid(self) -> np.ndarray:
@@ -128,6 +134,7 @@ class AuditResult:
             "settings": self.settings,
             "studies": studies,
             "portfolio": _jsonable(self.portfolio),
+            "caveats": self.caveats,
         }
 
 
@@ -169,7 +176,17 @@ def _jsonable(value: Any) -> Any:
     return value
 
 
-def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
+def _excess_settings(basis: str, method: str, pooling: str, min_studies: int) -> ExcessSettings:
+    settings = ExcessSettings(basis, method, pooling, min_studies)
+    problems = settings.problems()
+    if problems:
+        raise ConfigError("; ".join(problems) + ".")
+    return settings
+
+
+def audit_validated(
+    validated: Validated, *, rules: Any = None, excess: ExcessSettings = EXCESS_DEFAULTS
+) -> AuditResult:
     """Audit an already validated table (see :func:`audit_table`)."""
     table = validated.table
     valid = validated.valid
@@ -177,10 +194,10 @@ def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
     metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
     notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
     notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
-    findings = pd.DataFrame({c: pd.Series(dtype=object) for c in _FINDING_COLUMNS})
+    findings = observed_power_findings(table, metrics, valid)[_FINDING_COLUMNS]
     status = np.where(valid, "audited", "invalid").astype(object)
     portfolio = portfolio_summary(
-        table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows)
+        table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows), excess=excess
     )
     settings = {
         "rules": [],
@@ -188,6 +205,7 @@ def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
         "alpha_default": 0.05,
         "source": validated.raw.source,
         "sheet": validated.raw.sheet,
+        "excess_significance": excess.as_dict(),
     }
     return AuditResult(
         table=table,
@@ -199,19 +217,56 @@ def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
         portfolio=portfolio,
         settings=settings,
         raw=validated.raw,
+        caveats=caveats(metrics, portfolio),
     )
 
 
-def audit_table(df: pd.DataFrame | RawTable, *, rules: Any = None) -> AuditResult:
+def audit_table(
+    df: pd.DataFrame | RawTable,
+    *,
+    rules: Any = None,
+    excess_basis: str = "planned",
+    excess_method: str = "exact",
+    excess_pooling: str = "fixed",
+    excess_min_studies: int = 5,
+) -> AuditResult:
     """Audit a table of studies given as a DataFrame (one row per study, contract columns).
 
     Cells may be numbers or text as in a spreadsheet (``"5%"``, ``"1,234"``). Rows are numbered
     as if the frame were a sheet with its header on row 1.
+
+    Parameters
+    ----------
+    excess_basis : {"planned", "pooled"}
+        Power basis of the test of excess significance: each study's design-based power at its
+        planned effect, or its power at the pooled estimate of its ``outcome_family``.
+    excess_method : {"exact", "chi2"}
+        Exact Poisson-binomial p-value, or the chi-square form of Ioannidis & Trikalinos (2007).
+    excess_pooling : {"fixed", "random"}
+        Pooled estimate for ``excess_basis="pooled"``: fixed-effect or random-effects.
+    excess_min_studies : int
+        Fewest studies with a result and a power for the test to run (default 5).
+
+    Raises
+    ------
+    ConfigError
+        One of the ``excess_*`` arguments is not an allowed value.
     """
+    excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
     raw = df if isinstance(df, RawTable) else raw_from_frame(df)
-    return audit_validated(validate(raw), rules=rules)
+    return audit_validated(validate(raw), rules=rules, excess=excess)
 
 
-def audit_file(path: str | Path, *, sheet: str | None = None, rules: Any = None) -> AuditResult:
-    """Read and audit a spreadsheet or CSV file."""
-    return audit_table(read_table(path, sheet=sheet), rules=rules)
+def audit_file(
+    path: str | Path,
+    *,
+    sheet: str | None = None,
+    rules: Any = None,
+    excess_basis: str = "planned",
+    excess_method: str = "exact",
+    excess_pooling: str = "fixed",
+    excess_min_studies: int = 5,
+) -> AuditResult:
+    """Read and audit a spreadsheet or CSV file (keyword arguments as :func:`audit_table`)."""
+    excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
+    return audit_validated(validate(read_table(path, sheet=sheet)), rules=rules, excess=excess)

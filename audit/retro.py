@@ -34,6 +34,7 @@ from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
+import pandas as pd
 from scipy import special
 
 from audit.designs._power import t_power
@@ -44,6 +45,7 @@ __all__ = [
     "SignMagnitude",
     "ci_verdicts",
     "complete_results",
+    "critical_value",
     "dual_ci_level",
     "observed_power",
     "observed_power_from_p",
@@ -79,6 +81,21 @@ def upper_quantile(tail: np.ndarray, df: np.ndarray) -> np.ndarray:
     # By symmetry, minus the lower quantile: 1 - tail would lose tiny tails (p = 1e-40) to
     # rounding. stdtrit handles df = inf as the normal distribution.
     return -special.stdtrit(df, tail)
+
+
+def critical_value(tail: np.ndarray, df: np.ndarray) -> np.ndarray:
+    """:func:`upper_quantile` for per-study *settings* (a level and a df), computed once per
+    distinct pair: portfolios repeat a few of them, and the t quantile is costly."""
+    tail, df = _arrays(tail, df)
+    if tail.size < 64:
+        return upper_quantile(tail, df)
+    # Hash the pairs as complex numbers (df = inf as -1, which no real df takes).
+    key = np.empty(tail.size, dtype=complex)
+    key.real = tail.ravel()
+    key.imag = np.where(np.isinf(df.ravel()), -1.0, df.ravel())
+    codes, uniq = pd.factorize(key, use_na_sentinel=False)
+    d = np.where(uniq.imag == -1.0, np.inf, uniq.imag)
+    return upper_quantile(uniq.real, d)[codes].reshape(tail.shape)
 
 
 def _upper_tail(x: np.ndarray, df: np.ndarray) -> np.ndarray:
@@ -376,7 +393,7 @@ def complete_results(
         effect = np.where(fill, (ci_low + ci_high) / 2.0, effect)
         effect_from[fill] = FROM_CI
         # 2. the SE from the interval, else from the estimate and p
-        q_level = upper_quantile((1.0 - level) / 2.0, df)
+        q_level = critical_value((1.0 - level) / 2.0, df)
         from_ci = (ci_high - ci_low) / (2.0 * q_level)
         fill = ~np.isfinite(se) & have_ci & (from_ci > 0)
         se = np.where(fill, from_ci, se)
@@ -393,7 +410,7 @@ def complete_results(
         p_from[fill] = FROM_EFFECT_SE
         # 4. the interval dual to the test
         same_level = np.abs(level - level_test) < 1e-9
-        q_test = upper_quantile(alpha / sides, df)
+        q_test = critical_value(alpha / sides, df)
         use_reported = have_ci & same_level
         low = np.where(use_reported, ci_low, effect - q_test * se)
         high = np.where(use_reported, ci_high, effect + q_test * se)
