@@ -527,54 +527,52 @@ def _retro_metrics(
             res_out[m] = np.full(n, None, dtype=object) if m in TEXT_METRICS else nan.copy()
 
     _note_retro(
-        design,
-        rows,
-        positions,
+        _RetroRows(design, rows, positions, plan, real, effect, test, effect_a, sesoi_a, df_real),
         notes,
         res_out,
         res,
         reported,
         has_result,
         sig,
-        d,
-        effect_a,
-        sesoi_a,
-        df_real,
-        sides,
-        alpha,
     )
     return res_out
 
 
+@dataclass
+class _RetroRows:
+    """One design's rows as the retrospective metrics see them (for their notes)."""
+
+    design: Design
+    rows: pd.DataFrame
+    positions: np.ndarray
+    plan: Scenario
+    real: Scenario
+    effect: np.ndarray
+    test: TestSpec
+    effect_a: np.ndarray
+    sesoi_a: np.ndarray
+    df_real: np.ndarray
+
+
 def _note_retro(
-    design: Design,
-    rows: pd.DataFrame,
-    positions: np.ndarray,
+    ctx: _RetroRows,
     notes: _Notes,
     res_out: dict[str, np.ndarray],
     res: retro.CompletedResults,
     reported: dict[str, np.ndarray],
     has_result: np.ndarray,
     sig: np.ndarray,
-    d: np.ndarray,
-    effect_a: np.ndarray,
-    sesoi_a: np.ndarray,
-    df_real: np.ndarray,
-    sides: np.ndarray,
-    alpha: np.ndarray,
 ) -> None:
     """Notes for the retrospective metrics: why each is null, and what was derived from what."""
+    design, rows, positions = ctx.design, ctx.rows, ctx.positions
+    effect_a, sesoi_a, df_real = ctx.effect_a, ctx.sesoi_a, ctx.df_real
+    d, alpha, sides = ctx.test.direction, ctx.test.alpha, ctx.test.sides
     skip = set(design.not_applicable)
     real_src = design.sources("realized")
     plan_src = design.sources("planned")
-    real = design.scenario(rows, "realized")
-    plan = design.scenario(rows, "planned")
-    real_all = [(np.isnan(real[k]), real_src[k]) for k in real if k in real_src]
-    plan_all = [(np.isnan(plan[k]), plan_src[k]) for k in plan if k in plan_src]
-    eff_missing = (
-        np.isnan(effect_a) & np.isnan(_col(rows, "planned_effect")),
-        design.effect_sources(),
-    )
+    real_all = [(np.isnan(ctx.real[k]), real_src[k]) for k in ctx.real if k in real_src]
+    plan_all = [(np.isnan(ctx.plan[k]), plan_src[k]) for k in ctx.plan if k in plan_src]
+    eff_missing = (np.isnan(ctx.effect), design.effect_sources())
     sesoi_missing = (np.isnan(_col(rows, "sesoi")), "sesoi")
     zero = "the effect is zero, so a significant estimate has no sign to get wrong"
     design_specs = {
@@ -632,7 +630,7 @@ def _note_retro(
         notes.add(positions[hit], f"{metric}: not computed, " + why[hit])
     if "ci_verdict" not in skip:
         verdict = res_out["ci_verdict"]
-        null = some & np.array([v is None for v in verdict], dtype=bool)
+        null = some & pd.isna(verdict)
         no_ref = null & np.isfinite(res.ci_low) & np.isnan(effect_a) & np.isnan(sesoi_a)
         notes.add(
             positions[no_ref],
@@ -641,8 +639,8 @@ def _note_retro(
         )
         notes.add(
             positions[null & ~no_ref],
-            "ci_verdict: not computed, not significant by observed_p and no confidence interval "
-            "(" + need_ci + ")",
+            "ci_verdict: not computed, no confidence interval (" + need_ci + ") and no "
+            "significant observed_p",
         )
 
     # What was derived from what.

@@ -360,3 +360,15 @@ def test_text_metric_in_json_and_csv(tmp_path):
     with (tmp_path / "a.csv").open() as handle:
         rows = list(csv.DictReader(handle))
     assert rows[0]["ci_verdict"] == "detected" and rows[1]["ci_verdict"] == ""
+
+
+def test_an_effect_without_its_uncertainty():
+    # Only an estimate: nothing about its precision, significance or what it rules out.
+    result = _audit([{"observed_effect": 4.0}])
+    m = result.metrics.iloc[0]
+    assert m["result_effect"] == 4.0
+    assert np.isnan(m["result_se"]) and np.isnan(m["observed_power"]) and m["ci_verdict"] is None
+    notes = _notes(result, 0)
+    assert any(t.startswith("result_se: not computed, needs observed_se") for t in notes)
+    assert any(t.startswith("ci_verdict: not computed, no confidence interval") for t in notes)
+    assert "observed_power_from_p: not computed, observed_p not reported" in notes
