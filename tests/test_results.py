@@ -372,3 +372,33 @@ def test_an_effect_without_its_uncertainty():
     assert any(t.startswith("result_se: not computed, needs observed_se") for t in notes)
     assert any(t.startswith("ci_verdict: not computed, no confidence interval") for t in notes)
     assert "observed_power_from_p: not computed, observed_p not reported" in notes
+
+
+def test_demo_json_carries_the_retrospective_block(tmp_path):
+    # Done-when of the issue: `check` on the demo writes these metrics and the portfolio block.
+    from audit.cli import main
+    from audit.resources import bundled_dir
+
+    out = tmp_path / "demo.json"
+    demo = bundled_dir("demo_data") / "demo_portfolio.csv"
+    assert main(["check", str(demo), "--json", str(out), "--quiet"]) == 0
+    doc = json.loads(out.read_text())
+    audited = [s for s in doc["studies"] if s["status"] == "audited"]
+    for key in ("type_s", "exaggeration", "observed_power", "ci_verdict"):
+        assert any(s["metrics"][key] is not None for s in audited), key
+    verdicts = {s["metrics"]["ci_verdict"] for s in audited} - {None}
+    assert verdicts <= {"detected", "excludes_sesoi", "excludes_planned_effect", "inconclusive"}
+    block = doc["portfolio"]["excess_significance"]
+    assert set(block) >= {"observed", "expected", "p_value", "basis", "method"}
+    assert 0.0 <= block["p_value"] <= 1.0
+    assert {c["topic"] for c in doc["caveats"]} >= {"judgment", "observed_power", "type_sm"}
+
+
+def test_ci_level_given_as_a_percentage_is_caught():
+    result = _audit([{"observed_effect": 1.0, "observed_se": 1.0, "observed_ci_level": "95"}])
+    assert result.status.tolist() == ["invalid"]
+    assert "looks like a percentage" in result.errors["reason"][0]
+    ok = _audit([{"observed_ci_low": -1.0, "observed_ci_high": 3.0, "observed_ci_level": "90%"}])
+    q = stats.t.isf(0.05, 98)  # a 90 % t interval on the realized 98 df (scipy)
+    assert ok.metrics.loc[0, "result_se"] == pytest.approx(2.0 / q)
+    assert ok.metrics.loc[0, "result_ci_level"] == pytest.approx(0.95)
