@@ -141,6 +141,33 @@ class Overview:
     clean_total: int
     invalid_rows: list[tuple[int, str, list[str]]]
     problems: list[tuple[str, str, str]] = field(default_factory=list)
+    results_lines: list[str] = field(default_factory=list)
+
+
+def _results_lines(portfolio: dict) -> list[str]:
+    """Reported results across the portfolio: CI verdicts, exaggeration, excess significance."""
+    lines = []
+    verdicts = portfolio.get("ci_verdict_counts") or {}
+    if verdicts:
+        order = ("detected", "excludes_sesoi", "excludes_planned_effect", "inconclusive")
+        counts = " · ".join(f"{k} {verdicts[k]:,}" for k in order if verdicts.get(k))
+        lines.append(f"{sum(verdicts.values()):,} studies with a confidence interval: {counts}")
+    exaggeration = portfolio.get("median_exaggeration")
+    if exaggeration is not None and math.isfinite(exaggeration):
+        lines.append(
+            f"median exaggeration ratio of a significant estimate at the planned effect: "
+            f"{exaggeration:.2f}"
+        )
+    excess = portfolio.get("excess_significance")
+    if excess:
+        lines.append(
+            f"excess significance: {excess['observed']:,} significant results observed, "
+            f"{excess['expected']:.1f} expected; one-sided p = {format_number(excess['p_value'])}"
+            f" ({excess['method']}; basis: {excess['basis']})"
+        )
+    elif portfolio.get("excess_significance_note"):
+        lines.append(f"excess significance not tested: {portfolio['excess_significance_note']}")
+    return lines
 
 
 def _text(value: object) -> str:
@@ -294,6 +321,7 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
                 problems["rule"], problems["severity"], problems["problem"], strict=True
             )
         ],
+        results_lines=_results_lines(p),
     )
 
 
@@ -400,6 +428,11 @@ def _render_portfolio(view: Overview, console: Console) -> None:
     else:
         console.print("   none computed")
     console.print()
+    if view.results_lines:
+        _subheading(console, "Reported results")
+        for line in view.results_lines:
+            console.print(Padding(line, (0, 1, 0, 3)))
+        console.print()
     _subheading(console, "Findings by rule")
     counts = Table(box=None, padding=(0, 1), pad_edge=False, header_style="audit.label")
     counts.add_column("rule", no_wrap=True)
@@ -537,51 +570,17 @@ def _render_problems(view: Overview, console: Console) -> None:
         )
 
 
-#: The closing section: how to read the numbers, in plain words (our own wording).
-CAVEATS: tuple[tuple[str, str], ...] = (
-    (
-        "Design-based power, not observed power.",
-        "Power and MDE here describe the design as it was actually run — realized size and "
-        "variability — against an effect fixed in advance (the planned effect or the SESOI). "
-        'They say what the study could detect, whatever it found. "Observed power", computed '
-        "at the effect a study happened to observe, is a one-to-one transform of its p-value "
-        "(a result at p = 0.05 always has observed power near 0.5) and adds nothing to it "
-        "(Hoenig & Heisey 2001); this audit never uses it as evidence.",
-    ),
-    (
-        "Type S and Type M.",
-        "When power is low, the estimates that reach significance overstate the true effect on "
-        "average (Type M, the exaggeration ratio) and may even have the wrong sign (Type S) "
-        "(Gelman & Carlin 2014). Both are computed at the planned effect with the realized "
-        "standard error: they describe the design, not the particular result.",
-    ),
-    (
-        "CI verdicts.",
-        "For a reported confidence interval: detected — it excludes zero; "
-        "excludes_planned_effect — it rules out the effect the study was powered for; "
-        "excludes_sesoi — it rules out even the smallest effect of interest, so a relevant effect "
-        "is unlikely; inconclusive — not significant, yet still compatible with the planned "
-        "effect: the study neither found nor ruled it out.",
-    ),
-    (
-        "Thresholds are choices.",
-        "Each rule's thresholds are documented parameters (study-audit rules ID); change them "
-        "with --rules FILE to match your field's standards.",
-    ),
-    (
-        "A support, not a verdict.",
-        "The audit supports, and does not replace, the judgment of a qualified statistician. "
-        "Read the numbers in context — the analysis actually used, multiplicity, how missing data "
-        "were handled — before any decision about people, funding or publication rests on them.",
-    ),
-)
-
-
-def _render_caveats(console: Console) -> None:
+def _render_caveats(result: AuditResult, console: Console) -> None:
+    """The closing section: the caveats that apply to this audit (see :mod:`audit.caveats`)."""
     _section(console, "Reading these results")
-    for i, (head, body) in enumerate(CAVEATS):
+    for i, caveat in enumerate(result.caveats):
         top = 1 if i else 0
-        console.print(Padding(Text.assemble((head, "audit.header"), " ", body), (top, 1, 0, 1)))
+        console.print(
+            Padding(
+                Text.assemble((caveat["title"], "audit.header"), " ", caveat["text"]),
+                (top, 1, 0, 1),
+            )
+        )
 
 
 def render_report(
@@ -598,7 +597,7 @@ def render_report(
     _render_problems(view, console)
     _render_flagged(view, console)
     _render_invalid(view, console)
-    _render_caveats(console)
+    _render_caveats(result, console)
 
 
 # -- one study in depth ---------------------------------------------------------------------------

@@ -331,20 +331,26 @@ def test_rules_wait_for_metrics_and_activate_when_they_exist():
         observed_effect=[0.1, 0.6],
     )
     result = audit.audit_table(df)
-    assert result.rules_waiting["null-result-inconclusive"] == ["ci_verdict"]
-    assert "null-result-inconclusive" not in set(result.findings["rule"])
-    # A metrics table as the retrospective-inference part will produce it.
+    # A metrics table without the retrospective metrics (as a version that lacks them): the
+    # rules that need them wait, without flags and without errors.
+    absent = result.metrics.drop(columns=["ci_verdict", "exaggeration", "observed_power"])
+    waiting = evaluate_rules(load_rules(), result.table, absent, result.valid)
+    assert waiting.waiting == {
+        "null-result-inconclusive": ["ci_verdict"],
+        "observed-power-reported": ["observed_power"],
+        "significant-result-likely-exaggerated": ["ci_verdict", "exaggeration"],
+    }
+    assert "null-result-inconclusive" not in set(waiting.findings["rule"])
+    # With the metrics present they are evaluated.
     metrics = result.metrics.copy()
     metrics["ci_verdict"] = pd.Series(["inconclusive", "detected"], dtype=object)
     metrics["exaggeration"] = [2.0, 1.8]
     evaluation = evaluate_rules(load_rules(), result.table, metrics, result.valid)
-    assert "null-result-inconclusive" not in evaluation.waiting
-    assert "significant-result-likely-exaggerated" not in evaluation.waiting
+    assert evaluation.waiting == {}
     found = set(zip(evaluation.findings["pos"], evaluation.findings["rule"], strict=True))
     assert (0, "null-result-inconclusive") in found
     assert (1, "significant-result-likely-exaggerated") in found
     assert (1, "null-result-inconclusive") not in found
-    assert evaluation.waiting == {"observed-power-reported": ["observed_power"]}
 
 
 class _Broken(Condition):
