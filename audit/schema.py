@@ -192,13 +192,26 @@ COLUMNS: tuple[Column, ...] = (
     Column("observed_se", "number", "results", "Its standard error.", low=0.0),
     Column("observed_ci_low", "number", "results", "Lower confidence limit."),
     Column("observed_ci_high", "number", "results", "Upper confidence limit."),
-    _p("observed_p", "results", "Reported p-value.", high_open=False),
+    _p(
+        "observed_ci_level",
+        "results",
+        "Level of the reported confidence interval (blank: the level matching the study's test, "
+        "1 - 2 alpha / (comparisons x sides), e.g. 0.95).",
+    ),
+    _p("observed_p", "results", "Reported p-value of the study's test.", high_open=False),
     _p(
         "reported_power",
         "results",
         "A post-hoc power value the study reported.",
         low_open=False,
         high_open=False,
+    ),
+    Column(
+        "outcome_family",
+        "text",
+        "results",
+        "Label grouping studies of the same outcome on the same effect scale (for the pooled "
+        "basis of the excess-significance test).",
     ),
 )
 
@@ -471,6 +484,17 @@ def validate(raw: RawTable) -> Validated:
             full = np.zeros(n, dtype=bool)
             full[np.flatnonzero(mask)[np.asarray(bad, dtype=bool)]] = True
             fail(full, column, f"{reason} for design {name}")
+
+    # A reported result must hang together: limits in order, the estimate between them.
+    low, high = table["observed_ci_low"].to_numpy(), table["observed_ci_high"].to_numpy()
+    estimate = table["observed_effect"].to_numpy()
+    with np.errstate(invalid="ignore"):
+        fail(low > high, "observed_ci_high", "must not be below observed_ci_low")
+        fail(
+            (low <= high) & ((estimate < low) | (estimate > high)),
+            "observed_effect",
+            "must lie within the confidence interval (observed_ci_low to observed_ci_high)",
+        )
 
     extra = [c for c in data.columns if c not in SPECS]
     for c in extra:

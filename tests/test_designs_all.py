@@ -33,7 +33,8 @@ def _explained(metric: str, notes: list[str]) -> bool:
     for text in notes:
         if text.startswith(f"{metric}:"):
             return True
-        if text.startswith("not applicable to ") and metric in text.split(": ", 1)[1].split(", "):
+        # Grouped notes end with ": metric, metric, ..." (not applicable; no result reported).
+        if metric in text.rsplit(": ", 1)[-1].split(", "):
             return True
     return False
 

@@ -156,6 +156,12 @@ class Design:
         """Inverse of :meth:`to_analysis`."""
         return np.asarray(value, dtype=float)
 
+    def analysis_df(self, sc: Scenario) -> np.ndarray:
+        """Degrees of freedom of the test on the analysis scale (``inf``: a z test), used to read
+        reported confidence intervals and p-values; nan where the scenario leaves them unknown."""
+        size = len(next(iter(sc.values()))) if sc else 0
+        return np.full(size, np.inf)
+
     def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         """Design-specific row checks: ``(bad_mask, column, reason)`` triples."""
         return []
@@ -230,6 +236,9 @@ class TDesign(Design):
 
     def df(self, sc: Scenario) -> np.ndarray:
         raise NotImplementedError
+
+    def analysis_df(self, sc: Scenario) -> np.ndarray:
+        return self.df(sc)
 
     def min_n1(self, sc: Scenario) -> np.ndarray:
         """Smallest first-group size for which ``df > 0``."""
