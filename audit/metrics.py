@@ -27,6 +27,8 @@ METRICS: dict[str, str] = {
     "power_at_sesoi": "design-based power of the realized design at the SESOI",
     "mde": "minimal detectable effect at the target power with the realized design "
     "(effect units, in the planned direction)",
+    "mde_sesoi_ratio": "|MDE| / |SESOI| on the design's analysis scale (log for hazard ratios, "
+    "Fisher z for correlations): above 1, effects that still matter could go undetected",
     "mde_std": "the MDE standardized (d, d_z, h, r, f, f2 or log hazard ratio by design)",
     "se_plan": "expected standard error of the estimate under the plan",
     "se_realized": "expected standard error of the estimate as realized",
@@ -256,6 +258,9 @@ def _design_metrics(
         out["power_at_sesoi"] = design.power(real, sesoi, test)
         out["mde"] = design.mde(real, test)
         out["mde_std"] = design.standardize(real, out["mde"])
+        out["mde_sesoi_ratio"] = np.abs(design.to_analysis(out["mde"])) / np.abs(
+            design.to_analysis(sesoi)
+        )
         out["se_plan"] = design.se(plan, effect)
         out["se_realized"] = design.se(real, effect)
         out["precision_ratio"] = out["se_plan"] / out["se_realized"]
@@ -342,6 +347,7 @@ def _note_nulls(
         "power_at_sesoi": ([*real_all, sesoi_missing], []),
         "mde": (real_all, [weak_target]),
         "mde_std": (real_all, [weak_target]),
+        "mde_sesoi_ratio": ([*real_all, sesoi_missing], [weak_target]),
         "se_plan": (plan_all, []),
         "se_realized": (real_all, []),
         "precision_ratio": ([*plan_all, *real_all], []),
