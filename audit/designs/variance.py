@@ -6,8 +6,9 @@ size) as in Cohen [1]_: ``k_means`` on (k − 1, N − k) degrees of freedom wit
 covariates in the model.
 
 An omnibus F test has no single estimate with a standard error and no direction: the SE-based
-metrics are declared not applicable, effects are magnitudes (``direction`` is always +1) and
-``sides`` must be 2.
+metrics are declared not applicable and effects are magnitudes (``direction`` is always +1).
+The F test rejects in its upper tail only, at level alpha: ``sides`` is not used, and a row that
+says 1 gets a note rather than an error (writing "one-sided" for an F test is common and harmless).
 
 References
 ----------
@@ -65,15 +66,16 @@ class _FDesign(Design):
     def direction(self, effect: np.ndarray) -> np.ndarray:
         return np.ones(np.shape(effect))
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
-        out = [
+    def fallback_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str]]:
+        return [
             (
                 _column(rows, "sides") == 1,
-                "sides",
-                "must be 2 (or blank): an F test has no one-sided form",
+                "sides = 1 not used: the F test rejects in its upper tail only, at level alpha",
             )
         ]
-        out += [
+
+    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+        out = [
             (_column(rows, c) < 0, c, f"must be >= 0 ({self.standardized_as} is a magnitude)")
             for c in self.effect_columns
         ]
@@ -245,6 +247,7 @@ class Regression(_FDesign):
 
     def fallback_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str]]:
         return [
+            *super().fallback_notes(rows),
             (
                 ~np.isnan(_column(rows, "covariate_r2")),
                 "covariate_r2 not used for regression: f² of the tested predictors is already "
