@@ -188,6 +188,10 @@ def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
         "alpha_default": 0.05,
         "source": validated.raw.source,
         "sheet": validated.raw.sheet,
+        "header_row": validated.raw.header_row,
+        # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
+        # title rows, merged or repeated headers).
+        "input_notes": list(validated.file_notes),
     }
     return AuditResult(
         table=table,
