@@ -191,7 +191,7 @@ def read_table(path: str | Path, sheet: str | None = None) -> RawTable:
         raise InputError(f"{path}: --sheet applies to .xlsx workbooks, not to text files.")
     text, note = _decode(path)
     delimiter = "\t" if suffix == ".tsv" else _sniff_delimiter(text)
-    cells, problems = _parse_delimited(text, delimiter)
+    cells, problems = _parse_delimited(text, delimiter, path)
     table = _to_raw(
         _Sheet(cells, list(range(1, len(cells) + 1))),
         str(path),
@@ -245,27 +245,26 @@ def _decode(path: Path) -> tuple[str, str | None]:
     data = path.read_bytes()
     text: str | None = None
     note: str | None = None
+    sample = data[:4096]
+    even, odd = sample[0::2], sample[1::2]
     if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
-        text, note = _try(data, "utf-16"), None
+        text = _try(data, "utf-16")
+    elif odd and odd.count(0) > 0.4 * len(odd) and even.count(0) < 0.1 * len(even):
+        # UTF-16 without a byte-order mark: every other byte of ASCII text is zero.
+        text, note = _try(data, "utf-16-le"), "read as UTF-16 text (no byte-order mark)"
+    elif even and even.count(0) > 0.4 * len(even) and odd.count(0) < 0.1 * len(odd):
+        text, note = _try(data, "utf-16-be"), "read as UTF-16 text (no byte-order mark)"
     elif data.startswith(b"\xef\xbb\xbf") or _try(data, "utf-8") is not None:
         text = _try(data, "utf-8-sig")
     else:
-        # UTF-16 without a byte-order mark: every other byte of ASCII text is zero.
-        sample = data[:4096]
-        even, odd = sample[0::2], sample[1::2]
-        if odd and odd.count(0) > 0.4 * len(odd) and even.count(0) < 0.1 * len(even):
-            text, note = _try(data, "utf-16-le"), "read as UTF-16 text (no byte-order mark)"
-        elif even and even.count(0) > 0.4 * len(even) and odd.count(0) < 0.1 * len(odd):
-            text, note = _try(data, "utf-16-be"), "read as UTF-16 text (no byte-order mark)"
-        if text is None:
-            for encoding, label in (("cp1252", "Windows-1252"), ("latin-1", "Latin-1")):
-                text = _try(data, encoding)
-                if text is not None:
-                    note = (
-                        f"the file is not UTF-8; it was read as {label} text (check accented "
-                        "letters in the exports)"
-                    )
-                    break
+        for encoding, label in (("cp1252", "Windows-1252"), ("latin-1", "Latin-1")):
+            text = _try(data, encoding)
+            if text is not None:
+                note = (
+                    f"the file is not UTF-8; it was read as {label} text (check accented "
+                    "letters in the exports)"
+                )
+                break
     if text is None:
         raise InputError(f"{path}: the text encoding could not be recognised; save it as UTF-8.")
     if _control_share(text[:65536]) >= 0.01:
@@ -295,7 +294,7 @@ def _sniff_delimiter(text: str) -> str:
 
 
 def _parse_delimited(
-    text: str, delimiter: str
+    text: str, delimiter: str, source: object
 ) -> tuple[list[list[object]], list[tuple[int, int, str]]]:
     """Records of the text, and ``(record index, field index, reason)`` for suspect fields.
 
@@ -308,9 +307,9 @@ def _parse_delimited(
     try:
         for record in reader:
             if len(records) > MAX_ROWS + HEADER_SEARCH_ROWS and any(record):
-                raise InputError(_too_many_rows())
+                raise InputError(_too_many_rows(source))
             if len(record) > MAX_COLUMNS and any(record[MAX_COLUMNS:]):
-                raise InputError(_too_many_columns(len(record)))
+                raise InputError(_too_many_columns(source, len(record)))
             for j, value in enumerate(record):
                 # A line break plus the separator inside one cell is what an unbalanced quote
                 # mark produces: the lines up to the next quote mark are swallowed into the cell.
@@ -328,8 +327,8 @@ def _parse_delimited(
             records.append(list(record))
     except csv.Error as exc:
         raise InputError(
-            f"the file could not be read as delimited text near record {len(records) + 1} "
-            f"({exc}); check quote marks there."
+            f"{source}: the file could not be read as delimited text near record "
+            f"{len(records) + 1} ({exc}); check quote marks there."
         ) from exc
     return records, problems
 
@@ -354,17 +353,17 @@ def _map_problems(
     return out
 
 
-def _too_many_rows() -> str:
+def _too_many_rows(source: object) -> str:
     return (
-        f"the table has more than {MAX_ROWS:,} study rows, the most one run reads; split the "
-        "portfolio into smaller files."
+        f"{source}: the table has more than {MAX_ROWS:,} study rows, the most one run reads; "
+        "split the portfolio into smaller files."
     )
 
 
-def _too_many_columns(count: int) -> str:
+def _too_many_columns(source: object, count: int) -> str:
     return (
-        f"the table has {count:,} columns, more than the limit of {MAX_COLUMNS:,}; remove "
-        "unused columns."
+        f"{source}: the table has {count:,} columns, more than the limit of {MAX_COLUMNS:,}; "
+        "remove unused columns."
     )
 
 
@@ -478,12 +477,18 @@ def _read_xlsx(path: Path, sheet: str | None) -> _Sheet:
 
 
 def _workbook_failure(path: Path, exc: Exception) -> str:
-    name = type(exc).__name__
-    if "Entities" in name or "DTD" in name or "ExternalReference" in name:
-        return (
-            f"{path}: the workbook declares XML entities or external references; refused as unsafe."
-        )
-    detail = str(exc).strip() or name
+    from defusedxml import DefusedXmlException
+
+    # openpyxl wraps parser errors in its own; defusedxml's refusal is found down the chain.
+    cause: BaseException | None = exc
+    while cause is not None:
+        if isinstance(cause, DefusedXmlException):
+            return (
+                f"{path}: the workbook declares XML entities or external references; refused "
+                "as unsafe."
+            )
+        cause = cause.__cause__ or cause.__context__
+    detail = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
     if len(detail) > 120:
         detail = detail[:117] + "..."
     return (
@@ -527,7 +532,7 @@ def _read_sheet(path: Path, book: object, sheet: str | None) -> _Sheet:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            found = _parse_worksheet(book, ws)
+            found = _parse_worksheet(path, book, ws)
     except InputError:
         raise
     except Exception as exc:  # damaged sheet XML: any parser error means the same to the user
@@ -537,7 +542,7 @@ def _read_sheet(path: Path, book: object, sheet: str | None) -> _Sheet:
     return found
 
 
-def _parse_worksheet(book: object, ws: object) -> _Sheet:
+def _parse_worksheet(path: Path, book: object, ws: object) -> _Sheet:
     """Rows of a worksheet with hidden rows and merged ranges, in one pass over its XML.
 
     openpyxl's read-only worksheet trusts the sheet's declared dimensions (rows past a wrong
@@ -572,13 +577,13 @@ def _parse_worksheet(book: object, ws: object) -> _Sheet:
                 continue
             width = max(filled)
             if width > MAX_COLUMNS:
-                raise InputError(_too_many_columns(width))
+                raise InputError(_too_many_columns(path, width))
             values: list[object] = [None] * width
             for column, value in filled.items():
                 values[column - 1] = value
             studies += 1
             if studies > MAX_ROWS + HEADER_SEARCH_ROWS:
-                raise InputError(_too_many_rows())
+                raise InputError(_too_many_rows(path))
             cells.append(values)
             numbers.append(int(number))
         hidden = {
@@ -672,7 +677,10 @@ def _header_texts(sheet: _Sheet, h: int, width: int) -> tuple[list[object], int,
     )
     if below is not None:
         filled = [j for j in range(width) if not _is_blank(below[j])]
-        if filled and all(j in group for j in filled):
+        keys = {j for j in range(width) if normalise_header(header[j]) in ("study_id", "design")}
+        # Sub-headings are text, and stand where no study could: a study row always fills its
+        # study_id and design cells.
+        if filled and all(isinstance(below[j], str) for j in filled) and not keys & set(filled):
             names = []
             for j in range(width):
                 top = group.get(j, header[j])
@@ -706,7 +714,9 @@ def _to_raw(
     cells = sheet.cells
     h = _find_header(sheet) if header_index is None else header_index
     if h is None:
-        raise InputError(f"{source}{_sheet_text(sheet_name)}: the file is empty.")
+        raise InputError(
+            f"{source}{_sheet_text(sheet_name)}: the file is empty (no cell holds anything)."
+        )
     width = max((len(r) for r in cells[h:]), default=0)
     header, header_rows, notes = _header_texts(sheet, h, width)
     notes = list(sheet.notes) + notes
@@ -738,7 +748,7 @@ def _to_raw(
         written.append(str(text).strip())
         names.append(normalise_header(text) or f"column_{_column_letter(j).lower()}")
     if len(keep) > MAX_COLUMNS:
-        raise InputError(_too_many_columns(len(keep)))
+        raise InputError(_too_many_columns(source, len(keep)))
     seen: dict[str, int] = {}
     duplicates: dict[str, list[str]] = {}
     for k, name in enumerate(names):
@@ -766,7 +776,7 @@ def _to_raw(
         data_rows.append(values)
         numbers.append(spreadsheet_row)
     if len(data_rows) > MAX_ROWS:
-        raise InputError(_too_many_rows())
+        raise InputError(_too_many_rows(source))
     frame = pd.DataFrame(data_rows, columns=names, dtype=object)
     if not len(data_rows):
         frame = pd.DataFrame({name: pd.Series(dtype=object) for name in names})

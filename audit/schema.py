@@ -387,30 +387,7 @@ def validate(raw: RawTable) -> Validated:
             continue
         cells = data[spec.name].reset_index(drop=True)
         if spec.kind in ("text", "design", "choice"):
-            text = cells.map(lambda v: None if v is None else _fmt(v).strip())
-            if spec.kind == "choice":
-                # "2.0" typed as text means 2, as the number 2.0 in a spreadsheet cell does.
-                text = text.str.replace(r"^(\d+)\.0*$", r"\1", regex=True)
-            blank = text.isna() | (text == "") | text.str.lower().isin(MISSING_TOKENS - {"-"})
-            if spec.kind == "text":
-                table[spec.name] = text.where(~blank, None)
-                continue
-            norm = text.map(lambda v: normalise_header(v) if v is not None else None)
-            if spec.kind == "choice":
-                norm = norm.where(~blank, spec.default)
-            else:
-                norm = norm.where(~blank, None)
-            bad = ~norm.isin(spec.choices) & ~(blank & (spec.kind == "choice"))
-            if spec.kind == "design":
-                bad &= ~blank
-                fail(blank.to_numpy(), spec.name, "blank: the design must be given")
-            fail(
-                bad.to_numpy(),
-                spec.name,
-                f"unknown {spec.name.replace('_', ' ')}; expected {spec.range_text()}",
-            )
-            # A rejected value is kept as written so that outputs show what the row said.
-            table[spec.name] = norm.where(~bad, text).astype(object)
+            _text_column(spec, cells, table, fail)
             continue
         numbers, problem = parse_numbers(
             cells, decimal_comma=raw.decimal_comma, whole=spec.kind == "integer"
@@ -510,6 +487,46 @@ def validate(raw: RawTable) -> Validated:
         }
     )
     return Validated(table, failures, notes, valid, extra, raw, file_notes)
+
+
+def _text_column(
+    spec: Column,
+    cells: pd.Series,
+    table: pd.DataFrame,
+    fail: Callable[[np.ndarray, str, str | np.ndarray], None],
+) -> None:
+    """Type a text, design or choice column into ``table`` (object array, None for blank)."""
+    uncached = np.fromiter((v is UNCACHED for v in cells), dtype=bool, count=len(cells))
+    fail(uncached, spec.name, "formula without a saved value (open and save the file)")
+    # Object arrays throughout: a pandas string column would turn None into nan.
+    text = np.array(
+        [None if v is None or v is UNCACHED else _fmt(v).strip() for v in cells], dtype=object
+    )
+    if spec.kind == "choice":
+        # "2.0" typed as text means 2, as the number 2.0 in a spreadsheet cell does.
+        text = np.array(
+            [v if v is None else re.sub(r"^(\d+)\.0*$", r"\1", v) for v in text], dtype=object
+        )
+    tokens = MISSING_TOKENS - {"-"}
+    blank = np.fromiter(
+        (v is None or v.lower() in tokens for v in text), dtype=bool, count=len(text)
+    )
+    if spec.kind == "text":
+        table[spec.name] = pd.Series(np.where(blank, None, text), dtype=object)
+        return
+    norm = np.array(
+        [None if b else normalise_header(v) for v, b in zip(text, blank, strict=True)], dtype=object
+    )
+    known = np.isin(norm, np.asarray(spec.choices, dtype=object))
+    if spec.kind == "choice":
+        norm = np.where(blank, spec.default, norm)
+        bad = ~known & ~blank
+    else:
+        bad = ~known & ~blank
+        fail(blank & ~uncached, spec.name, "blank: the design must be given")
+    fail(bad, spec.name, f"unknown {spec.name.replace('_', ' ')}; expected {spec.range_text()}")
+    # A rejected value is kept as written so that outputs show what the row said.
+    table[spec.name] = pd.Series(np.where(bad, text, norm), dtype=object)
 
 
 def _missing_columns_message(raw: RawTable, missing: list[str]) -> str:
