@@ -1,7 +1,9 @@
-"""Write an :class:`~audit.pipeline.AuditResult` to files: JSON (the contract) and CSV.
+"""Write an :class:`~audit.pipeline.AuditResult` to files: JSON (the contract), CSV and XLSX.
 
 Files are written atomically: to a temporary file in the target folder, then renamed over the
-target, so an interrupted run never leaves a half-written file where a good one was.
+target, so an interrupted run never leaves a half-written file where a good one was. No export
+may be written over the input file. Text that a spreadsheet program would run as a formula is
+made inert in CSV and XLSX (see :func:`neutralise_formula`).
 """
 
 from __future__ import annotations
@@ -18,10 +20,27 @@ from typing import IO, TYPE_CHECKING
 
 import pandas as pd
 
+from audit.errors import OutputError
+
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
 
-__all__ = ["atomic_output", "neutralise_formula", "studies_frame", "write_csv", "write_json"]
+__all__ = [
+    "CAUTION",
+    "atomic_output",
+    "neutralise_formula",
+    "studies_frame",
+    "write_csv",
+    "write_json",
+    "write_xlsx",
+]
+
+#: Said wherever results leave the tool in a form that may inform decisions about people.
+CAUTION = (
+    "This audit supports, and does not replace, the judgment of a qualified statistician: "
+    "design-based power and detectable effects depend on the inputs given, and a study's "
+    "context may justify what the numbers question."
+)
 
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 _PLAIN_NUMBER = re.compile(r"^[+-]?(\d[\d,]*\.?\d*|\.\d+)([eE][+-]?\d+)?%?$")
@@ -38,9 +57,17 @@ def atomic_output(path: str | Path, mode: str = "w") -> Iterator[IO]:
         sys.stdout.flush()
         return
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    if target.is_dir():
+        raise OutputError(f"{target} is a folder; give a file name for the export.")
     try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    except OSError as exc:
+        raise OutputError(f"{target}: cannot write here ({exc.strerror or exc}).") from exc
+    try:
+        # mkstemp creates the file readable by its owner only; give the export the mode a
+        # plainly created file would have (or keep the mode of the file it replaces).
+        os.chmod(tmp, target.stat().st_mode & 0o777 if target.exists() else 0o666 & ~_umask())
         encoding = None if "b" in mode else "utf-8"
         newline = None if "b" in mode else ""
         with os.fdopen(fd, mode, encoding=encoding, newline=newline) as handle:
@@ -50,6 +77,25 @@ def atomic_output(path: str | Path, mode: str = "w") -> Iterator[IO]:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+def _refuse_input(result: AuditResult, path: str | Path) -> None:
+    """An export must never replace the file that was audited."""
+    source = result.settings.get("source")
+    if str(path) == "-" or not source:
+        return
+    with contextlib.suppress(OSError):
+        if Path(path).exists() and Path(source).exists() and os.path.samefile(path, source):
+            raise OutputError(
+                f"{path} is the input file; choose another name for the export (the input is "
+                "never overwritten)."
+            )
 
 
 def neutralise_formula(value: object) -> object:
@@ -71,6 +117,7 @@ def neutralise_formula(value: object) -> object:
 
 def write_json(result: AuditResult, path: str | Path) -> None:
     """The contract JSON document (DESIGN.md section 5)."""
+    _refuse_input(result, path)
     document = result.to_dict()
     with atomic_output(path) as handle:
         json.dump(document, handle, indent=1, ensure_ascii=False, allow_nan=False)
@@ -117,9 +164,71 @@ def studies_frame(result: AuditResult) -> pd.DataFrame:
 
 def write_csv(result: AuditResult, path: str | Path) -> None:
     """The per-study table as CSV, formula-like text made inert."""
+    _refuse_input(result, path)
     frame = studies_frame(result)
+    frame.columns = [neutralise_formula(str(c)) for c in frame.columns]
     for c in frame.columns:
-        if frame[c].dtype == object:
-            frame[c] = frame[c].map(neutralise_formula)
+        if frame[c].dtype == object or pd.api.types.is_string_dtype(frame[c]):
+            frame[c] = frame[c].astype(object).map(neutralise_formula)
     with atomic_output(path) as handle:
         frame.to_csv(handle, index=False, lineterminator="\n")
+
+
+def write_xlsx(result: AuditResult, path: str | Path) -> None:
+    """The per-study table as an .xlsx workbook, text kept as text and formula-like text inert.
+
+    Sheets: ``Studies`` (as :func:`studies_frame`) and ``About`` (source, settings, notes about
+    the input, and the caution). Every text cell is written as a string cell, so nothing is
+    evaluated, and text starting like a formula also gets the apostrophe of
+    :func:`neutralise_formula`, as in CSV, so that it stays inert if the cell is edited or the
+    sheet is saved as CSV. Characters a workbook cannot hold (control characters) are replaced
+    by U+FFFD.
+    """
+    from openpyxl import Workbook
+    from openpyxl.cell import WriteOnlyCell
+
+    _refuse_input(result, path)
+    frame = studies_frame(result)
+    book = Workbook(write_only=True)
+    sheet = book.create_sheet("Studies")
+
+    def cell(value: object) -> WriteOnlyCell | None:
+        if value is None or (isinstance(value, float) and value != value):
+            return None
+        if isinstance(value, (bool, int, float)) and not isinstance(value, str):
+            return WriteOnlyCell(sheet, value=value)
+        text = _ILLEGAL_XLSX.sub("\ufffd", str(neutralise_formula(str(value))))
+        c = WriteOnlyCell(sheet, value=None)
+        c.value = text
+        c.data_type = "s"  # a string cell even when the text starts with '='
+        return c
+
+    sheet.append([cell(str(c)) for c in frame.columns])
+    columns = [frame[c].astype(object).to_numpy() for c in frame.columns]
+    for i in range(len(frame)):
+        sheet.append([cell(_plain(col[i])) for col in columns])
+    about = book.create_sheet("About")
+    about.append([cell("study-audit"), cell(str(result.to_dict()["version"]))])
+    about.append([cell("caution"), cell(CAUTION)])
+    for key in ("source", "sheet", "header_row"):
+        about.append([cell(key), cell(result.settings.get(key))])
+    for note in result.settings.get("input_notes", []):
+        about.append([cell("input note"), cell(note)])
+    with atomic_output(path, "wb") as handle:
+        book.save(handle)
+
+
+#: Characters XML 1.0 (so a workbook) cannot hold.
+_ILLEGAL_XLSX = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f]")
+
+
+def _plain(value: object) -> object:
+    """numpy and pandas scalars -> Python values for openpyxl; missing -> None."""
+    if value is None or value is pd.NA:
+        return None
+    if hasattr(value, "item") and not isinstance(value, str):
+        try:
+            return value.item()  # type: ignore[union-attr]
+        except (ValueError, AttributeError):
+            return str(value)
+    return value

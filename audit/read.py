@@ -19,6 +19,7 @@ import io
 import re
 import warnings
 import zipfile
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -302,6 +303,7 @@ def _parse_delimited(
     the record number is the row number a spreadsheet program shows for the same file.
     """
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    quoted = '"' in text
     records: list[list[object]] = []
     problems: list[tuple[int, int, str]] = []
     try:
@@ -310,27 +312,35 @@ def _parse_delimited(
                 raise InputError(_too_many_rows(source))
             if len(record) > MAX_COLUMNS and any(record[MAX_COLUMNS:]):
                 raise InputError(_too_many_columns(source, len(record)))
-            for j, value in enumerate(record):
-                # A line break plus the separator inside one cell is what an unbalanced quote
-                # mark produces: the lines up to the next quote mark are swallowed into the cell.
-                if "\n" in value and delimiter in value:
-                    lines = value.count("\n") + 1
-                    problems.append(
-                        (
-                            len(records),
-                            j,
-                            f"the cell runs over {lines} lines and contains the separator "
-                            f"'{delimiter}': a quote mark is probably unbalanced, and the lines "
-                            "after it were read into this cell; fix the quotes in the file",
-                        )
-                    )
-            records.append(list(record))
+            # A line break plus the separator inside one cell is what an unbalanced quote mark
+            # produces: the lines up to the next quote mark are swallowed into the cell. (One
+            # test per record first: cells with line breaks are rare.)
+            if quoted and ("\n" in (joined := "".join(record)) or "\r" in joined):
+                problems.extend(_swallowed(record, delimiter, len(records)))
+            records.append(record)
     except csv.Error as exc:
         raise InputError(
             f"{source}: the file could not be read as delimited text near record "
             f"{len(records) + 1} ({exc}); check quote marks there."
         ) from exc
     return records, problems
+
+
+def _swallowed(record: list[str], delimiter: str, index: int) -> list[tuple[int, int, str]]:
+    out = []
+    for j, value in enumerate(record):
+        if ("\n" in value or "\r" in value) and delimiter in value:
+            lines = len(value.splitlines())
+            out.append(
+                (
+                    index,
+                    j,
+                    f"the cell runs over {lines} lines and contains the separator "
+                    f"'{delimiter}': a quote mark is probably unbalanced, and the lines "
+                    "after it were read into this cell; fix the quotes in the file",
+                )
+            )
+    return out
 
 
 def _map_problems(
@@ -457,7 +467,16 @@ def _read_xlsx(path: Path, sheet: str | None) -> _Sheet:
         with archive:
             try:
                 _check_archive(path, archive)
-            except (zipfile.BadZipFile, OSError, EOFError, zipfile.LargeZipFile) as exc:
+            except (
+                zipfile.BadZipFile,
+                zipfile.LargeZipFile,
+                zlib.error,
+                OSError,
+                EOFError,
+                ValueError,
+                RuntimeError,  # a part encrypted with a zip password
+                NotImplementedError,  # a compression method zipfile does not know
+            ) as exc:
                 raise InputError(
                     f"{path}: the workbook is damaged or truncated ({exc}); save it again."
                 ) from exc

@@ -258,13 +258,30 @@ def parse_numbers(
     """
     out = pd.Series(np.nan, index=values.index, dtype=float)
     problem = pd.Series("", index=values.index, dtype=object)
-    is_num = values.map(lambda v: isinstance(v, (int, float)) and not isinstance(v, bool))
+    kind = _cell_kinds(values)
+    is_num = pd.Series(kind == _NUM, index=values.index)
     if is_num.any():
         # Python ints of any size: beyond float range they become inf and are rejected below.
         out[is_num] = [_as_float(v) for v in values[is_num]]
-    uncached = values.map(lambda v: v is UNCACHED)
+    other_at = np.flatnonzero(kind == _OTHER)
+    uncached_np = np.zeros(len(values), dtype=bool)
+    uncached_np[other_at] = [values.iat[i] is UNCACHED for i in other_at]
+    uncached = pd.Series(uncached_np, index=values.index)
     problem[uncached] = "formula without a saved value (open and save the file, or paste values)"
-    text_mask = values.map(lambda v: isinstance(v, str))
+    text_mask = pd.Series(kind == _TEXT, index=values.index)
+    if text_mask.any():
+        text = values[text_mask].astype(object)
+        empty = (text.str.strip() == "").to_numpy(dtype=bool)
+        text_mask[text.index[empty]] = False
+        text = text[~empty]
+        # Fast path for the common case, a plain number (C-speed parsing); everything else
+        # (percentages, separators, markers of missing values, junk) takes the careful path.
+        quick = pd.to_numeric(text, errors="coerce").astype(float)
+        plain = np.isfinite(quick.to_numpy())
+        if decimal_comma and plain.any():
+            plain &= ~text.str.contains(".", regex=False).to_numpy(dtype=bool, na_value=False)
+        out[quick.index[plain]] = quick[plain]
+        text_mask[quick.index[plain]] = False
     if text_mask.any():
         s = values[text_mask].astype(str).str.strip().str.replace("\u00a0", "", regex=False)
         # The typographic minus (U+2212) and dashes pasted from documents mean a minus sign.
@@ -308,17 +325,44 @@ def parse_numbers(
                     "separator of a decimal-comma file)"
                 )
             problem[reason.index] = reason
-    bool_mask = values.map(lambda v: isinstance(v, bool))
+    bool_mask = pd.Series(kind == _BOOL, index=values.index)
     problem[bool_mask] = "not a number (TRUE/FALSE)"
     # Anything else a spreadsheet cell can hold (a date, a time, an error value's object) is not
     # a number either; it must never pass as blank.
-    other = values.notna() & ~(is_num | uncached | text_mask | bool_mask)
+    other = pd.Series(kind == _OTHER, index=values.index) & ~uncached
     problem[other] = "not a number (a date or another kind of value)"
     with np.errstate(invalid="ignore"):
         infinite = np.isinf(out.to_numpy(dtype=float))
     problem[infinite & (problem == "").to_numpy()] = "not a finite number"
     out[infinite] = np.nan
     return out, problem
+
+
+_NONE, _NUM, _TEXT, _BOOL, _OTHER = range(5)
+_KINDS = {
+    type(None): _NONE,
+    int: _NUM,
+    float: _NUM,
+    np.float64: _NUM,
+    np.int64: _NUM,
+    str: _TEXT,
+    bool: _BOOL,
+    np.bool_: _BOOL,
+}
+
+
+def _cell_kinds(values: pd.Series) -> np.ndarray:
+    """Kind of each cell (none, number, text, boolean, other), at C speed when the column is
+    uniform, as columns of a text file are."""
+    inferred = pd.api.types.infer_dtype(values, skipna=True)
+    present = values.notna().to_numpy()
+    if inferred in ("string", "empty"):
+        return np.where(present, _TEXT, _NONE).astype(np.int8)
+    if inferred in ("floating", "integer", "mixed-integer-float"):
+        return np.where(present, _NUM, _NONE).astype(np.int8)
+    return np.fromiter(
+        (_KINDS.get(type(v), _OTHER) for v in values), dtype=np.int8, count=len(values)
+    )
 
 
 def _as_float(value: object) -> float:
@@ -502,20 +546,22 @@ def _text_column(
     text = np.array(
         [None if v is None or v is UNCACHED else _fmt(v).strip() for v in cells], dtype=object
     )
+    # Per distinct value, not per cell: portfolios repeat a handful of designs and choices.
+    distinct = {v for v in text if v is not None}
     if spec.kind == "choice":
         # "2.0" typed as text means 2, as the number 2.0 in a spreadsheet cell does.
-        text = np.array(
-            [v if v is None else re.sub(r"^(\d+)\.0*$", r"\1", v) for v in text], dtype=object
-        )
+        plain = {v: re.sub(r"^(\d+)\.0*$", r"\1", v) for v in distinct}
+        text = np.array([None if v is None else plain[v] for v in text], dtype=object)
+        distinct = set(plain.values())
     tokens = MISSING_TOKENS - {"-"}
-    blank = np.fromiter(
-        (v is None or v.lower() in tokens for v in text), dtype=bool, count=len(text)
-    )
+    is_token = {v: v.lower() in tokens for v in distinct}
+    blank = np.fromiter((v is None or is_token[v] for v in text), dtype=bool, count=len(text))
     if spec.kind == "text":
         table[spec.name] = pd.Series(np.where(blank, None, text), dtype=object)
         return
+    normal = {v: normalise_header(v) for v in distinct}
     norm = np.array(
-        [None if b else normalise_header(v) for v, b in zip(text, blank, strict=True)], dtype=object
+        [None if b else normal[v] for v, b in zip(text, blank, strict=True)], dtype=object
     )
     known = np.isin(norm, np.asarray(spec.choices, dtype=object))
     if spec.kind == "choice":
