@@ -227,7 +227,8 @@ def _sheet_text(sheet: str | None) -> str:
 
 
 def _looks_like_text(path: Path) -> bool:
-    sample = path.read_bytes()[:65536]
+    with path.open("rb") as handle:
+        sample = handle.read(65536)
     if sample[:2] in (b"\xff\xfe", b"\xfe\xff") or sample.startswith(b"\xef\xbb\xbf"):
         return True
     return _control_share(sample.decode("latin-1")) < 0.01
