@@ -564,11 +564,10 @@ def _text_column(
         [None if b else normal[v] for v, b in zip(text, blank, strict=True)], dtype=object
     )
     known = np.isin(norm, np.asarray(spec.choices, dtype=object))
+    bad = ~known & ~blank
     if spec.kind == "choice":
         norm = np.where(blank, spec.default, norm)
-        bad = ~known & ~blank
     else:
-        bad = ~known & ~blank
         fail(blank & ~uncached, spec.name, "blank: the design must be given")
     fail(bad, spec.name, f"unknown {spec.name.replace('_', ' ')}; expected {spec.range_text()}")
     # A rejected value is kept as written so that outputs show what the row said.
