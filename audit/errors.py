@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["AuditError", "ConfigError", "InputError"]
+__all__ = ["AuditError", "ConfigError", "InputError", "OutputError"]
 
 
 class AuditError(Exception):
@@ -17,3 +17,7 @@ class InputError(AuditError):
 
 class ConfigError(AuditError):
     """A rules file or an option is invalid (unknown rule id, unknown parameter, bad value)."""
+
+
+class OutputError(AuditError):
+    """An export cannot be written (a folder, no permission, or the input file itself)."""

@@ -1,7 +1,9 @@
-"""Write an :class:`~audit.pipeline.AuditResult` to files: JSON (the contract) and CSV.
+"""Write an :class:`~audit.pipeline.AuditResult` to files: JSON (the contract), CSV and XLSX.
 
 Files are written atomically: to a temporary file in the target folder, then renamed over the
-target, so an interrupted run never leaves a half-written file where a good one was.
+target, so an interrupted run never leaves a half-written file where a good one was. No export
+may be written over the input file. Text that a spreadsheet program would run as a formula is
+made inert in CSV and XLSX (see :func:`neutralise_formula`).
 """
 
 from __future__ import annotations
@@ -18,10 +20,26 @@ from typing import IO, TYPE_CHECKING
 
 import pandas as pd
 
+from audit.errors import OutputError
+
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
 
-__all__ = ["atomic_output", "neutralise_formula", "studies_frame", "write_csv", "write_json"]
+__all__ = [
+    "CAUTION",
+    "atomic_output",
+    "neutralise_formula",
+    "studies_frame",
+    "write_csv",
+    "write_json",
+]
+
+#: Said wherever results leave the tool in a form that may inform decisions about people.
+CAUTION = (
+    "This audit supports, and does not replace, the judgment of a qualified statistician: "
+    "design-based power and detectable effects depend on the inputs given, and a study's "
+    "context may justify what the numbers question."
+)
 
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 _PLAIN_NUMBER = re.compile(r"^[+-]?(\d[\d,]*\.?\d*|\.\d+)([eE][+-]?\d+)?%?$")
@@ -38,9 +56,17 @@ def atomic_output(path: str | Path, mode: str = "w") -> Iterator[IO]:
         sys.stdout.flush()
         return
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    if target.is_dir():
+        raise OutputError(f"{target} is a folder; give a file name for the export.")
     try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    except OSError as exc:
+        raise OutputError(f"{target}: cannot write here ({exc.strerror or exc}).") from exc
+    try:
+        # mkstemp creates the file readable by its owner only; give the export the mode a
+        # plainly created file would have (or keep the mode of the file it replaces).
+        os.chmod(tmp, target.stat().st_mode & 0o777 if target.exists() else 0o666 & ~_umask())
         encoding = None if "b" in mode else "utf-8"
         newline = None if "b" in mode else ""
         with os.fdopen(fd, mode, encoding=encoding, newline=newline) as handle:
@@ -50,6 +76,25 @@ def atomic_output(path: str | Path, mode: str = "w") -> Iterator[IO]:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+def refuse_input(result: AuditResult, path: str | Path) -> None:
+    """An export must never replace the file that was audited."""
+    source = result.settings.get("source")
+    if str(path) == "-" or not source:
+        return
+    with contextlib.suppress(OSError):
+        if Path(path).exists() and Path(source).exists() and os.path.samefile(path, source):
+            raise OutputError(
+                f"{path} is the input file; choose another name for the export (the input is "
+                "never overwritten)."
+            )
 
 
 def neutralise_formula(value: object) -> object:
@@ -71,6 +116,7 @@ def neutralise_formula(value: object) -> object:
 
 def write_json(result: AuditResult, path: str | Path) -> None:
     """The contract JSON document (DESIGN.md section 5)."""
+    refuse_input(result, path)
     document = result.to_dict()
     with atomic_output(path) as handle:
         json.dump(document, handle, indent=1, ensure_ascii=False, allow_nan=False)
@@ -117,9 +163,15 @@ def studies_frame(result: AuditResult) -> pd.DataFrame:
 
 def write_csv(result: AuditResult, path: str | Path) -> None:
     """The per-study table as CSV, formula-like text made inert."""
+    refuse_input(result, path)
     frame = studies_frame(result)
+    frame.columns = [neutralise_formula(str(c)) for c in frame.columns]
     for c in frame.columns:
         if frame[c].dtype == object or pd.api.types.is_string_dtype(frame[c]):
             frame[c] = frame[c].astype(object).map(neutralise_formula)
     with atomic_output(path) as handle:
         frame.to_csv(handle, index=False, lineterminator="\n")
+
+
+#: Characters XML 1.0 (so a workbook) cannot hold; replaced by U+FFFD when a workbook is written.
+ILLEGAL_XLSX = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f]")

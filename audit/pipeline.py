@@ -178,7 +178,9 @@ def _metric_records(metrics: pd.DataFrame) -> list[dict[str, Any]]:
             obj[~np.isfinite(vals)] = None
             if c in _INTEGER_METRICS:
                 finite = np.isfinite(vals)
-                obj[finite] = vals[finite].astype(np.int64).astype(object)
+                # Python integers: a required size can exceed the int64 range (an effect of
+                # 1e-12 needs about 1e25 units), and JSON integers have no limit.
+                obj[finite] = [int(v) for v in vals[finite].tolist()]
             arrays.append(obj.tolist())
     return (
         [dict(zip(cols, values, strict=True)) for values in zip(*arrays, strict=True)]
@@ -250,6 +252,10 @@ def audit_validated(
         "source": validated.raw.source,
         "sheet": validated.raw.sheet,
         "excess_significance": excess.as_dict(),
+        "header_row": validated.raw.header_row,
+        # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
+        # title rows, merged or repeated headers).
+        "input_notes": list(validated.file_notes),
     }
     return AuditResult(
         table=table,

@@ -3,6 +3,13 @@
 Only the header and the row bookkeeping are interpreted here; cell values stay as the file wrote
 them (text, or numbers for spreadsheet cells) so that :mod:`audit.schema` can report any value it
 rejects exactly as the user typed it.
+
+Files are untrusted: reviewers audit whatever spreadsheets they were sent. The format is decided
+by the file's content, not its name; workbooks are inspected as zip archives before any XML is
+parsed (declared sizes, packing ratio, document type declarations), and every size has a
+documented limit (the ``MAX_*`` constants below). A file that cannot be used at all raises
+:class:`~audit.errors.InputError` with one sentence; a problem confined to some cells is kept as
+data (``RawTable.cell_problems``) for the validation to report as row errors.
 """
 
 from __future__ import annotations
@@ -10,6 +17,9 @@ from __future__ import annotations
 import csv
 import io
 import re
+import warnings
+import zipfile
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -18,11 +28,49 @@ import pandas as pd
 
 from audit.errors import InputError
 
-__all__ = ["RawTable", "normalise_header", "read_table"]
+__all__ = [
+    "MAX_COLUMNS",
+    "MAX_FILE_BYTES",
+    "MAX_PACKING_RATIO",
+    "MAX_ROWS",
+    "MAX_UNPACKED_BYTES",
+    "UNCACHED",
+    "RawTable",
+    "normalise_header",
+    "raw_from_frame",
+    "read_table",
+]
 
-#: Text files are read with the first encoding that decodes them.
-_ENCODINGS = ("utf-8-sig", "utf-16", "cp1252", "latin-1")
+#: Most study rows a file may hold (blank rows are not counted).
+MAX_ROWS = 1_000_000
+#: Most columns a table may have (a column counts when its header or any cell is filled).
+MAX_COLUMNS = 1_000
+#: Largest file read, in bytes (text files and workbooks alike).
+MAX_FILE_BYTES = 512 * 2**20
+#: Largest total uncompressed size a workbook's zip directory may declare.
+MAX_UNPACKED_BYTES = 2**30
+#: Largest uncompressed / compressed ratio of a workbook part larger than 1 MiB. Spreadsheet
+#: programs' sheets pack about 5-20 to 1 (even a sheet of one repeated value: 17 to 1); a zip bomb
+#: packs about 1000 to 1.
+MAX_PACKING_RATIO = 100
+_RATIO_FROM_BYTES = 2**20
+#: Most parts (files) a workbook archive may hold.
+MAX_ARCHIVE_MEMBERS = 10_000
+#: The header row is looked for among this many non-blank rows at the top of a sheet.
+HEADER_SEARCH_ROWS = 20
+
 _DELIMITERS = ",;\t|"
+_ZIP_MAGIC = b"PK\x03\x04"
+_EMPTY_ZIP_MAGIC = b"PK\x05\x06"
+_OLE_MAGIC = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
+# Markup that starts a document type declaration (entity definitions, external references).
+# Spreadsheet programs never write one in a workbook part, and text in cells is escaped (&lt;),
+# so finding one means the file was crafted.
+_DTD_MARKERS = tuple(
+    marker.encode(encoding)
+    for marker in ("<!DOCTYPE", "<!ENTITY")
+    for encoding in ("utf-8", "utf-16-le", "utf-16-be")
+)
 
 
 @dataclass
@@ -32,13 +80,22 @@ class RawTable:
     Attributes
     ----------
     data : one column per header, cells as written (str, int, float, or None for empty).
-        Columns are named by :func:`normalise_header` of the header text.
-    rows : the spreadsheet row number of each data row (the header is row 1).
-    headers : normalised name -> header text as written in the file.
+        Columns are named by :func:`normalise_header` of the header text; a second column whose
+        header means the same gets the name ``<name>__<position>`` (see ``duplicates``).
+    rows : the spreadsheet row number of each data row (the header is row 1 unless title rows
+        stand above it).
+    headers : column name -> header text as written in the file.
     source : the path read, or a description of the object given.
     sheet : the worksheet read, for spreadsheets.
     decimal_comma : True when numbers in the file use a decimal comma (``;``-separated text).
     blank_rows : spreadsheet numbers of rows skipped because every cell was empty.
+    header_row : spreadsheet number of the header row.
+    duplicates : column name -> the names of later columns whose header means the same.
+    notes : sentences about the file as a whole (encoding assumed, title rows, merged headers).
+    row_notes : ``(position, text)`` about one data row (a hidden row, a merged cell).
+    cell_problems : ``(position, column, reason)`` for cells the reader found damaged; the
+        validation turns them into row errors.
+    source_columns : for each column of ``data``, its 0-based column index in the file.
     """
 
     data: pd.DataFrame
@@ -48,6 +105,12 @@ class RawTable:
     sheet: str | None = None
     decimal_comma: bool = False
     blank_rows: list[int] = field(default_factory=list)
+    header_row: int = 1
+    duplicates: dict[str, list[str]] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    row_notes: list[tuple[int, str]] = field(default_factory=list)
+    cell_problems: list[tuple[int, str, str]] = field(default_factory=list)
+    source_columns: list[int] = field(default_factory=list)
 
 
 def normalise_header(text: object) -> str:
@@ -62,108 +125,521 @@ def normalise_header(text: object) -> str:
     return re.sub(r"[\s\-_]+", "_", s).strip("_")
 
 
+@dataclass
+class _Sheet:
+    """Cells of one sheet as rows of values, with what the file says about rows and merges."""
+
+    cells: list[list[object]]
+    #: Spreadsheet row number (1-based) of each entry of ``cells``.
+    numbers: list[int]
+    hidden: set[int] = field(default_factory=set)
+    #: Merged ranges as (first row, first column, last row, last column), 1-based, inclusive.
+    merges: list[tuple[int, int, int, int]] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    name: str | None = None
+
+
 def read_table(path: str | Path, sheet: str | None = None) -> RawTable:
-    """Read ``path`` (.xlsx, .csv, .tsv or .txt) into a :class:`RawTable`.
+    """Read ``path`` (an .xlsx workbook, or .csv/.tsv/.txt text) into a :class:`RawTable`.
+
+    The format is recognised from the content: a workbook named ``.csv`` is read as a workbook,
+    and a text file named ``.xlsx`` as text (with a note). ``sheet`` names the worksheet; by
+    default the first visible one is read.
 
     Raises
     ------
     InputError
-        The file is missing, unreadable, empty or has no header.
+        The file is missing, unreadable, empty, has no study rows, exceeds a documented limit
+        or is refused as unsafe.
     """
     path = Path(path)
     if not path.exists():
         raise InputError(f"{path}: no such file.")
     if path.is_dir():
         raise InputError(f"{path} is a folder; give a .xlsx, .csv or .tsv file.")
+    try:
+        size = path.stat().st_size
+        if size > MAX_FILE_BYTES:
+            raise InputError(
+                f"{path}: the file is {size / 2**20:.0f} MiB, more than the limit of "
+                f"{MAX_FILE_BYTES // 2**20} MiB; split the portfolio into smaller files."
+            )
+        with path.open("rb") as handle:
+            head = handle.read(8)
+    except OSError as exc:
+        raise InputError(f"{path}: the file could not be opened ({exc.strerror or exc}).") from exc
     suffix = path.suffix.lower()
-    if suffix in (".xlsx", ".xlsm"):
-        cells, sheet_name = _read_xlsx(path, sheet)
-        return _to_raw(cells, str(path), sheet_name, decimal_comma=False)
-    if suffix == ".xls":
-        raise InputError(
-            f"{path}: legacy .xls workbooks are not read; save it as .xlsx or .csv and try again."
+    if not size:
+        raise InputError(f"{path}: the file is empty.")
+    if head.startswith(_OLE_MAGIC):
+        raise InputError(_ole_message(path))
+    if head.startswith((_ZIP_MAGIC, _EMPTY_ZIP_MAGIC)):
+        found = _read_xlsx(path, sheet)
+        table = _to_raw(found, str(path), found.name, decimal_comma=False)
+        if suffix not in (".xlsx", ".xlsm", ".xltx", ".xltm"):
+            table.notes.insert(
+                0, f"the file is named '{path.name}' but is an .xlsx workbook; it was read as one"
+            )
+        return _require_rows(table)
+    if suffix in (".xlsx", ".xlsm", ".xls", ".ods", ".xlsb"):
+        if not _looks_like_text(path):
+            raise InputError(
+                f"{path}: named '{suffix}' but neither an .xlsx workbook nor text: the file "
+                "is damaged or truncated (a workbook is a zip archive; this one has no zip "
+                "signature); save it again from the spreadsheet program."
+            )
+    if sheet is not None:
+        raise InputError(f"{path}: --sheet applies to .xlsx workbooks, not to text files.")
+    text, note = _decode(path)
+    delimiter = "\t" if suffix == ".tsv" else _sniff_delimiter(text)
+    cells, problems = _parse_delimited(text, delimiter, path)
+    table = _to_raw(
+        _Sheet(cells, list(range(1, len(cells) + 1))),
+        str(path),
+        None,
+        decimal_comma=delimiter == ";",
+    )
+    if suffix in (".xlsx", ".xlsm", ".xls", ".ods", ".xlsb"):
+        table.notes.insert(
+            0, f"the file is named '{suffix}' but is plain text; it was read as delimited text"
         )
-    if suffix in (".csv", ".tsv", ".txt", ""):
-        if sheet is not None:
-            raise InputError(f"{path}: --sheet applies to .xlsx workbooks, not to text files.")
-        text = _decode(path)
-        delimiter = "\t" if suffix == ".tsv" else _sniff_delimiter(text)
-        cells = _parse_delimited(text, delimiter)
-        return _to_raw(cells, str(path), None, decimal_comma=delimiter == ";")
-    raise InputError(f"{path}: unsupported file type '{suffix}'; expected .xlsx, .csv or .tsv.")
+    if note:
+        table.notes.insert(0, note)
+    table.cell_problems.extend(_map_problems(problems, table))
+    return _require_rows(table)
 
 
-def _decode(path: Path) -> str:
+def _require_rows(table: RawTable) -> RawTable:
+    if not len(table.data):
+        blank = f" ({len(table.blank_rows)} blank)" if table.blank_rows else ""
+        raise InputError(
+            f"{table.source}{_sheet_text(table.sheet)}: a header row (row {table.header_row}) "
+            f"but no study rows below it{blank}; nothing to audit."
+        )
+    return table
+
+
+def _sheet_text(sheet: str | None) -> str:
+    return f" (sheet '{sheet}')" if sheet else ""
+
+
+# -- text files ---------------------------------------------------------------------------------
+
+
+def _looks_like_text(path: Path) -> bool:
+    with path.open("rb") as handle:
+        sample = handle.read(65536)
+    if sample[:2] in (b"\xff\xfe", b"\xfe\xff") or sample.startswith(b"\xef\xbb\xbf"):
+        return True
+    return _control_share(sample.decode("latin-1")) < 0.01
+
+
+def _control_share(text: str) -> float:
+    """Share of control characters other than tab, line feed, carriage return and form feed."""
+    if not text:
+        return 0.0
+    bad = sum(1 for ch in text if ord(ch) < 32 and ch not in "\t\n\r\f")
+    return bad / len(text)
+
+
+def _decode(path: Path) -> tuple[str, str | None]:
+    """The file's text and, when it was not UTF-8, a note naming the encoding assumed."""
     data = path.read_bytes()
+    text: str | None = None
+    note: str | None = None
+    sample = data[:4096]
+    even, odd = sample[0::2], sample[1::2]
     if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
-        return data.decode("utf-16")
-    for encoding in _ENCODINGS:
-        if encoding == "utf-16":
-            continue  # only with a byte-order mark (above); otherwise it decodes anything
-        try:
-            return data.decode(encoding)
-        except UnicodeDecodeError:
-            continue
-    raise InputError(f"{path}: the text encoding could not be recognised; save it as UTF-8.")
+        text = _try(data, "utf-16")
+    elif odd and odd.count(0) > 0.4 * len(odd) and even.count(0) < 0.1 * len(even):
+        # UTF-16 without a byte-order mark: every other byte of ASCII text is zero.
+        text, note = _try(data, "utf-16-le"), "read as UTF-16 text (no byte-order mark)"
+    elif even and even.count(0) > 0.4 * len(even) and odd.count(0) < 0.1 * len(odd):
+        text, note = _try(data, "utf-16-be"), "read as UTF-16 text (no byte-order mark)"
+    elif data.startswith(b"\xef\xbb\xbf") or _try(data, "utf-8") is not None:
+        text = _try(data, "utf-8-sig")
+    else:
+        for encoding, label in (("cp1252", "Windows-1252"), ("latin-1", "Latin-1")):
+            text = _try(data, encoding)
+            if text is not None:
+                note = (
+                    f"the file is not UTF-8; it was read as {label} text (check accented "
+                    "letters in the exports)"
+                )
+                break
+    if text is None:
+        raise InputError(f"{path}: the text encoding could not be recognised; save it as UTF-8.")
+    if _control_share(text[:65536]) >= 0.01:
+        raise InputError(
+            f"{path}: the file is not a text table (it holds binary data); give an .xlsx, "
+            ".csv or .tsv file."
+        )
+    return text, note
+
+
+def _try(data: bytes, encoding: str) -> str | None:
+    try:
+        return data.decode(encoding)
+    except UnicodeDecodeError:
+        return None
 
 
 def _sniff_delimiter(text: str) -> str:
-    sample = "\n".join(text.splitlines()[:50])
+    lines = text.splitlines()
+    # The header line names study_id and design: its separator is the file's, whatever title
+    # lines (with their own commas or colons) stand above it.
+    for line in lines[:HEADER_SEARCH_ROWS]:
+        low = line.lower()
+        if "study" in low and "design" in low:
+            counts = {d: line.count(d) for d in _DELIMITERS}
+            best = max(counts, key=lambda d: counts[d])
+            if counts[best]:
+                return best
+    sample = "\n".join(lines[:50])
     try:
         return csv.Sniffer().sniff(sample, delimiters=_DELIMITERS).delimiter
     except csv.Error:
         header = sample.splitlines()[0] if sample else ""
         counts = {d: header.count(d) for d in _DELIMITERS}
-        best = max(counts, key=counts.get)
+        best = max(counts, key=lambda d: counts[d])
         return best if counts[best] else ","
 
 
-def _parse_delimited(text: str, delimiter: str) -> list[list[object]]:
-    # The csv module keeps quoted fields intact and, unlike pandas' default, keeps blank lines, so
-    # the record number is the row number a spreadsheet program shows for the same file.
+def _parse_delimited(
+    text: str, delimiter: str, source: object
+) -> tuple[list[list[object]], list[tuple[int, int, str]]]:
+    """Records of the text, and ``(record index, field index, reason)`` for suspect fields.
+
+    The csv module keeps quoted fields intact and, unlike pandas' default, keeps blank lines, so
+    the record number is the row number a spreadsheet program shows for the same file.
+    """
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    quoted = '"' in text
+    records: list[list[object]] = []
+    problems: list[tuple[int, int, str]] = []
     try:
-        return [list(record) for record in reader]
+        for record in reader:
+            if len(records) > MAX_ROWS + HEADER_SEARCH_ROWS and any(record):
+                raise InputError(_too_many_rows(source))
+            if len(record) > MAX_COLUMNS and any(record[MAX_COLUMNS:]):
+                raise InputError(_too_many_columns(source, len(record)))
+            # A line break plus the separator inside one cell is what an unbalanced quote mark
+            # produces: the lines up to the next quote mark are swallowed into the cell. (One
+            # test per record first: cells with line breaks are rare.)
+            if quoted and ("\n" in (joined := "".join(record)) or "\r" in joined):
+                problems.extend(_swallowed(record, delimiter, len(records)))
+            records.append(record)
     except csv.Error as exc:
-        raise InputError(f"the file could not be parsed as delimited text: {exc}.") from exc
+        raise InputError(
+            f"{source}: the file could not be read as delimited text near record "
+            f"{len(records) + 1} ({exc}); check quote marks there."
+        ) from exc
+    return records, problems
 
 
-def _read_xlsx(path: Path, sheet: str | None) -> tuple[list[list[object]], str]:
-    import zipfile
+def _swallowed(record: list[str], delimiter: str, index: int) -> list[tuple[int, int, str]]:
+    out = []
+    for j, value in enumerate(record):
+        if ("\n" in value or "\r" in value) and delimiter in value:
+            lines = len(value.splitlines())
+            out.append(
+                (
+                    index,
+                    j,
+                    f"the cell runs over {lines} lines and contains the separator "
+                    f"'{delimiter}': a quote mark is probably unbalanced, and the lines "
+                    "after it were read into this cell; fix the quotes in the file",
+                )
+            )
+    return out
 
+
+def _map_problems(
+    problems: list[tuple[int, int, str]], table: RawTable
+) -> list[tuple[int, str, str]]:
+    """Reader problems by record -> (position, column name, reason) for data rows."""
+    if not problems:
+        return []
+    pos_of_row = {int(r): i for i, r in enumerate(table.rows)}
+    column_of = {j: k for k, j in enumerate(table.source_columns)}
+    names = list(table.data.columns)
+    out = []
+    for record, j, reason in problems:
+        pos = pos_of_row.get(record + 1)
+        k = column_of.get(j)
+        if pos is not None and k is not None:
+            out.append((pos, names[k], reason))
+        elif record + 1 == table.header_row:
+            table.notes.append(f"header cell {_column_letter(j)}: {reason}")
+    return out
+
+
+def _too_many_rows(source: object) -> str:
+    return (
+        f"{source}: the table has more than {MAX_ROWS:,} study rows, the most one run reads; "
+        "split the portfolio into smaller files."
+    )
+
+
+def _too_many_columns(source: object, count: int) -> str:
+    return (
+        f"{source}: the table has {count:,} columns, more than the limit of {MAX_COLUMNS:,}; "
+        "remove unused columns."
+    )
+
+
+# -- workbooks ----------------------------------------------------------------------------------
+
+
+def _ole_message(path: Path) -> str:
+    """An OLE2 compound file: a password-protected workbook or a legacy .xls one."""
+    data = path.read_bytes()
+    if (
+        "EncryptionInfo".encode("utf-16-le") in data
+        or "EncryptedPackage".encode("utf-16-le") in data
+    ):
+        return (
+            f"{path}: the workbook is password-protected (encrypted); open it in the spreadsheet "
+            "program, save a copy without a password, and audit that copy."
+        )
+    return (
+        f"{path}: this is a legacy Excel 97-2003 (.xls) workbook, which is not read; save it as "
+        ".xlsx or .csv and try again."
+    )
+
+
+def _check_archive(path: Path, archive: zipfile.ZipFile) -> None:
+    """Refuse a workbook archive whose declared sizes or contents are hostile.
+
+    The sizes checked are those the zip directory declares. Python's zipfile never inflates a
+    part beyond its declared size (a part that tries fails its CRC check), so a check of the
+    declared sizes bounds what is ever unpacked.
+    """
+    infos = archive.infolist()
+    if len(infos) > MAX_ARCHIVE_MEMBERS:
+        raise InputError(
+            f"{path}: the workbook archive holds {len(infos):,} parts, more than the limit of "
+            f"{MAX_ARCHIVE_MEMBERS:,}; it is not a normal spreadsheet."
+        )
+    total = sum(info.file_size for info in infos)
+    if total > MAX_UNPACKED_BYTES:
+        raise InputError(
+            f"{path}: the workbook would unpack to {total / 2**20:,.0f} MiB, more than the limit "
+            f"of {MAX_UNPACKED_BYTES // 2**20:,} MiB; refused (a compressed file this large is "
+            "either a zip bomb or too big to audit in one run)."
+        )
+    for info in infos:
+        if info.file_size > _RATIO_FROM_BYTES:
+            ratio = info.file_size / max(info.compress_size, 1)
+            if ratio > MAX_PACKING_RATIO:
+                raise InputError(
+                    f"{path}: the workbook part '{info.filename}' unpacks {ratio:,.0f} times its "
+                    f"packed size (limit {MAX_PACKING_RATIO}); refused as a probable zip bomb."
+                )
+    names = {info.filename for info in infos}
+    if "xl/workbook.xml" not in names and not any(n.endswith("workbook.xml") for n in names):
+        kind = "an OpenDocument spreadsheet" if "content.xml" in names else "a zip archive"
+        raise InputError(
+            f"{path}: {kind}, not an .xlsx workbook; save it as .xlsx or .csv and try again."
+        )
+    for info in infos:
+        if info.filename.endswith((".xml", ".rels", ".vml")) and _has_dtd(archive, info):
+            raise InputError(
+                f"{path}: the workbook part '{info.filename}' declares a document type "
+                "(entity definitions or external references), which spreadsheet programs never "
+                "write; refused as unsafe."
+            )
+
+
+def _has_dtd(archive: zipfile.ZipFile, info: zipfile.ZipInfo) -> bool:
+    overlap = max(len(m) for m in _DTD_MARKERS)
+    tail = b""
+    with archive.open(info) as part:
+        while chunk := part.read(2**20):
+            window = tail + chunk
+            if any(marker in window for marker in _DTD_MARKERS):
+                return True
+            tail = window[-overlap:]
+    return False
+
+
+def _read_xlsx(path: Path, sheet: str | None) -> _Sheet:
+    """Cells of one worksheet, after the archive checks; see :func:`_check_archive`."""
     from openpyxl import load_workbook
 
-    try:
-        book = load_workbook(path, read_only=True, data_only=False)
-    except (zipfile.BadZipFile, KeyError, OSError, ValueError) as exc:
-        raise InputError(f"{path}: not a readable .xlsx workbook ({exc}).") from exc
-    try:
-        names = book.sheetnames
-        if sheet is None:
-            sheet_name = names[0]
-        elif sheet in names:
-            sheet_name = sheet
-        else:
+    with path.open("rb") as handle:
+        try:
+            archive = zipfile.ZipFile(handle)
+        except (zipfile.BadZipFile, OSError, ValueError, EOFError) as exc:
+            raise InputError(
+                f"{path}: the workbook is damaged or truncated ({exc}); save it again from the "
+                "spreadsheet program."
+            ) from exc
+        with archive:
+            try:
+                _check_archive(path, archive)
+            except (
+                zipfile.BadZipFile,
+                zipfile.LargeZipFile,
+                zlib.error,
+                OSError,
+                EOFError,
+                ValueError,
+                RuntimeError,  # a part encrypted with a zip password
+                NotImplementedError,  # a compression method zipfile does not know
+            ) as exc:
+                raise InputError(
+                    f"{path}: the workbook is damaged or truncated ({exc}); save it again."
+                ) from exc
+        handle.seek(0)
+        try:
+            with warnings.catch_warnings():
+                # openpyxl warns about features it drops (data validation, styles); reading
+                # values does not need them.
+                warnings.simplefilter("ignore")
+                book = load_workbook(handle, read_only=True, data_only=True)
+        except Exception as exc:  # a hostile or damaged file can fail anywhere in the parser
+            raise InputError(_workbook_failure(path, exc)) from exc
+        try:
+            return _read_sheet(path, book, sheet)
+        finally:
+            book.close()
+
+
+def _workbook_failure(path: Path, exc: Exception) -> str:
+    from defusedxml import DefusedXmlException
+
+    # openpyxl wraps parser errors in its own; defusedxml's refusal is found down the chain.
+    cause: BaseException | None = exc
+    while cause is not None:
+        if isinstance(cause, DefusedXmlException):
+            return (
+                f"{path}: the workbook declares XML entities or external references; refused "
+                "as unsafe."
+            )
+        cause = cause.__cause__ or cause.__context__
+    detail = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    if len(detail) > 120:
+        detail = detail[:117] + "..."
+    return (
+        f"{path}: the workbook could not be read ({detail}); it may be damaged: open and save it "
+        "again in the spreadsheet program."
+    )
+
+
+def _read_sheet(path: Path, book: object, sheet: str | None) -> _Sheet:
+    from openpyxl.worksheet._read_only import ReadOnlyWorksheet
+
+    worksheets = [ws for ws in book.worksheets if isinstance(ws, ReadOnlyWorksheet)]  # type: ignore[attr-defined]
+    names = [ws.title for ws in worksheets]
+    if not worksheets:
+        raise InputError(f"{path}: the workbook has no worksheet with cells.")
+    notes: list[str] = []
+    if sheet is None:
+        visible = [ws for ws in worksheets if getattr(ws, "sheet_state", "visible") == "visible"]
+        ws = visible[0] if visible else worksheets[0]
+        if ws is not worksheets[0]:
+            notes.append(
+                f"the first sheet '{worksheets[0].title}' is hidden; the first visible sheet "
+                f"'{ws.title}' was read (use --sheet to choose)"
+            )
+        others = [n for n in names if n != ws.title]
+        if others:
+            notes.append(
+                f"the workbook has {len(names)} sheets; '{ws.title}' was read, not "
+                + ", ".join(f"'{n}'" for n in others)
+                + " (use --sheet to choose)"
+            )
+    else:
+        matches = [w for w in worksheets if w.title == sheet] or [
+            w for w in worksheets if w.title.strip().lower() == sheet.strip().lower()
+        ]
+        if not matches:
             raise InputError(
                 f"{path}: no sheet named '{sheet}'; the sheets are: {', '.join(names)}."
             )
-        ws = book[sheet_name]
-        cells: list[list[object]] = []
-        formulas: list[tuple[int, int]] = []
-        for i, row in enumerate(ws.iter_rows()):
-            values = []
-            for j, cell in enumerate(row):
-                if getattr(cell, "data_type", None) == "f":
-                    formulas.append((i, j))
-                    values.append(None)
-                else:
-                    values.append(cell.value)
+        ws = matches[0]
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            found = _parse_worksheet(path, book, ws)
+    except InputError:
+        raise
+    except Exception as exc:  # damaged sheet XML: any parser error means the same to the user
+        raise InputError(_workbook_failure(path, exc)) from exc
+    found.notes[:0] = notes
+    found.name = ws.title
+    return found
+
+
+def _parse_worksheet(path: Path, book: object, ws: object) -> _Sheet:
+    """Rows of a worksheet with hidden rows and merged ranges, in one pass over its XML.
+
+    openpyxl's read-only worksheet trusts the sheet's declared dimensions (rows past a wrong
+    ``<dimension>`` would be dropped, and a huge one pads every row) and does not report hidden
+    rows or merged cells; its sheet parser does all of that, and is used directly here.
+    """
+    from openpyxl.worksheet._reader import FORMULA_TAG, WorkSheetParser
+
+    class _Parser(WorkSheetParser):
+        def parse_cell(self, element):  # type: ignore[no-untyped-def]
+            cell = super().parse_cell(element)
+            if cell["value"] is None and element.find(FORMULA_TAG) is not None:
+                cell["value"] = UNCACHED
+            return cell
+
+    cells: list[list[object]] = []
+    numbers: list[int] = []
+    studies = 0
+    with book._archive.open(ws._worksheet_path) as source:  # type: ignore[attr-defined]
+        parser = _Parser(
+            source,
+            ws._shared_strings,  # type: ignore[attr-defined]
+            data_only=True,
+            epoch=book.epoch,  # type: ignore[attr-defined]
+            date_formats=book._date_formats,  # type: ignore[attr-defined]
+            timedelta_formats=book._timedelta_formats,  # type: ignore[attr-defined]
+        )
+        for number, row in parser.parse():
+            # Styled but empty cells (formatting applied to a whole column) are not data.
+            filled = {c["column"]: c["value"] for c in row if c["value"] is not None}
+            if not filled:
+                continue
+            width = max(filled)
+            if width > MAX_COLUMNS:
+                raise InputError(_too_many_columns(path, width))
+            values: list[object] = [None] * width
+            for column, value in filled.items():
+                values[column - 1] = value
+            studies += 1
+            if studies > MAX_ROWS + HEADER_SEARCH_ROWS:
+                raise InputError(_too_many_rows(path))
             cells.append(values)
-    finally:
-        book.close()
-    if formulas:
-        _fill_cached_values(path, sheet_name, cells, formulas)
-    return cells, sheet_name
+            numbers.append(int(number))
+        hidden = {
+            int(r)
+            for r, attrs in parser.row_dimensions.items()
+            if str(attrs.get("hidden", "0")).lower() in ("1", "true")
+        }
+        merges: list[tuple[int, int, int, int]] = []
+        if parser.merged_cells is not None:
+            for merged in parser.merged_cells.mergeCell:
+                bounds = _range_bounds(merged.ref)
+                if bounds is not None:
+                    merges.append(bounds)
+    return _Sheet(cells, numbers, hidden, merges)
+
+
+def _range_bounds(ref: str) -> tuple[int, int, int, int] | None:
+    from openpyxl.utils.cell import range_boundaries
+
+    try:
+        min_col, min_row, max_col, max_row = range_boundaries(ref)
+    except (ValueError, TypeError):
+        return None
+    if None in (min_col, min_row, max_col, max_row):
+        return None
+    return int(min_row), int(min_col), int(max_row), int(max_col)
 
 
 class _Uncached:
@@ -176,44 +652,122 @@ class _Uncached:
 UNCACHED = _Uncached()
 
 
-def _fill_cached_values(
-    path: Path, sheet_name: str, cells: list[list[object]], formulas: list[tuple[int, int]]
-) -> None:
-    """Replace formula cells by the value the spreadsheet program last computed and saved."""
-    from openpyxl import load_workbook
-
-    book = load_workbook(path, read_only=True, data_only=True)
-    try:
-        wanted = set(formulas)
-        for i, row in enumerate(book[sheet_name].iter_rows(values_only=True)):
-            for j, value in enumerate(row):
-                if (i, j) in wanted:
-                    cells[i][j] = UNCACHED if value is None else value
-    finally:
-        book.close()
+# -- from cells to a table ----------------------------------------------------------------------
 
 
 def _is_blank(value: object) -> bool:
     return value is None or (isinstance(value, str) and not value.strip())
 
 
-def _to_raw(
-    cells: list[list[object]], source: str, sheet: str | None, *, decimal_comma: bool
-) -> RawTable:
-    # The header is the first row with anything in it; rows above it are not part of the table.
-    header_index = next(
-        (i for i, row in enumerate(cells) if any(not _is_blank(v) for v in row)), None
+def _find_header(sheet: _Sheet) -> int | None:
+    """Index in ``sheet.cells`` of the header row.
+
+    The header is the first row naming both ``study_id`` and ``design`` among the first
+    ``HEADER_SEARCH_ROWS`` non-blank rows (title lines may stand above it); failing that, the
+    first non-blank row (the validation then says which required column is missing).
+    """
+    first = None
+    seen = 0
+    for i, row in enumerate(sheet.cells):
+        if all(_is_blank(v) for v in row):
+            continue
+        if first is None:
+            first = i
+        names = {normalise_header(v) for v in row if not _is_blank(v)}
+        if {"study_id", "design"} <= names:
+            return i
+        seen += 1
+        if seen >= HEADER_SEARCH_ROWS:
+            break
+    return first
+
+
+def _header_texts(sheet: _Sheet, h: int, width: int) -> tuple[list[object], int, list[str]]:
+    """Header text per column, the number of header rows (1 or 2), and notes.
+
+    A header cell merged across several columns names a group. When the row below holds text
+    only under such groups, the two rows form one header ("Planned" over "n1" gives
+    "Planned n1"); otherwise the columns a merged header cell covers have no header of their own.
+    """
+    number = sheet.numbers[h]
+    header = list(sheet.cells[h]) + [None] * (width - len(sheet.cells[h]))
+    across = [m for m in sheet.merges if m[0] == number and m[3] > m[1]]
+    if not across:
+        return header, 1, []
+    notes: list[str] = []
+    group = {}
+    for _r0, c0, _r1, c1 in across:
+        for c in range(c0, c1 + 1):
+            group[c - 1] = header[c0 - 1] if c0 - 1 < len(header) else None
+    below_index = h + 1
+    below = (
+        list(sheet.cells[below_index]) + [None] * width
+        if below_index < len(sheet.cells) and sheet.numbers[below_index] == number + 1
+        else None
     )
-    if header_index is None:
-        raise InputError(f"{source}: the file is empty.")
-    header = cells[header_index]
-    width = max(len(r) for r in cells[header_index:])
+    if below is not None:
+        filled = [j for j in range(width) if not _is_blank(below[j])]
+        keys = {j for j in range(width) if normalise_header(header[j]) in ("study_id", "design")}
+        # Sub-headings are text, and stand where no study could: a study row always fills its
+        # study_id and design cells.
+        if filled and all(isinstance(below[j], str) for j in filled) and not keys & set(filled):
+            names = []
+            for j in range(width):
+                top = group.get(j, header[j])
+                bottom = below[j]
+                parts = [str(p).strip() for p in (top, bottom) if not _is_blank(p)]
+                names.append(" ".join(parts) if parts else None)
+            notes.append(
+                f"rows {number} and {number + 1} form the header: a merged group title over "
+                "sub-headings (e.g. "
+                + ", ".join(f"'{names[j]}'" for j in filled[:2] if names[j] is not None)
+                + ")"
+            )
+            return names, 2, notes
+    for _r0, c0, _r1, c1 in across:
+        letters = f"{_column_letter(c0 - 1)}{number}:{_column_letter(c1 - 1)}{number}"
+        notes.append(
+            f"the header cell {letters} is merged across {c1 - c0 + 1} columns; only its first "
+            f"column is named '{header[c0 - 1]}', the others have no header of their own"
+        )
+    return header, 1, notes
+
+
+def _to_raw(
+    sheet: _Sheet,
+    source: str,
+    sheet_name: str | None,
+    *,
+    decimal_comma: bool,
+    header_index: int | None = None,
+) -> RawTable:
+    cells = sheet.cells
+    h = _find_header(sheet) if header_index is None else header_index
+    if h is None:
+        raise InputError(
+            f"{source}{_sheet_text(sheet_name)}: the file is empty (no cell holds anything)."
+        )
+    width = max((len(r) for r in cells[h:]), default=0)
+    header, header_rows, notes = _header_texts(sheet, h, width)
+    notes = list(sheet.notes) + notes
+    header_number = sheet.numbers[h]
+    titles = [sheet.numbers[i] for i in range(h) if not all(_is_blank(v) for v in cells[i])]
+    if titles:
+        notes.append(
+            f"the header is on row {header_number}; "
+            + ("row " if len(titles) == 1 else "rows ")
+            + ", ".join(str(t) for t in titles)
+            + " above it "
+            + ("was" if len(titles) == 1 else "were")
+            + " read as a title, not as studies"
+        )
+    body = cells[h + header_rows :]
+    body_numbers = sheet.numbers[h + header_rows :]
     # Columns with neither header nor data (stray empty columns) are dropped; a column with data
     # but no header gets a name from its letter so that nothing is lost.
     names: list[str] = []
     written: list[str] = []
     keep: list[int] = []
-    body = cells[header_index + 1 :]
     for j in range(width):
         text = header[j] if j < len(header) else None
         if _is_blank(text):
@@ -222,40 +776,89 @@ def _to_raw(
             text = f"column {_column_letter(j)}"
         keep.append(j)
         written.append(str(text).strip())
-        names.append(normalise_header(text))
+        names.append(normalise_header(text) or f"column_{_column_letter(j).lower()}")
+    if len(keep) > MAX_COLUMNS:
+        raise InputError(_too_many_columns(source, len(keep)))
     seen: dict[str, int] = {}
+    duplicates: dict[str, list[str]] = {}
     for k, name in enumerate(names):
         if name in seen:
-            # Two headers that mean the same column: the second keeps its written form, made
-            # unique, so it is carried through but never read as the contract column.
+            # Two headers that mean the same column: the second is carried under a unique name
+            # and the validation compares it with the first (see RawTable.duplicates).
             first = written[seen[name]]
             names[k] = f"{name}__{k + 1}"
             written[k] = f"{written[k]} (duplicate of '{first}')"
+            duplicates.setdefault(name, []).append(names[k])
         else:
             seen[name] = k
     data_rows: list[list[object]] = []
     numbers: list[int] = []
     blank: list[int] = []
-    for offset, row in enumerate(body):
-        spreadsheet_row = header_index + 2 + offset
+    last = header_number + header_rows - 1
+    for row, spreadsheet_row in zip(body, body_numbers, strict=True):
+        # Rows the sheet does not store at all (a gap in an .xlsx) are blank rows too.
+        blank.extend(range(last + 1, spreadsheet_row))
+        last = spreadsheet_row
         values = [row[j] if j < len(row) else None for j in keep]
         if all(_is_blank(v) for v in values):
             blank.append(spreadsheet_row)
             continue
         data_rows.append(values)
         numbers.append(spreadsheet_row)
+    if len(data_rows) > MAX_ROWS:
+        raise InputError(_too_many_rows(source))
     frame = pd.DataFrame(data_rows, columns=names, dtype=object)
     if not len(data_rows):
         frame = pd.DataFrame({name: pd.Series(dtype=object) for name in names})
-    return RawTable(
+    table = RawTable(
         data=frame,
         rows=np.asarray(numbers, dtype=int),
         headers=dict(zip(names, written, strict=True)),
         source=source,
-        sheet=sheet,
+        sheet=sheet_name,
         decimal_comma=decimal_comma,
         blank_rows=blank,
+        header_row=header_number,
+        duplicates=duplicates,
+        notes=notes,
+        source_columns=keep,
     )
+    table.row_notes.extend(_sheet_row_notes(sheet, numbers, keep, names, header_number))
+    return table
+
+
+def _sheet_row_notes(
+    sheet: _Sheet, numbers: list[int], keep: list[int], names: list[str], header_number: int
+) -> list[tuple[int, str]]:
+    """Notes on data rows that are hidden, or hold cells covered by a merged range."""
+    if not sheet.hidden and not sheet.merges:
+        return []
+    pos_of_row = {r: i for i, r in enumerate(numbers)}
+    out: list[tuple[int, str]] = []
+    for r in sorted(sheet.hidden):
+        if r in pos_of_row:
+            out.append(
+                (pos_of_row[r], "the row is hidden in the workbook; it was audited like any other")
+            )
+    column_of = {j + 1: names[k] for k, j in enumerate(keep)}
+    for r0, c0, r1, c1 in sheet.merges:
+        anchor = f"{_column_letter(c0 - 1)}{r0}"
+        span = f"{anchor}:{_column_letter(c1 - 1)}{r1}"
+        for r in range(max(r0, header_number + 1), r1 + 1):
+            if r not in pos_of_row:
+                continue
+            covered = [
+                column_of[c] for c in range(c0, c1 + 1) if c in column_of and (r, c) != (r0, c0)
+            ]
+            if covered:
+                out.append(
+                    (
+                        pos_of_row[r],
+                        f"{', '.join(covered)}: covered by the merged cell {span}, so blank in "
+                        f"the file (a merged range keeps only the value of {anchor})",
+                    )
+                )
+    return out
 
 
 def _column_letter(index: int) -> str:
@@ -273,4 +876,5 @@ def raw_from_frame(df: pd.DataFrame, source: str = "<DataFrame>") -> RawTable:
     cells: list[list[object]] = [list(df.columns)]
     values = df.astype(object).where(df.notna(), None).to_numpy().tolist()
     cells.extend(values)
-    return _to_raw(cells, source, None, decimal_comma=False)
+    numbers = list(range(1, len(cells) + 1))
+    return _to_raw(_Sheet(cells, numbers), source, None, decimal_comma=False, header_index=0)

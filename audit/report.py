@@ -142,6 +142,7 @@ class Overview:
     invalid_rows: list[tuple[int, str, list[str]]]
     problems: list[tuple[str, str, str]] = field(default_factory=list)
     results_lines: list[str] = field(default_factory=list)
+    input_notes: list[str] = field(default_factory=list)
 
 
 def _results_lines(portfolio: dict) -> list[str]:
@@ -322,6 +323,7 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
             )
         ],
         results_lines=_results_lines(p),
+        input_notes=[str(n) for n in result.settings.get("input_notes", [])],
     )
 
 
@@ -375,6 +377,8 @@ def _render_header(view: Overview, console: Console, fail_on: str | None) -> Non
     )
     if fail_on:
         grid.add_row("exit status", f"1 if any finding is {fail_on} or more severe")
+    for i, note in enumerate(view.input_notes):
+        grid.add_row("input" if i == 0 else "", note)
     console.print(Padding(grid, (0, 0, 0, 1)))
 
 

@@ -8,8 +8,10 @@ output, with its errors, but is not audited.
 
 from __future__ import annotations
 
+import math
 import re
-from dataclasses import dataclass
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
@@ -248,6 +250,7 @@ class Validated:
     notes : ``pos``, ``text`` for interpretations made (not errors).
     valid : boolean array, True for rows without failures.
     extra_columns : unknown columns carried through, in file order.
+    file_notes : sentences about the file as a whole (from the reader, and duplicate columns).
     """
 
     table: pd.DataFrame
@@ -256,8 +259,10 @@ class Validated:
     valid: np.ndarray
     extra_columns: list[str]
     raw: RawTable
+    file_notes: list[str] = field(default_factory=list)
 
 
+_MINUS_SIGNS = "[\u2212\u2012\u2013\u2014\ufe63\uff0d]"
 _NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
 _THOUSANDS_DOT = re.compile(r"^[+-]?\d{1,3}(,\d{3})+(\.\d+)?$")
 _THOUSANDS_COMMA = re.compile(r"^[+-]?\d{1,3}(\.\d{3})+(,\d+)?$")
@@ -286,15 +291,34 @@ def parse_numbers(
     """
     out = pd.Series(np.nan, index=values.index, dtype=float)
     problem = pd.Series("", index=values.index, dtype=object)
-    is_num = values.map(lambda v: isinstance(v, (int, float)) and not isinstance(v, bool))
+    kind = _cell_kinds(values)
+    is_num = pd.Series(kind == _NUM, index=values.index)
     if is_num.any():
-        out[is_num] = values[is_num].astype(float)
-    uncached = values.map(lambda v: v is UNCACHED)
+        # Python ints of any size: beyond float range they become inf and are rejected below.
+        out[is_num] = [_as_float(v) for v in values[is_num]]
+    other_at = np.flatnonzero(kind == _OTHER)
+    uncached_np = np.zeros(len(values), dtype=bool)
+    uncached_np[other_at] = [values.iat[i] is UNCACHED for i in other_at]
+    uncached = pd.Series(uncached_np, index=values.index)
     problem[uncached] = "formula without a saved value (open and save the file, or paste values)"
-    text_mask = values.map(lambda v: isinstance(v, str))
+    text_mask = pd.Series(kind == _TEXT, index=values.index)
+    if text_mask.any():
+        text = values[text_mask].astype(object)
+        empty = (text.str.strip() == "").to_numpy(dtype=bool)
+        text_mask[text.index[empty]] = False
+        text = text[~empty]
+        # Fast path for the common case, a plain number (C-speed parsing); everything else
+        # (percentages, separators, markers of missing values, junk) takes the careful path.
+        quick = pd.to_numeric(text, errors="coerce").astype(float)
+        plain = np.isfinite(quick.to_numpy())
+        if decimal_comma and plain.any():
+            plain &= ~text.str.contains(".", regex=False).to_numpy(dtype=bool, na_value=False)
+        out[quick.index[plain]] = quick[plain]
+        text_mask[quick.index[plain]] = False
     if text_mask.any():
         s = values[text_mask].astype(str).str.strip().str.replace("\u00a0", "", regex=False)
-        s = s.str.replace(" ", "", regex=False)
+        # The typographic minus (U+2212) and dashes pasted from documents mean a minus sign.
+        s = s.str.replace(" ", "", regex=False).str.replace(_MINUS_SIGNS, "-", regex=True)
         missing = s.str.lower().isin(MISSING_TOKENS)
         s = s[~missing]
         percent = s.str.endswith("%")
@@ -334,9 +358,51 @@ def parse_numbers(
                     "separator of a decimal-comma file)"
                 )
             problem[reason.index] = reason
-    bool_mask = values.map(lambda v: isinstance(v, bool))
+    bool_mask = pd.Series(kind == _BOOL, index=values.index)
     problem[bool_mask] = "not a number (TRUE/FALSE)"
+    # Anything else a spreadsheet cell can hold (a date, a time, an error value's object) is not
+    # a number either; it must never pass as blank.
+    other = pd.Series(kind == _OTHER, index=values.index) & ~uncached
+    problem[other] = "not a number (a date or another kind of value)"
+    with np.errstate(invalid="ignore"):
+        infinite = np.isinf(out.to_numpy(dtype=float))
+    problem[infinite & (problem == "").to_numpy()] = "not a finite number"
+    out[infinite] = np.nan
     return out, problem
+
+
+_NONE, _NUM, _TEXT, _BOOL, _OTHER = range(5)
+_KINDS = {
+    type(None): _NONE,
+    int: _NUM,
+    float: _NUM,
+    np.float64: _NUM,
+    np.int64: _NUM,
+    str: _TEXT,
+    bool: _BOOL,
+    np.bool_: _BOOL,
+}
+
+
+def _cell_kinds(values: pd.Series) -> np.ndarray:
+    """Kind of each cell (none, number, text, boolean, other), at C speed when the column is
+    uniform, as columns of a text file are."""
+    inferred = pd.api.types.infer_dtype(values, skipna=True)
+    present = values.notna().to_numpy()
+    if inferred in ("string", "empty"):
+        return np.where(present, _TEXT, _NONE).astype(np.int8)
+    if inferred in ("floating", "integer", "mixed-integer-float"):
+        return np.where(present, _NUM, _NONE).astype(np.int8)
+    return np.fromiter(
+        (_KINDS.get(type(v), _OTHER) for v in values), dtype=np.int8, count=len(values)
+    )
+
+
+def _as_float(value: object) -> float:
+    try:
+        return float(value)  # type: ignore[arg-type]
+    except OverflowError:
+        return math.inf
 
 
 def _fmt(value: object) -> str:
@@ -358,19 +424,16 @@ def validate(raw: RawTable) -> Validated:
     data = raw.data
     missing = [c for c in ("study_id", "design") if c not in data.columns]
     if missing:
-        found = ", ".join(raw.headers[c] for c in data.columns) or "none"
-        raise InputError(
-            f"{raw.source}: required column{'s' if len(missing) > 1 else ''} "
-            f"{' and '.join(missing)} not found (columns found: {found})."
-        )
+        raise InputError(_missing_columns_message(raw, missing))
     n = len(data)
     table = pd.DataFrame(index=pd.RangeIndex(n))
     table["_row"] = raw.rows
     fail_pos: list[np.ndarray] = []
     fail_col: list[str] = []
     fail_reason: list[np.ndarray] = []
-    notes_pos: list[np.ndarray] = []
-    notes_text: list[str] = []
+    notes_pos: list[np.ndarray] = [np.array([p for p, _ in raw.row_notes], dtype=int)]
+    notes_text: list[np.ndarray] = [np.array([t for _, t in raw.row_notes], dtype=object)]
+    file_notes: list[str] = list(raw.notes)
 
     def fail(mask: np.ndarray, column: str, reason: str | np.ndarray) -> None:
         pos = np.flatnonzero(mask)
@@ -381,6 +444,13 @@ def validate(raw: RawTable) -> Validated:
             fail_reason.append(
                 np.broadcast_to(reasons, (n,))[pos] if reasons.ndim else np.full(len(pos), reason)
             )
+
+    for position, column, reason in raw.cell_problems:
+        mask = np.zeros(n, dtype=bool)
+        mask[position] = True
+        fail(mask, column, reason)
+
+    data = _merge_duplicates(raw, fail, notes_pos, notes_text, file_notes)
 
     for spec in COLUMNS:
         if spec.name not in data.columns:
@@ -403,27 +473,7 @@ def validate(raw: RawTable) -> Validated:
             table[spec.name] = flag.to_numpy(dtype=float)
             continue
         if spec.kind in ("text", "design", "choice"):
-            text = cells.map(lambda v: None if v is None else _fmt(v).strip())
-            blank = text.isna() | (text == "") | text.str.lower().isin(MISSING_TOKENS - {"-"})
-            if spec.kind == "text":
-                table[spec.name] = text.where(~blank, None)
-                continue
-            norm = text.map(lambda v: normalise_header(v) if v is not None else None)
-            if spec.kind == "choice":
-                norm = norm.where(~blank, spec.default)
-            else:
-                norm = norm.where(~blank, None)
-            bad = ~norm.isin(spec.choices) & ~(blank & (spec.kind == "choice"))
-            if spec.kind == "design":
-                bad &= ~blank
-                fail(blank.to_numpy(), spec.name, "blank: the design must be given")
-            fail(
-                bad.to_numpy(),
-                spec.name,
-                f"unknown {spec.name.replace('_', ' ')}; expected {spec.range_text()}",
-            )
-            # A rejected value is kept as written so that outputs show what the row said.
-            table[spec.name] = norm.where(~bad, text).astype(object)
+            _text_column(spec, cells, table, fail)
             continue
         numbers, problem = parse_numbers(
             cells, decimal_comma=raw.decimal_comma, whole=spec.kind == "integer"
@@ -457,19 +507,28 @@ def validate(raw: RawTable) -> Validated:
             x = np.where(present | bad, x, float(spec.default))
         table[spec.name] = x
 
-    # study_id must be given; duplicates are kept and both marked.
+    # study_id must be given. Rows sharing one are all kept and all audited (which of them is
+    # right cannot be known, and dropping one would lose a study); each gets a note naming the
+    # other rows.
     sid = table["study_id"]
     fail(sid.isna().to_numpy(), "study_id", "blank: every study needs an identifier")
-    dup = sid.notna() & sid.duplicated(keep=False)
+    dup = (sid.notna() & sid.duplicated(keep=False)).to_numpy()
     if dup.any():
-        first_row = (
+        rows_of = (
             table.loc[dup]
             .groupby("study_id")["_row"]
             .transform(lambda r: ", ".join(str(v) for v in r))
         )
-        for pos, rows in first_row.items():
-            notes_pos.append(np.array([pos]))
-            notes_text.append(f"study_id '{sid[pos]}' appears on more than one row ({rows})")
+        notes_pos.append(np.flatnonzero(dup))
+        notes_text.append(
+            (
+                "study_id '"
+                + sid[dup].astype(str)
+                + "' is used by more than one row (rows "
+                + rows_of.astype(str)
+                + "); every row is audited, check whether they are the same study"
+            ).to_numpy(dtype=object)
+        )
 
     sides = pd.to_numeric(table["sides"], errors="coerce").to_numpy(dtype=float)
     table["sides"] = sides
@@ -520,8 +579,121 @@ def validate(raw: RawTable) -> Validated:
     valid[failures["pos"].to_numpy(dtype=int)] = False
     notes = pd.DataFrame(
         {
-            "pos": np.concatenate(notes_pos) if notes_pos else np.empty(0, dtype=int),
-            "text": np.asarray(notes_text, dtype=object),
+            "pos": np.concatenate(notes_pos).astype(int),
+            "text": np.concatenate(notes_text).astype(object),
         }
     )
-    return Validated(table, failures, notes, valid, extra, raw)
+    return Validated(table, failures, notes, valid, extra, raw, file_notes)
+
+
+def _text_column(
+    spec: Column,
+    cells: pd.Series,
+    table: pd.DataFrame,
+    fail: Callable[[np.ndarray, str, str | np.ndarray], None],
+) -> None:
+    """Type a text, design or choice column into ``table`` (object array, None for blank)."""
+    uncached = np.fromiter((v is UNCACHED for v in cells), dtype=bool, count=len(cells))
+    fail(uncached, spec.name, "formula without a saved value (open and save the file)")
+    # Object arrays throughout: a pandas string column would turn None into nan.
+    text = np.array(
+        [None if v is None or v is UNCACHED else _fmt(v).strip() for v in cells], dtype=object
+    )
+    # Per distinct value, not per cell: portfolios repeat a handful of designs and choices.
+    distinct = {v for v in text if v is not None}
+    if spec.kind == "choice":
+        # "2.0" typed as text means 2, as the number 2.0 in a spreadsheet cell does.
+        plain = {v: re.sub(r"^(\d+)\.0*$", r"\1", v) for v in distinct}
+        text = np.array([None if v is None else plain[v] for v in text], dtype=object)
+        distinct = set(plain.values())
+    tokens = MISSING_TOKENS - {"-"}
+    is_token = {v: v.lower() in tokens for v in distinct}
+    blank = np.fromiter((v is None or is_token[v] for v in text), dtype=bool, count=len(text))
+    if spec.kind == "text":
+        table[spec.name] = pd.Series(np.where(blank, None, text), dtype=object)
+        return
+    normal = {v: normalise_header(v) for v in distinct}
+    norm = np.array(
+        [None if b else normal[v] for v, b in zip(text, blank, strict=True)], dtype=object
+    )
+    known = np.isin(norm, np.asarray(spec.choices, dtype=object))
+    bad = ~known & ~blank
+    if spec.kind == "choice":
+        norm = np.where(blank, spec.default, norm)
+    else:
+        fail(blank & ~uncached, spec.name, "blank: the design must be given")
+    fail(bad, spec.name, f"unknown {spec.name.replace('_', ' ')}; expected {spec.range_text()}")
+    # A rejected value is kept as written so that outputs show what the row said.
+    table[spec.name] = pd.Series(np.where(bad, text, norm), dtype=object)
+
+
+def _missing_columns_message(raw: RawTable, missing: list[str]) -> str:
+    shown = [raw.headers[c] for c in raw.data.columns][:12]
+    shown = [h if len(h) <= 40 else h[:37] + "..." for h in shown]
+    more = len(raw.data.columns) - len(shown)
+    found = ", ".join(f"'{h}'" for h in shown) or "none"
+    if more > 0:
+        found += f" and {more} more"
+    where = f" (sheet '{raw.sheet}')" if raw.sheet else ""
+    return (
+        f"{raw.source}{where}: required column{'s' if len(missing) > 1 else ''} "
+        f"{' and '.join(missing)} not found in the header row (row {raw.header_row}; columns "
+        f"found: {found})."
+    )
+
+
+def _merge_duplicates(
+    raw: RawTable,
+    fail: Callable[[np.ndarray, str, str | np.ndarray], None],
+    notes_pos: list[np.ndarray],
+    notes_text: list[np.ndarray],
+    file_notes: list[str],
+) -> pd.DataFrame:
+    """Reconcile contract columns given twice (two headers that mean the same column).
+
+    Where the copies agree, or one is blank, the value given is used; where they differ the row
+    is invalid (which one is right cannot be known). Unknown columns given twice are carried
+    through as they are.
+    """
+    data = raw.data
+    wanted = {name: dups for name, dups in raw.duplicates.items() if name in SPECS}
+    if not wanted:
+        return data
+    data = data.copy()
+    for name, dups in wanted.items():
+        first = raw.headers[name]
+        file_notes.append(
+            f"{len(dups) + 1} columns mean {name} ("
+            + ", ".join(f"'{raw.headers[c].split(' (duplicate')[0]}'" for c in [name, *dups])
+            + "); where one is blank the other is used, where they differ the row is invalid"
+        )
+        for dup in dups:
+            a = data[name].map(lambda v: "" if v is None else _fmt(v).strip())
+            b = data[dup].map(lambda v: "" if v is None else _fmt(v).strip())
+            differ = ((a != b) & (a != "") & (b != "")).to_numpy()
+            fill = ((a == "") & (b != "")).to_numpy()
+            label = raw.headers[dup].split(" (duplicate")[0]
+            fail(
+                differ,
+                name,
+                np.asarray(
+                    [
+                        f"given twice with different values: '{x}' under '{first}' and '{y}' "
+                        f"under '{label}'; keep one of the columns"
+                        for x, y in zip(a, b, strict=True)
+                    ],
+                    dtype=object,
+                ),
+            )
+            if fill.any():
+                data.loc[fill, name] = data.loc[fill, dup]
+                pos = np.flatnonzero(fill)
+                notes_pos.append(pos)
+                notes_text.append(
+                    np.full(
+                        len(pos),
+                        f"{name} taken from the column '{label}' (the column '{first}' is blank)",
+                        dtype=object,
+                    )
+                )
+    return data

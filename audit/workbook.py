@@ -27,7 +27,7 @@ from openpyxl import Workbook
 from openpyxl.cell import WriteOnlyCell
 from openpyxl.styles import Alignment, Font, PatternFill
 
-from audit.export import atomic_output
+from audit.export import CAUTION, ILLEGAL_XLSX, atomic_output, refuse_input
 from audit.metrics import METRICS
 from audit.schema import SPECS, parse_numbers
 
@@ -71,10 +71,13 @@ def _format_for(metric: str) -> str:
 
 
 def _text_cell(ws: Any, value: str) -> WriteOnlyCell:
-    cell = WriteOnlyCell(ws, value=value)
+    # Control characters cannot be stored in a workbook (XML 1.0); they become U+FFFD.
+    value = ILLEGAL_XLSX.sub("\ufffd", value)
+    cell = WriteOnlyCell(ws, value=None)
+    cell.value = value
+    cell.data_type = "s"
     if value.startswith(_FORMULA_START):
         # Stored as a string, never a formula; the quote prefix keeps it text when edited.
-        cell.data_type = "s"
         cell.quotePrefix = True
     return cell
 
@@ -274,10 +277,16 @@ _READ_ME = (
 )
 
 
-def _readme_sheet(wb: Workbook) -> None:
+def _readme_sheet(wb: Workbook, result: AuditResult) -> None:
     ws = wb.create_sheet("read me")
     for line in _READ_ME:
         ws.append([line])
+    ws.append(["Caution", CAUTION])
+    for key in ("source", "sheet", "header_row"):
+        value = result.settings.get(key)
+        ws.append([key, _text_cell(ws, str(value)) if value is not None else None])
+    for note in result.settings.get("input_notes", []):
+        ws.append(["input note", _text_cell(ws, str(note))])
     for name, meaning in METRICS.items():
         ws.append([name, meaning])
     ws.column_dimensions["A"].width = 40
@@ -285,12 +294,19 @@ def _readme_sheet(wb: Workbook) -> None:
 
 
 def write_workbook(result: AuditResult, path: str | Path) -> None:
-    """Write the annotated workbook to ``path`` (atomically; write-only mode for large files)."""
+    """Write the annotated workbook to ``path`` (atomically; write-only mode for large files).
+
+    Raises
+    ------
+    OutputError
+        ``path`` is the input file or a folder.
+    """
+    refuse_input(result, path)
     wb = Workbook(write_only=True)
     _audit_sheet(wb, result)
     _portfolio_sheet(wb, result)
     _rules_sheet(wb, result)
     _invalid_sheet(wb, result)
-    _readme_sheet(wb)
+    _readme_sheet(wb, result)
     with atomic_output(path, "wb") as handle:
         wb.save(handle)

@@ -247,10 +247,12 @@ def test_missing_groups_or_predictors_are_notes_not_errors():
 def test_one_sided_f_test_is_a_note_not_an_error():
     # The F test rejects in its upper tail only (Cohen 1988, ch. 8): "sides = 1" is read as that
     # test at level alpha, so power equals the two-sided row's.
-    one = _audit(design="k_means", groups=3, sides=1, planned_effect=0.25, planned_n1=159,
-                 realized_n1=159)
-    two = _audit(design="k_means", groups=3, sides=2, planned_effect=0.25, planned_n1=159,
-                 realized_n1=159)
+    one = _audit(
+        design="k_means", groups=3, sides=1, planned_effect=0.25, planned_n1=159, realized_n1=159
+    )
+    two = _audit(
+        design="k_means", groups=3, sides=2, planned_effect=0.25, planned_n1=159, realized_n1=159
+    )
     assert one.status[0] == "audited"
     assert one.metrics["power_at_planned_effect"][0] == two.metrics["power_at_planned_effect"][0]
     assert any("sides = 1 not used" in t for t in one.notes["text"])

@@ -141,8 +141,9 @@ def test_template_has_validations_guide_and_clean_examples(tmp_path):
     assert len(ranges) >= 10
     guide = [r[0] for r in book["guide"].iter_rows(min_row=2, values_only=True) if r[0]]
     assert {c.name for c in COLUMNS} <= set(guide)
-    # The blank input sheet reads as a portfolio with no studies; the examples audit cleanly.
-    assert len(audit.audit_file(out).table) == 0
+    # The blank input sheet has the header and nothing to audit yet; the examples audit cleanly.
+    with pytest.raises(audit.InputError, match="no study rows"):
+        audit.audit_file(out)
     examples = audit.audit_file(out, sheet="examples")
     assert list(examples.status) == ["audited"] * len(EXAMPLES)
     assert set(examples.table["design"]) == set(audit.DESIGNS)

@@ -122,9 +122,13 @@ def test_empty_file_is_input_error(tmp_path):
         read_table(_write(tmp_path, "p.csv", ""))
 
 
-def test_header_only_gives_zero_studies(tmp_path):
-    result = audit.audit_file(_write(tmp_path, "p.csv", HEADER))
-    assert result.to_dict()["studies"] == []
+def test_header_only_is_input_error(tmp_path):
+    # Nothing to audit is "nothing usable" (DESIGN.md section 7: exit 2); a DataFrame with no
+    # rows, given from Python, is still an empty audit.
+    with pytest.raises(InputError, match="no study rows"):
+        audit.audit_file(_write(tmp_path, "p.csv", HEADER))
+    empty = pd.DataFrame({"study_id": [], "design": []})
+    assert audit.audit_table(empty).to_dict()["studies"] == []
 
 
 def test_dataframe_api_numbers_rows_from_two():

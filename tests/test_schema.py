@@ -83,7 +83,7 @@ def test_duplicate_study_ids_are_kept_and_noted():
     result = audit.audit_table(pd.DataFrame([GOOD, GOOD]).astype(object))
     assert result.status.tolist() == ["audited", "audited"]
     notes = result.to_dict()["studies"]
-    assert all(any("more than one row (2, 3)" in n for n in s["notes"]) for s in notes)
+    assert all(any("more than one row (rows 2, 3)" in n for n in s["notes"]) for s in notes)
 
 
 def test_null_metrics_name_the_missing_inputs():

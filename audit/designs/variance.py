@@ -252,5 +252,5 @@ class Regression(_FDesign):
                 ~np.isnan(_column(rows, "covariate_r2")),
                 "covariate_r2 not used for regression: f² of the tested predictors is already "
                 "net of the covariates",
-            )
+            ),
         ]
