@@ -6,6 +6,8 @@ The library API behind the ``study-audit`` command::
     result = audit.audit_file("portfolio.xlsx")
     result.metrics            # one column per metric, one row per study
     result.to_dict()          # the JSON document of the output contract
+    result.findings           # one line per rule flag: pos, rule, severity, message
+    audit.audit_file("portfolio.xlsx", rules="our-thresholds.toml")  # bundled rules + overrides
 """
 
 from __future__ import annotations
@@ -17,6 +19,7 @@ from audit.errors import AuditError, ConfigError, InputError
 from audit.metrics import METRICS
 from audit.pipeline import AuditResult, audit_file, audit_table
 from audit.read import read_table
+from audit.rules import RuleSet, load_rules
 
 __all__ = [
     "DESIGNS",
@@ -25,8 +28,10 @@ __all__ = [
     "AuditResult",
     "ConfigError",
     "InputError",
+    "RuleSet",
     "__version__",
     "audit_file",
     "audit_table",
+    "load_rules",
     "read_table",
 ]

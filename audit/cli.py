@@ -14,15 +14,23 @@ from __future__ import annotations
 import argparse
 import sys
 from collections.abc import Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 from audit import __version__
-from audit.errors import AuditError
+from audit.errors import AuditError, ConfigError
+
+if TYPE_CHECKING:
+    from audit.pipeline import AuditResult
 
 __all__ = ["main"]
 
 SEVERITIES = ("note", "warning", "serious")
 EXIT_OK, EXIT_FLAGGED, EXIT_UNUSABLE, EXIT_INTERNAL = 0, 1, 2, 3
+#: A progress bar is shown for input files at least this large (about 2,000 rows of CSV), and
+#: only when standard error is a terminal.
+PROGRESS_MIN_BYTES = 200_000
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -41,7 +49,9 @@ def _parser() -> argparse.ArgumentParser:
     check.add_argument("file", type=Path, help="the portfolio: one row per study")
     _add_check_options(check)
 
-    demo = sub.add_parser("demo", help="run the whole audit on the bundled demo portfolio")
+    demo = sub.add_parser(
+        "demo", help="run the whole audit on the bundled demo portfolio and write every export"
+    )
     demo.add_argument(
         "--out",
         type=Path,
@@ -49,23 +59,106 @@ def _parser() -> argparse.ArgumentParser:
         help="folder for the exports (default: ./study-audit-demo)",
     )
     demo.add_argument("--quiet", action="store_true", help="write the exports only")
-    for p in (check, demo):
+
+    template = sub.add_parser("template", help="write a blank, documented input workbook")
+    template.add_argument("out", type=Path, metavar="OUT.xlsx", help="the workbook to write")
+
+    rules = sub.add_parser("rules", help="list the audit rules, or show one in full")
+    rules.add_argument("id", nargs="?", help="a rule id: show its condition, parameters, rationale")
+    _add_rules_option(rules)
+
+    respond = sub.add_parser(
+        "respond", help="draft the paragraph on power an author can send to a referee"
+    )
+    respond.add_argument("file", type=Path, help="the portfolio file")
+    respond.add_argument("study_id", metavar="STUDY_ID", help="the study to write about")
+    respond.add_argument(
+        "--effect",
+        type=float,
+        help="also give design-based power at this effect (effect units), instead of the SESOI",
+    )
+    respond.add_argument("--out", type=Path, help="write the Markdown here instead of stdout")
+    respond.add_argument("--sheet", help="worksheet to read (default: the first)")
+    _add_analysis_options(respond, excess=False)
+
+    for p in (check, demo, template, rules, respond):
         p.add_argument(
             "--debug", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS
         )
     return parser
 
 
+def _add_rules_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--rules",
+        metavar="FILE",
+        action="append",
+        default=[],
+        type=Path,
+        help="a rules file (TOML) adding rules or overriding severity/parameters by rule id; "
+        "repeatable",
+    )
+
+
+def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) -> None:
+    group = p.add_argument_group("analysis options")
+    group.add_argument(
+        "--continuity-correction",
+        action="store_true",
+        help="two_proportions rows that leave continuity_correction blank use the corrected "
+        "test (Fleiss); default: uncorrected",
+    )
+    if not excess:
+        return
+    group.add_argument(
+        "--excess-basis",
+        choices=("planned", "pooled"),
+        default="planned",
+        help="power basis of the excess-significance test: each study's planned effect "
+        "(default) or the pooled estimate of its outcome_family",
+    )
+    group.add_argument(
+        "--excess-method",
+        choices=("exact", "chi2"),
+        default="exact",
+        help="exact Poisson-binomial p-value (default) or the chi-square form",
+    )
+    group.add_argument(
+        "--excess-pooling",
+        choices=("fixed", "random"),
+        default="fixed",
+        help="fixed-effect (default) or random-effects pooling for --excess-basis pooled",
+    )
+    group.add_argument(
+        "--excess-min-studies",
+        type=int,
+        default=5,
+        metavar="N",
+        help="fewest studies with a result for the excess-significance test (default 5)",
+    )
+
+
 def _add_check_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--sheet", help="worksheet to read (default: the first)")
+    _add_rules_option(p)
+    p.add_argument("--study", metavar="ID", help="show one study in depth instead of the portfolio")
     p.add_argument(
         "--fail-on",
         choices=SEVERITIES,
         help="exit with status 1 when a flag of this severity or above is raised",
     )
-    p.add_argument("--json", metavar="OUT", help="write the JSON document ('-' for stdout)")
-    p.add_argument("--csv", metavar="OUT", help="write the per-study table as CSV ('-' for stdout)")
+    out = p.add_argument_group("exports")
+    out.add_argument("--json", metavar="OUT", help="write the JSON document ('-' for stdout)")
+    out.add_argument(
+        "--csv", metavar="OUT", help="write the per-study table as CSV ('-' for stdout)"
+    )
+    out.add_argument("--xlsx", metavar="OUT", help="write the annotated workbook")
+    out.add_argument("--plots", metavar="DIR", type=Path, help="write figures into this folder")
+    out.add_argument(
+        "--plot-format", choices=("png", "svg"), default="png", help="figure format (default png)"
+    )
     p.add_argument("--quiet", action="store_true", help="write the exports only, no report")
+    _add_analysis_options(p)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -77,6 +170,12 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _check(args)
         if args.command == "demo":
             return _demo(args)
+        if args.command == "rules":
+            return _rules(args)
+        if args.command == "template":
+            return _template(args)
+        if args.command == "respond":
+            return _respond(args)
     except AuditError as exc:
         print(f"study-audit: {exc}", file=sys.stderr)
         return exc.exit_code
@@ -96,60 +195,235 @@ def main(argv: Sequence[str] | None = None) -> int:
     return EXIT_UNUSABLE
 
 
-def _run_check(
-    path: Path,
-    *,
-    sheet: str | None,
-    json_out: str | None,
-    csv_out: str | None,
-    quiet: bool,
-    fail_on: str | None,
-) -> int:
-    from audit.export import write_csv, write_json
-    from audit.pipeline import audit_file
-    from audit.report import make_console, render_overview
+@dataclass
+class CheckRun:
+    """Everything ``check`` (and ``demo``) was asked to do."""
 
-    result = audit_file(path, sheet=sheet)
-    if json_out:
-        write_json(result, json_out)
-    if csv_out:
-        write_csv(result, csv_out)
-    to_stdout = "-" in (json_out, csv_out)
-    if not quiet:
-        render_overview(result, make_console(stderr=to_stdout))
-    if fail_on and len(result.findings):
-        rank = {s: i for i, s in enumerate(SEVERITIES)}
-        worst = max(rank.get(s, -1) for s in result.findings["severity"])
-        if worst >= rank[fail_on]:
-            return EXIT_FLAGGED
+    path: Path
+    sheet: str | None = None
+    rule_files: Sequence[Path] = ()
+    study: str | None = None
+    fail_on: str | None = None
+    json_out: str | None = None
+    csv_out: str | None = None
+    xlsx_out: str | None = None
+    plots_dir: Path | None = None
+    plot_format: str = "png"
+    report_out: Path | None = None
+    quiet: bool = False
+    analysis: dict[str, Any] = field(default_factory=dict)
+
+
+def _analysis(args: argparse.Namespace) -> dict[str, Any]:
+    """The keyword arguments of :func:`audit.audit_file` set by the analysis options."""
+    out: dict[str, Any] = {"continuity_correction": bool(args.continuity_correction)}
+    for key in ("excess_basis", "excess_method", "excess_pooling", "excess_min_studies"):
+        if hasattr(args, key):
+            out[key] = getattr(args, key)
+    return out
+
+
+def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
+    from audit.export import write_csv, write_json
+    from audit.pipeline import STAGES, audit_file
+    from audit.report import make_console, render_report, render_study, study_ids_hint
+    from audit.rules import load_rules
+
+    # The rules are checked before the (possibly long) read, so a typo fails at once.
+    ruleset = load_rules(run.rule_files)
+    to_stdout = "-" in (run.json_out, run.csv_out)
+    exports = [
+        ("writing JSON", run.json_out),
+        ("writing CSV", run.csv_out),
+        ("writing workbook", run.xlsx_out),
+        ("drawing figures", run.plots_dir),
+    ]
+    stages = [*STAGES, *(stage for stage, target in exports if target)]
+    with _progress(run.path, stages, show=not run.quiet) as progress:
+        result = audit_file(
+            run.path, sheet=run.sheet, rules=ruleset, progress=progress, **run.analysis
+        )
+        positions: list[int] = []
+        if run.study is not None:
+            positions = result.positions_of(run.study)
+            if not positions:
+                raise ConfigError(
+                    f"no study with study_id '{run.study}' in {run.path} (ids look like: "
+                    f"{study_ids_hint(result)})."
+                )
+        if run.json_out:
+            progress("writing JSON")
+            write_json(result, run.json_out)
+        if run.csv_out:
+            progress("writing CSV")
+            write_csv(result, run.csv_out)
+        if run.xlsx_out:
+            from audit.workbook import write_workbook
+
+            progress("writing workbook")
+            write_workbook(result, run.xlsx_out)
+        if run.plots_dir is not None:
+            from audit.plots import write_plots
+
+            progress("drawing figures")
+            write_plots(result, run.plots_dir, fmt=run.plot_format, study=run.study)
+    problems = result.rule_problems
+    for rule, problem in zip(problems["rule"], problems["problem"], strict=True):
+        # Even with --quiet: an audit with a rule that did not run is incomplete.
+        print(
+            f"study-audit: rule {rule} could not be evaluated ({problem}); no study was checked "
+            "against it. Please report this.",
+            file=sys.stderr,
+        )
+    if run.report_out is not None:
+        from rich.console import Console
+
+        from audit.export import atomic_output
+        from audit.report import THEME
+
+        with atomic_output(run.report_out) as handle:
+            plain = Console(file=handle, width=100, color_system=None, theme=THEME, highlight=False)
+            render_report(result, plain, fail_on=run.fail_on)
+    if not run.quiet:
+        console = make_console(stderr=to_stdout)
+        if run.study is not None:
+            render_study(result, console, positions)
+        else:
+            render_report(result, console, fail_on=run.fail_on)
+    return exit_status(result, run.fail_on), result
+
+
+class _NoProgress:
+    """Stands in for the progress bar when none is shown."""
+
+    def __enter__(self) -> _NoProgress:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        return None
+
+    def __call__(self, stage: str) -> None:
+        return None
+
+
+def _progress(path: Path, stages: Sequence[str], *, show: bool) -> Any:
+    """A progress bar on standard error for a large input in a terminal, else a no-op."""
+    from audit.report import StageBar, make_console
+
+    try:
+        large = path.stat().st_size >= PROGRESS_MIN_BYTES
+    except OSError:
+        large = False  # the reader reports the real problem
+    if show and large and sys.stderr.isatty():
+        return StageBar(make_console(stderr=True), stages)
+    return _NoProgress()
+
+
+def exit_status(result: AuditResult, fail_on: str | None) -> int:
+    """1 when a finding (or a rule that failed to run) is at or above ``fail_on``, else 0."""
+    if not fail_on:
+        return EXIT_OK
+    rank = {s: i for i, s in enumerate(SEVERITIES)}
+    severities = [*result.findings["severity"], *result.rule_problems["severity"]]
+    if severities and max(rank[s] for s in severities) >= rank[fail_on]:
+        return EXIT_FLAGGED
     return EXIT_OK
 
 
 def _check(args: argparse.Namespace) -> int:
-    return _run_check(
-        args.file,
-        sheet=args.sheet,
-        json_out=args.json,
-        csv_out=args.csv,
-        quiet=args.quiet,
-        fail_on=args.fail_on,
+    status, _ = _run_check(
+        CheckRun(
+            path=args.file,
+            sheet=args.sheet,
+            rule_files=args.rules,
+            study=args.study,
+            fail_on=args.fail_on,
+            json_out=args.json,
+            csv_out=args.csv,
+            xlsx_out=args.xlsx,
+            plots_dir=args.plots,
+            plot_format=args.plot_format,
+            quiet=args.quiet,
+            analysis=_analysis(args),
+        )
     )
+    return status
+
+
+def _rules(args: argparse.Namespace) -> int:
+    from audit.report import make_console, render_rule, render_rules
+    from audit.rules import load_rules
+
+    ruleset = load_rules(args.rules)
+    console = make_console()
+    if args.id:
+        render_rule(ruleset.get(args.id), console)
+    else:
+        render_rules(ruleset, console)
+    return EXIT_OK
 
 
 def _demo(args: argparse.Namespace) -> int:
+    """The whole job on the bundled demo: report, every export, and one referee response."""
+    from audit.export import atomic_output
     from audit.resources import bundled_dir
+    from audit.respond import respond_text
 
     source = bundled_dir("demo_data") / "demo_portfolio.csv"
     out: Path = args.out
     out.mkdir(parents=True, exist_ok=True)
-    json_out, csv_out = out / "audit.json", out / "audit.csv"
-    status = _run_check(
-        source,
-        sheet=None,
-        json_out=str(json_out),
-        csv_out=str(csv_out),
-        quiet=args.quiet,
-        fail_on=None,
+    status, result = _run_check(
+        CheckRun(
+            path=source,
+            json_out=str(out / "audit.json"),
+            csv_out=str(out / "audit.csv"),
+            xlsx_out=str(out / "audit.xlsx"),
+            plots_dir=out / "plots",
+            report_out=out / "report.txt",
+            quiet=args.quiet,
+        )
     )
-    print(f"Demo exports written to {out.resolve()}: audit.json, audit.csv")
+    written = ["report.txt", "audit.json", "audit.csv", "audit.xlsx", "plots/"]
+    example = _demo_response_study(result)
+    if example is not None:
+        name = f"response_{example}.md"
+        with atomic_output(out / name) as handle:
+            handle.write(respond_text(result, example))
+        written.append(name)
+    print(f"Demo written to {out.resolve()}: {', '.join(written)}")
     return status
+
+
+def _demo_response_study(result: AuditResult) -> str | None:
+    """The demo's referee response is for the first audited study with an inconclusive null."""
+    verdicts = result.metrics["ci_verdict"].to_numpy(dtype=object)
+    ids = result.table["study_id"].to_numpy(dtype=object)
+    for pos in range(len(ids)):
+        if result.valid[pos] and verdicts[pos] == "inconclusive":
+            return str(ids[pos])
+    audited = [str(ids[p]) for p in range(len(ids)) if result.valid[p]]
+    return audited[0] if audited else None
+
+
+def _template(args: argparse.Namespace) -> int:
+    from audit.template import write_template
+
+    write_template(args.out)
+    print(f"Input template written to {args.out}: fill the 'studies' sheet (see 'guide').")
+    return EXIT_OK
+
+
+def _respond(args: argparse.Namespace) -> int:
+    from audit.export import atomic_output
+    from audit.pipeline import audit_file
+    from audit.respond import respond_text
+
+    result = audit_file(args.file, sheet=args.sheet, **_analysis(args))
+    text = respond_text(result, args.study_id, effect=args.effect)
+    if args.out is None:
+        sys.stdout.write(text)
+    else:
+        with atomic_output(args.out) as handle:
+            handle.write(text)
+        print(f"Response for {args.study_id} written to {args.out}", file=sys.stderr)
+    return EXIT_OK

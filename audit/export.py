@@ -119,7 +119,7 @@ def write_csv(result: AuditResult, path: str | Path) -> None:
     """The per-study table as CSV, formula-like text made inert."""
     frame = studies_frame(result)
     for c in frame.columns:
-        if frame[c].dtype == object:
-            frame[c] = frame[c].map(neutralise_formula)
+        if frame[c].dtype == object or pd.api.types.is_string_dtype(frame[c]):
+            frame[c] = frame[c].astype(object).map(neutralise_formula)
     with atomic_output(path) as handle:
         frame.to_csv(handle, index=False, lineterminator="\n")

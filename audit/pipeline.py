@@ -2,13 +2,14 @@
 
 >>> import pandas as pd, audit
 >>> df = pd.DataFrame({"study_id": ["A"], "design": ["estimate"], "realized_se": [1.0]})
->>> round(audit.audit_table(df).metrics.loc[0, "mde"], 2)
+>>> round(float(audit.audit_table(df).metrics.loc[0, "mde"]), 2)
 2.8
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -16,14 +17,26 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from audit.caveats import caveats
+from audit.errors import ConfigError
 from audit.metrics import METRICS, compute_metrics
-from audit.portfolio import portfolio_summary
+from audit.portfolio import EXCESS_DEFAULTS, ExcessSettings, portfolio_summary
 from audit.read import RawTable, raw_from_frame, read_table
+from audit.rules import Rule, evaluate_rules, resolve_rules
 from audit.schema import Validated, validate
 
-__all__ = ["AuditResult", "audit_file", "audit_table"]
+__all__ = ["STAGES", "AuditResult", "audit_file", "audit_table"]
 
-_FINDING_COLUMNS = ["pos", "rule", "severity", "message"]
+#: The steps of an audit, in order, as announced to a ``progress`` callback.
+STAGES = ("reading", "checking rows", "computing metrics", "applying rules", "summarising")
+
+#: Called with the name of each stage as it starts (see :data:`STAGES`).
+Progress = Callable[[str], None]
+
+
+def _announce(progress: Progress | None, stage: str) -> None:
+    if progress is not None:
+        progress(stage)
 
 
 @dataclass
@@ -37,10 +50,15 @@ class AuditResult:
     status : ``"audited"`` or ``"invalid"`` per row.
     errors : failures of invalid rows (``pos``, ``row``, ``column``, ``value``, ``reason``).
     notes : ``pos``, ``text``: why metrics are null and what was assumed.
-    findings : ``pos``, ``rule``, ``severity``, ``message``: rule flags.
+    findings : ``pos``, ``rule``, ``severity``, ``message``: rule flags, by row then rule.
     portfolio : the portfolio block of the JSON contract.
-    settings : what the run used (rules in force, defaults, source).
+    settings : what the run used (rules in force, defaults, source, excess-significance test).
     raw : the table as read, for exports that give the user's columns back untouched.
+    rules : the enabled rules of the run, in listing order.
+    rules_waiting : rule id -> metrics it needs that this run does not compute (no flags).
+    rule_problems : ``rule``, ``severity``, ``problem``: rules that failed internally.
+    caveats : plain-language caveats that apply (``topic``, ``title``, ``text``), for the
+        report's caveats section.
     """
 
     table: pd.DataFrame
@@ -52,7 +70,12 @@ class AuditResult:
     portfolio: dict[str, Any]
     settings: dict[str, Any]
     raw: RawTable
-    rules: list[Any] = field(default_factory=list)
+    rules: list[Rule] = field(default_factory=list)
+    rules_waiting: dict[str, list[str]] = field(default_factory=dict)
+    rule_problems: pd.DataFrame = field(
+        default_factory=lambda: pd.DataFrame(columns=["rule", "severity", "problem"])
+    )
+    caveats: list[dict[str, str]] = field(default_factory=list)
 
     @property
     def valid(self) -> np.ndarray:
@@ -60,6 +83,12 @@ class AuditResult:
 
     def metric_names(self) -> list[str]:
         return list(self.metrics.columns)
+
+    def positions_of(self, study_id: str) -> list[int]:
+        """Row positions whose ``study_id`` is ``study_id`` (trimmed; exact match)."""
+        ids = self.table["study_id"].to_numpy(dtype=object)
+        wanted = str(study_id).strip()
+        return [i for i, v in enumerate(ids) if v is not None and str(v).strip() == wanted]
 
     def by_row(self, frame: pd.DataFrame, column: str) -> list[list[Any]]:
         """Group a long (pos, ...) table into one list per input row."""
@@ -128,6 +157,7 @@ class AuditResult:
             "settings": self.settings,
             "studies": studies,
             "portfolio": _jsonable(self.portfolio),
+            "caveats": self.caveats,
         }
 
 
@@ -169,25 +199,57 @@ def _jsonable(value: Any) -> Any:
     return value
 
 
-def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
+def _excess_settings(basis: str, method: str, pooling: str, min_studies: int) -> ExcessSettings:
+    settings = ExcessSettings(basis, method, pooling, min_studies)
+    problems = settings.problems()
+    if problems:
+        raise ConfigError("; ".join(problems) + ".")
+    return settings
+
+
+def audit_validated(
+    validated: Validated,
+    *,
+    rules: Any = None,
+    continuity_correction: bool = False,
+    excess: ExcessSettings = EXCESS_DEFAULTS,
+    progress: Progress | None = None,
+) -> AuditResult:
     """Audit an already validated table (see :func:`audit_table`)."""
-    table = validated.table
+    ruleset = resolve_rules(rules)
+    table = validated.table.copy()
+    # The run default applies where a row leaves continuity_correction blank.
+    table["continuity_correction"] = table["continuity_correction"].fillna(
+        1.0 if continuity_correction else 0.0
+    )
     valid = validated.valid
+    _announce(progress, "computing metrics")
     computed = compute_metrics(table, valid)
     metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
     notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
     notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
-    findings = pd.DataFrame({c: pd.Series(dtype=object) for c in _FINDING_COLUMNS})
+    _announce(progress, "applying rules")
+    evaluation = evaluate_rules(ruleset, table, metrics, valid)
+    findings = evaluation.findings
     status = np.where(valid, "audited", "invalid").astype(object)
+    _announce(progress, "summarising")
     portfolio = portfolio_summary(
-        table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows)
+        table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows), excess=excess
     )
+    enabled = ruleset.enabled()
     settings = {
-        "rules": [],
+        "rules": [r.id for r in enabled],
+        "rules_disabled": [r.id for r in ruleset.rules.values() if not r.enabled],
+        "rules_waiting": evaluation.waiting,
+        "rule_parameters": {r.id: r.param_values() for r in enabled if r.parameters},
+        "rule_files": list(ruleset.files),
+        "rule_problems": evaluation.problems.to_dict("records"),
         "target_power_default": 0.8,
         "alpha_default": 0.05,
+        "continuity_correction_default": bool(continuity_correction),
         "source": validated.raw.source,
         "sheet": validated.raw.sheet,
+        "excess_significance": excess.as_dict(),
     }
     return AuditResult(
         table=table,
@@ -199,19 +261,91 @@ def audit_validated(validated: Validated, *, rules: Any = None) -> AuditResult:
         portfolio=portfolio,
         settings=settings,
         raw=validated.raw,
+        rules=enabled,
+        rules_waiting=evaluation.waiting,
+        rule_problems=evaluation.problems,
+        caveats=caveats(metrics, portfolio),
     )
 
 
-def audit_table(df: pd.DataFrame | RawTable, *, rules: Any = None) -> AuditResult:
+def audit_table(
+    df: pd.DataFrame | RawTable,
+    *,
+    rules: Any = None,
+    continuity_correction: bool = False,
+    excess_basis: str = "planned",
+    excess_method: str = "exact",
+    excess_pooling: str = "fixed",
+    excess_min_studies: int = 5,
+    progress: Progress | None = None,
+) -> AuditResult:
     """Audit a table of studies given as a DataFrame (one row per study, contract columns).
 
     Cells may be numbers or text as in a spreadsheet (``"5%"``, ``"1,234"``). Rows are numbered
     as if the frame were a sheet with its header on row 1.
+
+    Parameters
+    ----------
+    rules
+        None for the bundled rules; a :class:`audit.rules.RuleSet`; or a rules file path (or a
+        parsed mapping of the same shape), or a list of them, applied on top of the bundled
+        rules: ``[[rule]]`` tables add rules, ``[override.RULE-ID]`` tables change severity,
+        ``enabled`` or parameters.
+    continuity_correction : bool
+        The run's default for ``two_proportions`` rows that leave the column of that name blank.
+    excess_basis : {"planned", "pooled"}
+        Power basis of the test of excess significance: each study's design-based power at its
+        planned effect, or its power at the pooled estimate of its ``outcome_family``.
+    excess_method : {"exact", "chi2"}
+        Exact Poisson-binomial p-value, or the chi-square form of Ioannidis & Trikalinos (2007).
+    excess_pooling : {"fixed", "random"}
+        Pooled estimate for ``excess_basis="pooled"``: fixed-effect or random-effects.
+    excess_min_studies : int
+        Fewest studies with a result and a power for the test to run (default 5).
+    progress
+        Called with each stage name of :data:`STAGES` as it starts.
+
+    Raises
+    ------
+    ConfigError
+        A rules file or one of the ``excess_*`` arguments is not valid.
     """
+    ruleset = resolve_rules(rules)  # a bad rules file fails before any work is done
+    excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
     raw = df if isinstance(df, RawTable) else raw_from_frame(df)
-    return audit_validated(validate(raw), rules=rules)
+    _announce(progress, "checking rows")
+    return audit_validated(
+        validate(raw),
+        rules=ruleset,
+        continuity_correction=continuity_correction,
+        excess=excess,
+        progress=progress,
+    )
 
 
-def audit_file(path: str | Path, *, sheet: str | None = None, rules: Any = None) -> AuditResult:
-    """Read and audit a spreadsheet or CSV file."""
-    return audit_table(read_table(path, sheet=sheet), rules=rules)
+def audit_file(
+    path: str | Path,
+    *,
+    sheet: str | None = None,
+    rules: Any = None,
+    continuity_correction: bool = False,
+    excess_basis: str = "planned",
+    excess_method: str = "exact",
+    excess_pooling: str = "fixed",
+    excess_min_studies: int = 5,
+    progress: Progress | None = None,
+) -> AuditResult:
+    """Read and audit a spreadsheet or CSV file (keyword arguments as :func:`audit_table`)."""
+    ruleset = resolve_rules(rules)
+    _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
+    _announce(progress, "reading")
+    return audit_table(
+        read_table(path, sheet=sheet),
+        rules=ruleset,
+        continuity_correction=continuity_correction,
+        excess_basis=excess_basis,
+        excess_method=excess_method,
+        excess_pooling=excess_pooling,
+        excess_min_studies=excess_min_studies,
+        progress=progress,
+    )

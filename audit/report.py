@@ -1,112 +1,867 @@
-"""Terminal rendering of an audit with rich: rows are built first, then laid out in tables.
+"""Terminal report of an audit with rich: what is shown is built first as plain data, then laid
+out.
 
-Colours are named styles (see ``THEME``), so ``NO_COLOR`` and plain terminals read the same
-content without them.
+Colours are named styles (see ``THEME``); every distinction a colour makes is also written in
+words (severity names, "not audited"), so ``NO_COLOR``, a plain pipe and a narrow terminal read
+the same content. Large portfolios are summarised: counts and distributions over every study,
+then at most ``limit`` studies and invalid rows listed, most severe first.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
-from rich.console import Console
+import numpy as np
+import pandas as pd
+from rich.console import Console, Group
+from rich.padding import Padding
+from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
+from rich.text import Text
 from rich.theme import Theme
+
+from audit._format import format_number
+from audit.designs import DESIGNS
+from audit.metrics import METRICS
+from audit.rules import CONTRACT_METRICS, SEVERITIES, SEVERITY_RANK, Rule, RuleSet, known_columns
+from audit.schema import COLUMNS
 
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
 
-__all__ = ["THEME", "format_number", "render_overview"]
+__all__ = [
+    "MAX_LISTED",
+    "THEME",
+    "StageBar",
+    "build_overview",
+    "format_number",
+    "make_console",
+    "render_report",
+    "render_rule",
+    "render_rules",
+    "render_study",
+]
 
 THEME = Theme(
     {
         "audit.title": "bold",
+        "audit.section": "bold cyan",
         "audit.header": "bold",
+        "audit.label": "dim",
         "audit.invalid": "magenta",
         "audit.low": "red",
         "audit.ok": "green",
         "audit.muted": "dim",
+        "audit.bar": "cyan",
+        "audit.rule_id": "bold",
+        "audit.severity.serious": "bold red",
+        "audit.severity.warning": "yellow",
+        "audit.severity.note": "blue",
+        "audit.waiting": "dim italic",
     }
 )
 
-#: Past this many studies the overview lists only the first rows and says where the rest are.
-MAX_LISTED = 200
+#: At most this many studies with findings, and this many invalid rows, are listed; the
+#: exports hold them all.
+MAX_LISTED = 50
+#: At most this many ids of studies without findings are named.
+MAX_CLEAN_NAMED = 20
 
-
-def format_number(value: float | None, digits: int = 3) -> str:
-    """Compact number for tables: 3 significant digits, integers as integers, '-' for none.
-
-    >>> format_number(0.61234), format_number(128.0), format_number(None)
-    ('0.612', '128', '-')
-    """
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return "-"
-    if float(value).is_integer() and abs(value) >= 10:
-        return f"{int(value):d}"
-    return f"{value:.{digits}g}"
+#: Bands of design-based power for the portfolio's distribution, as [low, high).
+POWER_BANDS = ((0.0, 0.2), (0.2, 0.5), (0.5, 0.8), (0.8, 0.9), (0.9, 1.0 + 1e-9))
+_BAR_WIDTH = 30
+#: Below this width the studies with findings are stacked instead of tabulated.
+NARROW = 80
 
 
 def make_console(*, stderr: bool = False) -> Console:
+    """The console the command line prints to (honours ``NO_COLOR`` and the terminal width)."""
     return Console(theme=THEME, stderr=stderr, highlight=False)
 
 
-_OVERVIEW = (
-    ("power_at_planned_effect", "power at\nplanned"),
-    ("power_at_sesoi", "power at\nSESOI"),
-    ("mde", "MDE"),
-    ("mde_std", "MDE\n(std)"),
-    ("n_ratio", "size\nratio"),
-    ("plan_discrepancy", "plan\ndiscrepancy"),
+def _severity(severity: str) -> Text:
+    return Text(severity, style=f"audit.severity.{severity}")
+
+
+def _pct(share: float | None) -> str:
+    return "-" if share is None or not math.isfinite(share) else f"{share:.0%}"
+
+
+# -- building: plain data about what to show ------------------------------------------------------
+
+
+@dataclass
+class StudyEntry:
+    """One study as the report lists it: identity, key numbers, findings (most severe first)."""
+
+    pos: int
+    row: int
+    study_id: str
+    design: str
+    worst: str
+    findings: list[tuple[str, str, str]]  # severity, rule id, message
+    key_numbers: list[str]
+
+
+@dataclass
+class RuleCount:
+    rule: str
+    severity: str
+    studies: int
+    state: str  # "active", "waiting for ...", "failed: ..."
+
+
+@dataclass
+class Overview:
+    """Everything the portfolio report shows, computed over all rows before any rendering."""
+
+    source: str
+    sheet: str | None
+    studies: int
+    audited: int
+    invalid: int
+    blank_rows: int
+    rules_in_force: int
+    rule_files: list[str]
+    waiting: dict[str, list[str]]
+    disabled: list[str]
+    power_known: int
+    power_quartiles: tuple[float, float, float] | None
+    at_target: int
+    power_bands: list[tuple[str, int]]
+    mde_rows: list[tuple[str, str, int, float, float, float]]
+    rule_counts: list[RuleCount]
+    by_worst: dict[str, int]
+    flagged_total: int
+    flagged: list[StudyEntry]
+    clean_ids: list[str]
+    clean_total: int
+    invalid_rows: list[tuple[int, str, list[str]]]
+    problems: list[tuple[str, str, str]] = field(default_factory=list)
+    results_lines: list[str] = field(default_factory=list)
+
+
+def _results_lines(portfolio: dict) -> list[str]:
+    """Reported results across the portfolio: CI verdicts, exaggeration, excess significance."""
+    lines = []
+    verdicts = portfolio.get("ci_verdict_counts") or {}
+    if verdicts:
+        order = ("detected", "excludes_sesoi", "excludes_planned_effect", "inconclusive")
+        counts = " · ".join(f"{k} {verdicts[k]:,}" for k in order if verdicts.get(k))
+        lines.append(f"{sum(verdicts.values()):,} studies with a confidence interval: {counts}")
+    exaggeration = portfolio.get("median_exaggeration")
+    if exaggeration is not None and math.isfinite(exaggeration):
+        lines.append(
+            f"median exaggeration ratio of a significant estimate at the planned effect: "
+            f"{exaggeration:.2f}"
+        )
+    excess = portfolio.get("excess_significance")
+    if excess:
+        lines.append(
+            f"excess significance: {excess['observed']:,} significant results observed, "
+            f"{excess['expected']:.1f} expected; one-sided p = {format_number(excess['p_value'])}"
+            f" ({excess['method']}; basis: {excess['basis']})"
+        )
+    elif portfolio.get("excess_significance_note"):
+        lines.append(f"excess significance not tested: {portfolio['excess_significance_note']}")
+    return lines
+
+
+def _text(value: object) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return ""
+    return str(value)
+
+
+def key_numbers(result: AuditResult, pos: int) -> list[str]:
+    """The few numbers a reviewer looks at first for a study, as short phrases."""
+    m = result.metrics.iloc[pos]
+    target = result.table["target_power"].iat[pos]
+    out = []
+    power = m.get("power_at_planned_effect", np.nan)
+    if math.isfinite(power):
+        out.append(f"power {power:.2f} (target {target:.2f})")
+    sesoi_power = m.get("power_at_sesoi", np.nan)
+    if math.isfinite(sesoi_power):
+        out.append(f"at SESOI {sesoi_power:.2f}")
+    mde = m.get("mde", np.nan)
+    if math.isfinite(mde):
+        design = DESIGNS.get(str(result.table["design"].iat[pos]))
+        unit = design.standardized_as if design is not None else None
+        std = m.get("mde_std", np.nan)
+        show_std = unit and math.isfinite(std) and not math.isclose(abs(std), abs(mde))
+        extra = f" ({unit} {format_number(abs(std))})" if show_std else ""
+        out.append(f"MDE {format_number(mde)}{extra}")
+    ratio = m.get("n_ratio", np.nan)
+    if math.isfinite(ratio):
+        out.append(f"size {ratio:.0%} of plan")
+    return out
+
+
+def _quartiles(x: np.ndarray) -> tuple[float, float, float]:
+    q1, med, q3 = np.quantile(x, [0.25, 0.5, 0.75])
+    return float(q1), float(med), float(q3)
+
+
+def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
+    """Compute what the portfolio report shows; vectorised over studies, loops only over the
+    at most ``limit`` studies listed."""
+    table, metrics, valid = result.table, result.metrics, result.valid
+    p = result.portfolio
+    power = metrics["power_at_planned_effect"].to_numpy(dtype=float)[valid]
+    target = table["target_power"].to_numpy(dtype=float)[valid]
+    known = np.isfinite(power)
+    bands = []
+    for low, high in POWER_BANDS:
+        count = int(((power[known] >= low) & (power[known] < high)).sum())
+        label = f"{low:.2f} – {min(high, 1.0):.2f}" if high <= 1.0 else f"{low:.2f} – 1.00"
+        bands.append((label, count))
+    mde_rows = []
+    designs = table["design"].to_numpy(dtype=object)[valid]
+    mde_std = np.abs(metrics["mde_std"].to_numpy(dtype=float)[valid])
+    for name in sorted({d for d in designs if isinstance(d, str)}):
+        values = mde_std[(designs == name) & np.isfinite(mde_std)]
+        if len(values):
+            unit = DESIGNS[name].standardized_as if name in DESIGNS else None
+            q1, med, q3 = _quartiles(values)
+            mde_rows.append((name, unit or "-", len(values), med, q1, q3))
+
+    findings = result.findings
+    problems = result.rule_problems
+    failed = dict(zip(problems["rule"], problems["problem"], strict=True)) if len(problems) else {}
+    studies_per_rule = findings.groupby("rule")["pos"].nunique().to_dict() if len(findings) else {}
+    rule_counts = []
+    for rule in result.rules:
+        if rule.id in result.rules_waiting:
+            state = "waiting for " + ", ".join(result.rules_waiting[rule.id])
+        elif rule.id in failed:
+            state = "failed: " + failed[rule.id]
+        else:
+            state = "active"
+        rule_counts.append(
+            RuleCount(rule.id, rule.severity, int(studies_per_rule.get(rule.id, 0)), state)
+        )
+
+    n = len(table)
+    worst = np.full(n, -1)
+    count = np.zeros(n, dtype=int)
+    if len(findings):
+        ranks = findings["severity"].map(SEVERITY_RANK).to_numpy(dtype=int)
+        positions = findings["pos"].to_numpy(dtype=int)
+        np.maximum.at(worst, positions, ranks)
+        np.add.at(count, positions, 1)
+    by_worst = {
+        s: int(((worst == i) & valid).sum()) for i, s in reversed(list(enumerate(SEVERITIES)))
+    }
+    by_worst["none"] = int(((worst < 0) & valid).sum())
+    flagged_pos = np.flatnonzero(worst >= 0)
+    # Most severe first, then most findings, then input order.
+    order = np.lexsort((flagged_pos, -count[flagged_pos], -worst[flagged_pos]))
+    listed = flagged_pos[order][:limit]
+    entries = []
+    if len(listed):
+        grouped = {
+            pos: group
+            for pos, group in findings[findings["pos"].isin(listed)].groupby("pos", sort=False)
+        }
+        for pos in listed:
+            group = grouped[pos]
+            ranks = group["severity"].map(SEVERITY_RANK).to_numpy()
+            rows = group.iloc[np.argsort(-ranks, kind="stable")]
+            entries.append(
+                StudyEntry(
+                    pos=int(pos),
+                    row=int(table["_row"].iat[pos]),
+                    study_id=_text(table["study_id"].iat[pos]),
+                    design=_text(table["design"].iat[pos]),
+                    worst=SEVERITIES[worst[pos]],
+                    findings=list(
+                        zip(rows["severity"], rows["rule"], rows["message"], strict=True)
+                    ),
+                    key_numbers=key_numbers(result, int(pos)),
+                )
+            )
+    clean = np.flatnonzero((worst < 0) & valid)
+    clean_ids = [_text(table["study_id"].iat[i]) for i in clean[:MAX_CLEAN_NAMED]]
+
+    bad = np.flatnonzero(~valid)
+    errors = result.error_texts() if len(bad) else []
+    invalid_rows = [
+        (int(table["_row"].iat[i]), _text(table["study_id"].iat[i]), errors[i]) for i in bad[:limit]
+    ]
+    return Overview(
+        source=str(result.settings.get("source", "")),
+        sheet=result.settings.get("sheet"),
+        studies=int(p["studies"]),
+        audited=int(p["audited"]),
+        invalid=int(p["invalid"]),
+        blank_rows=int(p.get("blank_rows_skipped", 0)),
+        rules_in_force=len(result.rules),
+        rule_files=list(result.settings.get("rule_files", [])),
+        waiting=dict(result.rules_waiting),
+        disabled=list(result.settings.get("rules_disabled", [])),
+        power_known=int(known.sum()),
+        power_quartiles=_quartiles(power[known]) if known.any() else None,
+        at_target=int((power[known] >= target[known] - 1e-12).sum()),
+        power_bands=bands,
+        mde_rows=mde_rows,
+        rule_counts=rule_counts,
+        by_worst=by_worst,
+        flagged_total=len(flagged_pos),
+        flagged=entries,
+        clean_ids=clean_ids,
+        clean_total=len(clean),
+        invalid_rows=invalid_rows,
+        problems=[
+            (r, s, msg)
+            for r, s, msg in zip(
+                problems["rule"], problems["severity"], problems["problem"], strict=True
+            )
+        ],
+        results_lines=_results_lines(p),
+    )
+
+
+# -- rendering ------------------------------------------------------------------------------------
+
+
+def _section(console: Console, title: str) -> None:
+    console.print()
+    console.rule(Text(title, style="audit.section"), align="left", style="audit.muted")
+
+
+def _subheading(console: Console, title: str, detail: str = "") -> None:
+    text = Text(title, style="audit.header")
+    if detail:
+        text.append(f" — {detail}")
+    console.print(Padding(text, (0, 1, 0, 1)))
+
+
+def _grid() -> Table:
+    grid = Table.grid(padding=(0, 2))
+    grid.add_column(style="audit.label", no_wrap=True)
+    grid.add_column(overflow="fold")
+    return grid
+
+
+def _plural(n: int, word: str, plural: str | None = None) -> str:
+    return f"{n:,} {word if n == 1 else (plural or word + 's')}"
+
+
+def _render_header(view: Overview, console: Console, fail_on: str | None) -> None:
+    console.print(Text("study-audit report", style="audit.title"))
+    grid = _grid()
+    source = view.source + (f" (sheet {view.sheet})" if view.sheet else "")
+    grid.add_row("file", source)
+    studies = (
+        f"{_plural(view.studies, 'row')}: {view.audited:,} audited, {view.invalid:,} not audited"
+    )
+    if view.blank_rows:
+        studies += f"; {_plural(view.blank_rows, 'blank row')} skipped"
+    grid.add_row("studies", studies)
+    files = "bundled" + "".join(f" + {f}" for f in view.rule_files)
+    rules = f"{view.rules_in_force} in force ({files})"
+    if view.waiting:
+        rules += f", of which {len(view.waiting)} waiting for metrics not computed yet"
+    if view.disabled:
+        rules += "; switched off: " + ", ".join(view.disabled)
+    grid.add_row("rules", rules)
+    grid.add_row(
+        "defaults",
+        "alpha 0.05, two-sided, target power 0.80, one comparison — where a row leaves them blank",
+    )
+    if fail_on:
+        grid.add_row("exit status", f"1 if any finding is {fail_on} or more severe")
+    console.print(Padding(grid, (0, 0, 0, 1)))
+
+
+def _render_portfolio(view: Overview, console: Console) -> None:
+    _section(console, "Portfolio")
+    _subheading(
+        console,
+        "Design-based power at the planned effect",
+        f"{view.power_known:,} of {view.audited:,} audited studies",
+    )
+    if view.power_quartiles is not None:
+        q1, med, q3 = view.power_quartiles
+        share = view.at_target / view.power_known
+        console.print(
+            Padding(
+                f"median {med:.2f}, middle half {q1:.2f} – {q3:.2f}; "
+                f"{view.at_target:,} of {view.power_known:,} ({share:.0%}) reach their own target",
+                (0, 1, 0, 3),
+            )
+        )
+        top = max(c for _, c in view.power_bands) or 1
+        bands = Table.grid(padding=(0, 2))
+        bands.add_column(no_wrap=True)
+        bands.add_column(justify="right", no_wrap=True)
+        bands.add_column(no_wrap=True, overflow="crop")
+        for label, count in view.power_bands:
+            bar = "█" * math.ceil(_BAR_WIDTH * count / top) if count else ""
+            bands.add_row(label, f"{count:,}", Text(bar, style="audit.bar"))
+        console.print(Padding(bands, (0, 0, 0, 3)))
+    console.print()
+    _subheading(console, "Standardized MDE", "at the target power, in each design's standard units")
+    if view.mde_rows:
+        mde = Table(box=None, padding=(0, 1), pad_edge=False, header_style="audit.label")
+        for name, justify in (
+            ("design", "left"),
+            ("unit", "left"),
+            ("studies", "right"),
+            ("median", "right"),
+            ("middle half", "right"),
+        ):
+            mde.add_column(name, justify=justify, no_wrap=True)
+        for name, unit, count, med, q1, q3 in view.mde_rows:
+            mde.add_row(
+                name,
+                unit,
+                f"{count:,}",
+                format_number(med),
+                f"{format_number(q1)} – {format_number(q3)}",
+            )
+        console.print(Padding(mde, (0, 0, 0, 3)))
+    else:
+        console.print("   none computed")
+    console.print()
+    if view.results_lines:
+        _subheading(console, "Reported results")
+        for line in view.results_lines:
+            console.print(Padding(line, (0, 1, 0, 3)))
+        console.print()
+    _subheading(console, "Findings by rule")
+    counts = Table(box=None, padding=(0, 1), pad_edge=False, header_style="audit.label")
+    counts.add_column("rule", no_wrap=True)
+    counts.add_column("severity", no_wrap=True)
+    counts.add_column("studies", justify="right", no_wrap=True)
+    for rc in view.rule_counts:
+        if rc.state == "active":
+            cell = Text(f"{rc.studies:,}")
+        else:
+            cell = Text(rc.state.split(" ")[0], style="audit.waiting")
+        counts.add_row(rc.rule, _severity(rc.severity), cell)
+    console.print(Padding(counts, (0, 0, 0, 3)))
+    waiting = [rc for rc in view.rule_counts if rc.state.startswith("waiting")]
+    if waiting:
+        needs = "; ".join(
+            f"{rc.rule} needs {rc.state.removeprefix('waiting for ')}" for rc in waiting
+        )
+        console.print(
+            Padding(
+                Text(
+                    f"waiting: metrics this version does not compute yet ({needs})", "audit.muted"
+                ),
+                (0, 1, 0, 3),
+            )
+        )
+    worst = " · ".join(f"{s} {c:,}" for s, c in view.by_worst.items())
+    console.print(
+        Padding(Text(f"audited studies by their most severe finding: {worst}"), (0, 1, 0, 3))
+    )
+
+
+def _render_flagged(view: Overview, console: Console) -> None:
+    shown = len(view.flagged)
+    title = f"Studies with findings ({view.flagged_total:,}), most severe first"
+    _section(console, title)
+    if not view.flagged:
+        console.print(" none")
+    elif console.width < NARROW:
+        _render_flagged_stacked(view.flagged, console)
+    else:
+        table = Table(
+            show_lines=True,
+            header_style="audit.header",
+            pad_edge=False,
+            expand=True,
+        )
+        table.add_column("study", no_wrap=True, ratio=1, min_width=12)
+        table.add_column("key numbers", ratio=2, min_width=12)
+        table.add_column("findings", ratio=5, min_width=20)
+        for entry in view.flagged:
+            study = Text(entry.study_id, style="audit.rule_id")
+            study.append(f"\nrow {entry.row}\n{entry.design}", style="audit.muted")
+            lines = Text()
+            for i, (severity, rule, message) in enumerate(entry.findings):
+                if i:
+                    lines.append("\n")
+                lines.append(severity, style=f"audit.severity.{severity}")
+                lines.append(f" {rule}", style="audit.rule_id")
+                lines.append(f"\n{message}")
+            table.add_row(study, "\n".join(entry.key_numbers), lines)
+        console.print(table)
+    if view.flagged_total > shown:
+        console.print(
+            f"[audit.muted] {view.flagged_total - shown:,} more studies with findings are not "
+            "listed; the --json and --csv exports hold every study.[/]"
+        )
+    if view.clean_total:
+        more = (
+            f" and {view.clean_total - len(view.clean_ids)} more"
+            if view.clean_total > len(view.clean_ids)
+            else ""
+        )
+        console.print(
+            f" No findings for {_plural(view.clean_total, 'audited study', 'audited studies')}: "
+            f"{', '.join(view.clean_ids)}{more}."
+        )
+
+
+def _render_flagged_stacked(entries: list[StudyEntry], console: Console) -> None:
+    """Studies with findings one under the other, for terminals too narrow for the table."""
+    for entry in entries:
+        head = Text(entry.study_id, style="audit.rule_id")
+        head.append(f" · row {entry.row} · {entry.design}", style="audit.muted")
+        console.print(Padding(head, (1, 1, 0, 1)))
+        console.print(Padding(Text(" · ".join(entry.key_numbers)), (0, 1, 0, 3)))
+        for severity, rule, message in entry.findings:
+            console.print(
+                Padding(
+                    Text.assemble(_severity(severity), " ", (rule, "audit.rule_id")),
+                    (0, 1, 0, 3),
+                )
+            )
+            console.print(Padding(Text(message), (0, 1, 0, 5)))
+    console.print()
+
+
+def _render_invalid(view: Overview, console: Console) -> None:
+    if not view.invalid:
+        return
+    _section(console, f"Rows not audited ({view.invalid:,})")
+    table = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
+    table.add_column("row", justify="right", no_wrap=True)
+    table.add_column("study", no_wrap=True)
+    table.add_column("why")
+    for row, study_id, reasons in view.invalid_rows:
+        table.add_row(
+            str(row),
+            Text(study_id or "(no study_id)", style="audit.invalid"),
+            "\n".join(reasons),
+        )
+    console.print(Padding(table, (0, 0, 0, 1)))
+    if view.invalid > len(view.invalid_rows):
+        console.print(
+            f"[audit.muted] {view.invalid - len(view.invalid_rows):,} more rows not audited; "
+            "the exports list them all with their errors.[/]"
+        )
+
+
+def _render_problems(view: Overview, console: Console) -> None:
+    if not view.problems:
+        return
+    _section(console, "Rules that could not be evaluated")
+    for rule, severity, problem in view.problems:
+        console.print(
+            Text.assemble(
+                " ",
+                (rule, "audit.rule_id"),
+                f" ({severity}): {problem}. ",
+                (
+                    "Its studies were not checked; the run treats it as a finding of its "
+                    "severity for --fail-on.",
+                    "audit.muted",
+                ),
+            )
+        )
+
+
+def _render_caveats(result: AuditResult, console: Console) -> None:
+    """The closing section: the caveats that apply to this audit (see :mod:`audit.caveats`)."""
+    _section(console, "Reading these results")
+    for i, caveat in enumerate(result.caveats):
+        top = 1 if i else 0
+        console.print(
+            Padding(
+                Text.assemble((caveat["title"], "audit.header"), " ", caveat["text"]),
+                (top, 1, 0, 1),
+            )
+        )
+
+
+def render_report(
+    result: AuditResult,
+    console: Console,
+    *,
+    fail_on: str | None = None,
+    limit: int = MAX_LISTED,
+) -> None:
+    """The full report: header, portfolio, studies with findings, rows not audited, caveats."""
+    view = build_overview(result, limit=limit)
+    _render_header(view, console, fail_on)
+    _render_portfolio(view, console)
+    _render_problems(view, console)
+    _render_flagged(view, console)
+    _render_invalid(view, console)
+    _render_caveats(result, console)
+
+
+# -- one study in depth ---------------------------------------------------------------------------
+
+
+def _pairs() -> list[tuple[str, str, str]]:
+    """(label, planned column, realized column) for every planned/realized pair of the input."""
+    names = {c.name: c for c in COLUMNS}
+    out = []
+    for c in COLUMNS:
+        if c.name.startswith("planned_"):
+            key = c.name.removeprefix("planned_")
+            if f"realized_{key}" in names:
+                out.append((key.replace("_", " "), c.name, f"realized_{key}"))
+    return out
+
+
+_PAIR_LABELS = {
+    "n1": "size, group 1",
+    "n2": "size, group 2",
+    "sd": "outcome SD",
+    "p1": "control proportion",
+    "icc": "ICC",
+    "cluster size": "mean cluster size",
+    "events": "events",
+    "se": "standard error",
+}
+_EFFECT_COLUMNS = ("planned_effect", "sesoi", "planned_p1", "planned_p2", "effect_scale")
+_RESULT_COLUMNS = (
+    "observed_effect",
+    "observed_se",
+    "observed_ci_low",
+    "observed_ci_high",
+    "observed_p",
+    "reported_power",
 )
 
 
-def render_overview(result: AuditResult, console: Console) -> None:
-    """A plain table of the key per-study metrics, invalid rows with their errors."""
-    n = len(result.table)
-    p = result.portfolio
-    console.print(
-        f"[audit.title]study-audit[/] {result.settings.get('source', '')}: "
-        f"{p['studies']} studies, {p['audited']} audited, {p['invalid']} invalid"
-    )
-    table = Table(show_lines=False, header_style="audit.header", pad_edge=False)
-    table.add_column("row", justify="right", no_wrap=True)
-    table.add_column("study", no_wrap=True)
-    table.add_column("design", no_wrap=True)
-    for _, label in _OVERVIEW:
-        table.add_column(label, justify="right")
+def _cell(value: object) -> str:
+    if value is None:
+        return ""
+    if isinstance(value, (float, np.floating)):
+        return "" if math.isnan(value) else format_number(float(value))
+    return str(value)
+
+
+def render_study(result: AuditResult, console: Console, positions: Sequence[int]) -> None:
+    """One study in depth: planned versus realized, every metric with its meaning, each finding
+    with its rationale, and the notes on what could not be computed."""
+    rules = {r.id: r for r in result.rules}
+    meanings = {**known_columns(), **CONTRACT_METRICS, **METRICS}
     errors = result.error_texts()
-    metrics = result.metrics
-    target = result.table["target_power"].to_numpy()
-    invalid: list[tuple[int, object, list[str]]] = []
-    for i in range(min(n, MAX_LISTED)):
-        row = result.table.iloc[i]
-        if result.status[i] != "audited":
-            table.add_row(
-                str(row["_row"]),
-                str(row["study_id"] or ""),
-                str(row["design"] or ""),
-                "[audit.invalid]invalid[/]",
-                *([""] * (len(_OVERVIEW) - 1)),
-            )
-            invalid.append((row["_row"], row["study_id"], errors[i]))
+    notes = result.by_row(result.notes, "text")
+    for pos in positions:
+        row = result.table.iloc[pos]
+        sid = _text(row["study_id"])
+        console.print(Text(f"study-audit: study {sid}", style="audit.title"))
+        grid = _grid()
+        grid.add_row("file", f"{result.settings.get('source', '')}, row {int(row['_row'])}")
+        if _text(row.get("title")):
+            grid.add_row("title", _text(row["title"]))
+        design = DESIGNS.get(_text(row["design"]))
+        grid.add_row(
+            "design",
+            _text(row["design"]) + (f" — {design.title}" if design is not None else ""),
+        )
+        sides = "one-sided" if _text(row["sides"]) == "1" else "two-sided"
+        grid.add_row(
+            "test",
+            f"alpha {_cell(row['alpha'])} {sides}, {_cell(row['comparisons'])} comparison(s), "
+            f"target power {_cell(row['target_power'])}",
+        )
+        study_findings = result.findings[result.findings["pos"] == pos]
+        status = str(result.status[pos])
+        if status == "audited":
+            status += f", {_plural(len(study_findings), 'finding')}"
+        grid.add_row("status", status)
+        console.print(Padding(grid, (0, 0, 0, 1)))
+
+        if status.startswith("invalid"):
+            _section(console, "Why this row was not audited")
+            for text in errors[pos]:
+                console.print(f" - {text}")
+            console.print()
             continue
-        cells = []
-        for metric, _ in _OVERVIEW:
-            value = metrics.iat[i, metrics.columns.get_loc(metric)]
-            text = format_number(value)
-            if metric == "power_at_planned_effect" and math.isfinite(value):
-                style = "audit.ok" if value >= target[i] - 1e-12 else "audit.low"
-                text = f"[{style}]{text}[/]"
-            cells.append(text)
-        table.add_row(str(row["_row"]), str(row["study_id"]), str(row["design"]), *cells)
+
+        _section(console, "Planned versus realized")
+        table = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
+        table.add_column("quantity", no_wrap=True)
+        for name in ("planned", "realized", "realized / planned"):
+            table.add_column(name, justify="right", no_wrap=True)
+        for key, planned, realized in _pairs():
+            a, b = row.get(planned), row.get(realized)
+            if _cell(a) == "" and _cell(b) == "":
+                continue
+            ratio = ""
+            if isinstance(a, float) and isinstance(b, float) and a and math.isfinite(a * b):
+                ratio = format_number(b / a)
+            table.add_row(_PAIR_LABELS.get(key, key), _cell(a), _cell(b), ratio)
+        console.print(Padding(table, (0, 0, 0, 1)))
+        effects = [f"{c} {_cell(row[c])}" for c in _EFFECT_COLUMNS if _cell(row.get(c)) != ""]
+        if effects:
+            console.print(" effects: " + ", ".join(effects))
+        reported = [f"{c} {_cell(row[c])}" for c in _RESULT_COLUMNS if _cell(row.get(c)) != ""]
+        if reported:
+            console.print(" reported result: " + ", ".join(reported))
+
+        _section(console, "Metrics")
+        metrics = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
+        metrics.add_column("metric", no_wrap=True)
+        metrics.add_column("value", justify="right", no_wrap=True)
+        metrics.add_column("meaning")
+        for name in result.metrics.columns:
+            value = result.metrics[name].iat[pos]
+            metrics.add_row(name, _cell(value) or "-", meanings.get(name, ""))
+        console.print(Padding(metrics, (0, 0, 0, 1)))
+
+        _section(console, "Findings")
+        if not len(study_findings):
+            console.print(" none")
+        ranks = study_findings["severity"].map(SEVERITY_RANK).to_numpy()
+        for _, finding in study_findings.iloc[np.argsort(-ranks, kind="stable")].iterrows():
+            rule = rules.get(finding["rule"])
+            heading = Text.assemble(
+                _severity(finding["severity"]),
+                " ",
+                (finding["rule"], "audit.rule_id"),
+                (f" — {rule.title}" if rule else ""),
+            )
+            console.print(Padding(heading, (0, 1, 0, 1)))
+            body = [Text(str(finding["message"]))]
+            if rule is not None:
+                body.append(Text.assemble(("Why: ", "audit.label"), _paragraph(rule.rationale)))
+                body.extend(Text(f"- {ref}", style="audit.muted") for ref in rule.references)
+            console.print(Padding(Group(*body), (0, 1, 1, 3)))
+
+        if notes[pos]:
+            _section(console, "Notes")
+            for text in notes[pos]:
+                console.print(Padding(Text(f"- {text}"), (0, 1, 0, 1)))
+        console.print()
+    console.print(
+        Text(
+            "The audit supports, and does not replace, the judgment of a qualified statistician.",
+            style="audit.muted",
+        )
+    )
+
+
+def _paragraph(text: str) -> str:
+    """A TOML multi-line paragraph as one flowing line (rich wraps it to the width)."""
+    return " ".join(text.split())
+
+
+# -- rules ----------------------------------------------------------------------------------------
+
+
+def _rule_state(rule: Rule) -> str:
+    if not rule.enabled:
+        return "switched off"
+    missing = rule.missing(known_columns().keys() - CONTRACT_METRICS.keys() | METRICS.keys())
+    return "waits for " + ", ".join(missing) if missing else "active"
+
+
+def _source_label(source: str) -> str:
+    """Bundled rule files by their name in the rules folder; a user's file as given."""
+    from audit.rules import default_rule_files
+
+    bundled = {str(p): p.name for p in default_rule_files()}
+    return f"rules/{bundled[source]} (bundled)" if source in bundled else source
+
+
+def render_rules(ruleset: RuleSet, console: Console) -> None:
+    """The list of rules: id, severity, what it flags, whether it can fire in this version."""
+    files = "bundled" + "".join(f" + {f}" for f in ruleset.files)
+    console.print(Text(f"study-audit rules ({len(ruleset)}; {files})", style="audit.title"))
+    table = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
+    table.add_column("rule", no_wrap=True, style="audit.rule_id")
+    table.add_column("severity", no_wrap=True)
+    table.add_column("flags a study when")
+    for rule in ruleset.rules.values():
+        state = _rule_state(rule)
+        what = Text(rule.title)
+        if state != "active":
+            what.append(f" ({state})", style="audit.waiting")
+        table.add_row(rule.id, _severity(rule.severity), what)
     console.print(table)
-    for row_number, study_id, texts in invalid:
-        console.print(
-            f"[audit.invalid]row {row_number} ({study_id or 'no study_id'}) not audited:[/] "
-            + "; ".join(texts)
+    console.print(
+        "[audit.muted]study-audit rules ID shows a rule in full: its condition, parameters, "
+        "rationale and references.[/]"
+    )
+
+
+def render_rule(rule: Rule, console: Console) -> None:
+    """One rule in full: its definition is its documentation."""
+    console.print(Text.assemble((rule.id, "audit.title"), "  ", _severity(rule.severity)))
+    console.print(rule.title)
+    grid = _grid()
+    grid.add_row("flags when", rule.condition_text())
+    grid.add_row("message", rule.message.text)
+    if rule.supersedes:
+        grid.add_row("replaces", ", ".join(rule.supersedes) + " on the studies it flags")
+    grid.add_row("state", _rule_state(rule))
+    grid.add_row("defined in", _source_label(rule.source))
+    if rule.overridden_by:
+        grid.add_row("changed by", ", ".join(rule.overridden_by))
+    console.print(Padding(grid, (1, 0, 0, 1)))
+    _section(console, "Parameters")
+    if rule.parameters:
+        params = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
+        params.add_column("name", no_wrap=True)
+        params.add_column("value", justify="right", no_wrap=True)
+        params.add_column("allowed", no_wrap=True)
+        params.add_column("meaning")
+        for p in rule.parameters.values():
+            params.add_row(p.name, format_number(p.value), f"{p.low:g} – {p.high:g}", p.meaning)
+        console.print(Padding(params, (0, 0, 0, 1)))
+    else:
+        console.print(" none")
+    _section(console, "Why it matters")
+    console.print(Padding(Text(_paragraph(rule.rationale)), (0, 1, 0, 1)))
+    _section(console, "References")
+    for ref in rule.references or ("none given",):
+        console.print(Padding(Text(f"- {ref}"), (0, 1, 0, 1)))
+
+
+# -- progress -------------------------------------------------------------------------------------
+
+
+class StageBar:
+    """A transient progress bar over the stages of a run, on the console it is given.
+
+    Use as a context manager; call the instance with each stage name as the stage starts.
+    """
+
+    def __init__(self, console: Console, stages: Sequence[str]) -> None:
+        self.stages = list(stages)
+        self.progress = Progress(
+            TextColumn("{task.description:<18}"),
+            BarColumn(),
+            TextColumn("{task.completed}/{task.total}"),
+            TimeElapsedColumn(),
+            console=console,
+            transient=True,
         )
-    if n > MAX_LISTED:
-        console.print(
-            f"[audit.muted]{n - MAX_LISTED} more studies not listed; export them with "
-            "--csv or --json.[/]"
-        )
+        self.task = self.progress.add_task("starting", total=len(self.stages))
+
+    def __enter__(self) -> StageBar:
+        self.progress.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.progress.stop()
+
+    def __call__(self, stage: str) -> None:
+        done = self.stages.index(stage) if stage in self.stages else None
+        if done is None:
+            self.progress.advance(self.task)
+        else:
+            self.progress.update(self.task, completed=done)
+        self.progress.update(self.task, description=stage)
+
+
+def study_ids_hint(result: AuditResult, n: int = 5) -> str:
+    """A few study ids of the portfolio, for an error message about an unknown id."""
+    ids = [str(v) for v in pd.Series(result.table["study_id"]).dropna().head(n)]
+    return ", ".join(ids) + (", ..." if len(result.table) > n else "")

@@ -21,7 +21,7 @@ from audit.read import UNCACHED, RawTable, normalise_header
 
 __all__ = ["COLUMNS", "Column", "Validated", "parse_numbers", "validate"]
 
-Kind = Literal["text", "design", "number", "integer", "choice"]
+Kind = Literal["text", "design", "number", "integer", "choice", "flag"]
 
 
 @dataclass(frozen=True)
@@ -42,6 +42,8 @@ class Column:
     proportion: bool = False
 
     def range_text(self) -> str:
+        if self.kind == "flag":
+            return "yes or no (also true/false, 1/0)"
         if self.kind in ("choice", "design"):
             return "one of " + ", ".join(self.choices)
         lo = "" if self.low is None else f"{self.low:g}"
@@ -171,6 +173,12 @@ COLUMNS: tuple[Column, ...] = (
         low=0.0,
         low_open=False,
     ),
+    Column(
+        "continuity_correction",
+        "flag",
+        "test",
+        "two_proportions: continuity-corrected z test (yes/no; blank: the run's default).",
+    ),
     _count("planned_events", "sizes", "Events expected in planning (survival)."),
     _count("realized_events", "sizes", "Events observed (survival)."),
     Column(
@@ -184,7 +192,13 @@ COLUMNS: tuple[Column, ...] = (
     Column("observed_se", "number", "results", "Its standard error.", low=0.0),
     Column("observed_ci_low", "number", "results", "Lower confidence limit."),
     Column("observed_ci_high", "number", "results", "Upper confidence limit."),
-    _p("observed_p", "results", "Reported p-value.", high_open=False),
+    _p(
+        "observed_ci_level",
+        "results",
+        "Level of the reported confidence interval (blank: the level matching the study's test, "
+        "1 - 2 alpha / (comparisons x sides), e.g. 0.95).",
+    ),
+    _p("observed_p", "results", "Reported p-value of the study's test.", high_open=False),
     _p(
         "reported_power",
         "results",
@@ -192,9 +206,28 @@ COLUMNS: tuple[Column, ...] = (
         low_open=False,
         high_open=False,
     ),
+    Column(
+        "outcome_family",
+        "text",
+        "results",
+        "Label grouping studies of the same outcome on the same effect scale (for the pooled "
+        "basis of the excess-significance test).",
+    ),
 )
 
 SPECS: dict[str, Column] = {c.name: c for c in COLUMNS}
+
+#: Accepted spellings of a yes/no column (``flag``), after lower-casing and trimming.
+FLAG_VALUES: dict[str, float] = {
+    "yes": 1.0,
+    "y": 1.0,
+    "true": 1.0,
+    "1": 1.0,
+    "no": 0.0,
+    "n": 0.0,
+    "false": 0.0,
+    "0": 0.0,
+}
 
 #: Cell text meaning "not reported", compared after lower-casing and trimming.
 MISSING_TOKENS = frozenset(
@@ -351,7 +384,7 @@ def validate(raw: RawTable) -> Validated:
 
     for spec in COLUMNS:
         if spec.name not in data.columns:
-            if spec.kind in ("number", "integer"):
+            if spec.kind in ("number", "integer", "flag"):
                 default = np.nan if spec.default is None else float(spec.default)
                 table[spec.name] = np.full(n, default)
             elif spec.kind == "choice":
@@ -360,6 +393,15 @@ def validate(raw: RawTable) -> Validated:
                 table[spec.name] = pd.Series([None] * n, dtype=object)
             continue
         cells = data[spec.name].reset_index(drop=True)
+        if spec.kind == "flag":
+            text = cells.map(lambda v: None if v is None else _fmt(v).strip().lower())
+            blank = text.isna() | text.isin(MISSING_TOKENS)
+            flag = text.map(lambda v: FLAG_VALUES.get(v, np.nan) if v is not None else np.nan)
+            bad = (~blank & flag.isna()).to_numpy()
+            fail(bad, spec.name, f"expected {spec.range_text()}")
+            # Blank stays nan: the run's default applies (see audit.pipeline).
+            table[spec.name] = flag.to_numpy(dtype=float)
+            continue
         if spec.kind in ("text", "design", "choice"):
             text = cells.map(lambda v: None if v is None else _fmt(v).strip())
             blank = text.isna() | (text == "") | text.str.lower().isin(MISSING_TOKENS - {"-"})
@@ -442,6 +484,17 @@ def validate(raw: RawTable) -> Validated:
             full = np.zeros(n, dtype=bool)
             full[np.flatnonzero(mask)[np.asarray(bad, dtype=bool)]] = True
             fail(full, column, f"{reason} for design {name}")
+
+    # A reported result must hang together: limits in order, the estimate between them.
+    low, high = table["observed_ci_low"].to_numpy(), table["observed_ci_high"].to_numpy()
+    estimate = table["observed_effect"].to_numpy()
+    with np.errstate(invalid="ignore"):
+        fail(low > high, "observed_ci_high", "must not be below observed_ci_low")
+        fail(
+            (low <= high) & ((estimate < low) | (estimate > high)),
+            "observed_effect",
+            "must lie within the confidence interval (observed_ci_low to observed_ci_high)",
+        )
 
     extra = [c for c in data.columns if c not in SPECS]
     for c in extra:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import json
+from pathlib import Path
 
 import pytest
 
@@ -86,8 +87,18 @@ def test_invalid_rows_do_not_change_exit_status(tmp_path):
     assert main(["check", str(path), "--quiet"]) == 0
 
 
-def test_fail_on_without_flags_exits_0(tmp_path):
-    assert main(["check", str(DEMO), "--quiet", "--fail-on", "note"]) == 0
+@pytest.mark.parametrize("fail_on", ["note", "warning", "serious"])
+def test_fail_on_exit_status_follows_the_flags(tmp_path, fail_on):
+    out = tmp_path / "a.json"
+    status = main(["check", str(DEMO), "--quiet", "--json", str(out), "--fail-on", fail_on])
+    rank = {"note": 0, "warning": 1, "serious": 2}
+    flags = [f for s in json.loads(out.read_text())["studies"] for f in s["flags"]]
+    worst = max((rank[f["severity"]] for f in flags), default=-1)
+    assert status == (1 if worst >= rank[fail_on] else 0)
+
+
+def test_without_fail_on_flags_do_not_change_exit_status():
+    assert main(["check", str(DEMO), "--quiet"]) == 0
 
 
 def test_json_to_stdout(capsys):
@@ -109,3 +120,106 @@ def test_usage_error_exits_2():
     with pytest.raises(SystemExit) as exc:
         main(["check"])
     assert exc.value.code == 2
+
+
+# -- rules, --study, --fail-on, --quiet ------------------------------------------------------------
+
+FIXTURE = Path(__file__).parent / "fixtures" / "report_portfolio.csv"
+
+
+def test_fail_on_serious_exits_1_on_a_serious_finding(capsys):
+    # RX-01: 20 per group at d = 0.5 has power about 0.34 (Cohen 1988): power-critically-low.
+    assert main(["check", str(FIXTURE), "--quiet", "--fail-on", "serious"]) == 1
+    assert capsys.readouterr().out == ""
+
+
+def test_rules_file_changes_a_threshold_and_the_exit_status(tmp_path):
+    rules = tmp_path / "lenient.toml"
+    rules.write_text("[override.power-critically-low]\npower_floor = 0.3\n")
+    out = tmp_path / "a.json"
+    args = ["check", str(FIXTURE), "--quiet", "--fail-on", "serious", "--json", str(out)]
+    assert main([*args, "--rules", str(rules)]) == 0
+    doc = json.loads(out.read_text())
+    assert doc["settings"]["rule_parameters"]["power-critically-low"] == {"power_floor": 0.3}
+    assert "power-critically-low" not in doc["portfolio"]["flag_counts"]
+
+
+def test_bad_rules_file_exits_2_before_reading(tmp_path, capsys):
+    rules = tmp_path / "bad.toml"
+    rules.write_text("[override.power-below-target]\nthreshold = 0.5\n")
+    assert main(["check", str(tmp_path / "missing.csv"), "--rules", str(rules)]) == 2
+    err = capsys.readouterr().err
+    assert "unknown setting 'threshold'" in err and "valid: severity, enabled, tolerance" in err
+    assert "Traceback" not in err
+
+
+def test_study_shows_one_study_in_depth(capsys):
+    assert main(["check", str(FIXTURE), "--study", "RX-03"]) == 0
+    out = capsys.readouterr().out
+    assert "study RX-03" in out and "Planned versus realized" in out
+    assert "sd-assumption-optimistic" in out and "Why:" in out
+    assert "RX-01" not in out
+
+
+def test_unknown_study_exits_2(capsys):
+    assert main(["check", str(FIXTURE), "--study", "RX-99"]) == 2
+    err = capsys.readouterr().err
+    assert "no study with study_id 'RX-99'" in err and "RX-01" in err
+
+
+def test_quiet_prints_nothing(tmp_path, capsys):
+    assert main(["check", str(FIXTURE), "--quiet", "--csv", str(tmp_path / "a.csv")]) == 0
+    captured = capsys.readouterr()
+    assert captured.out == "" and captured.err == ""
+
+
+def test_rules_command_lists_and_documents_every_rule(capsys):
+    from audit.rules import load_rules
+
+    assert main(["rules"]) == 0
+    listing = capsys.readouterr().out
+    for rule in load_rules().rules.values():
+        assert rule.id in listing
+        assert main(["rules", rule.id]) == 0
+        page = " ".join(capsys.readouterr().out.split())
+        assert " ".join(rule.title.split()) in page
+        assert " ".join(rule.rationale.split())[:60] in page
+        for ref in rule.references:
+            assert ref[:30] in page
+
+
+def test_rules_command_with_a_user_file(tmp_path, capsys):
+    rules = tmp_path / "mine.toml"
+    rules.write_text("[override.power-below-target]\ntolerance = 0.05\n")
+    assert main(["rules", "power-below-target", "--rules", str(rules)]) == 0
+    out = capsys.readouterr().out
+    assert "0.05" in out and "changed by" in out
+    assert str(rules) in "".join(out.split())  # a long path may wrap
+
+
+def test_unknown_rule_id_exits_2(capsys):
+    assert main(["rules", "power-below"]) == 2
+    assert "did you mean 'power-below-target'" in capsys.readouterr().err
+
+
+def test_no_progress_bar_when_stderr_is_not_a_terminal(tmp_path, capsys, monkeypatch):
+    import audit.cli
+
+    monkeypatch.setattr(audit.cli, "PROGRESS_MIN_BYTES", 0)
+    assert main(["check", str(FIXTURE)]) == 0
+    assert capsys.readouterr().err == ""
+
+
+def test_a_rule_that_fails_is_reported_and_counts_for_fail_on(monkeypatch, capsys):
+    from audit import rules
+
+    def boom(self, data, params):
+        raise RuntimeError("simulated failure")
+
+    monkeypatch.setattr(rules.IsText, "evaluate", boom)  # only rules testing text fail
+    assert main(["check", str(FIXTURE), "--quiet", "--fail-on", "warning"]) == 1
+    err = capsys.readouterr().err
+    assert "rule control-rate-assumption-optimistic could not be evaluated" in err
+    assert "simulated failure" in err and "Traceback" not in err
+    # The other rules still ran: the serious finding of RX-01 is there.
+    assert main(["check", str(FIXTURE), "--quiet", "--fail-on", "serious"]) == 1

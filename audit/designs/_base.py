@@ -22,12 +22,32 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from audit.designs._power import t_ncp_for_power, t_power
-from audit.designs._solve import solve_increasing
+from audit.designs._power import t_critical, t_ncp_for_power, t_power
+from audit.designs._solve import smallest_size
 
-__all__ = ["Design", "Scenario", "TDesign", "TestSpec"]
+__all__ = ["Design", "NullReasons", "Scenario", "TDesign", "TestSpec"]
 
 Scenario = dict[str, np.ndarray]
+
+
+@dataclass(frozen=True)
+class NullReasons:
+    """Why a metric may come out null, for the notes (see :meth:`Design.null_explanations`).
+
+    Attributes
+    ----------
+    inputs : ``(blank_mask, column label)`` pairs: a null value where the mask is set is
+        explained as "missing <label>".
+    conditions : ``(mask, reason)`` pairs, tried in order for null values no blank input
+        explains.
+    replace : True when these are the metric's only reasons (the generic ones, read from the
+        scenario keys, would name the wrong columns); otherwise they are added to the generic
+        ones, conditions first.
+    """
+
+    inputs: tuple[tuple[np.ndarray, str], ...] = ()
+    conditions: tuple[tuple[np.ndarray, str], ...] = ()
+    replace: bool = False
 
 
 @dataclass(frozen=True)
@@ -136,6 +156,12 @@ class Design:
         """Inverse of :meth:`to_analysis`."""
         return np.asarray(value, dtype=float)
 
+    def analysis_df(self, sc: Scenario) -> np.ndarray:
+        """Degrees of freedom of the test on the analysis scale (``inf``: a z test), used to read
+        reported confidence intervals and p-values; nan where the scenario leaves them unknown."""
+        size = len(next(iter(sc.values()))) if sc else 0
+        return np.full(size, np.inf)
+
     def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         """Design-specific row checks: ``(bad_mask, column, reason)`` triples."""
         return []
@@ -179,6 +205,22 @@ class Design:
         """Design-specific metrics beyond the common set (e.g. events for survival)."""
         return {}
 
+    def null_explanations(
+        self,
+        rows: pd.DataFrame,
+        plan: Scenario,
+        real: Scenario,
+        effect: np.ndarray,
+        test: TestSpec,
+    ) -> dict[str, NullReasons]:
+        """Design-specific reasons for null metrics, by metric name.
+
+        Added to (or, with ``replace``, replacing) the generic reasons of :mod:`audit.metrics`,
+        which name the scenario keys' :meth:`sources`. A metric the generic notes do not know
+        (one of :meth:`extra_metrics`) needs its reasons here.
+        """
+        return {}
+
 
 class TDesign(Design):
     """A design analysed by a t test on ``effect / se`` with ``df`` degrees of freedom.
@@ -194,6 +236,9 @@ class TDesign(Design):
 
     def df(self, sc: Scenario) -> np.ndarray:
         raise NotImplementedError
+
+    def analysis_df(self, sc: Scenario) -> np.ndarray:
+        return self.df(sc)
 
     def min_n1(self, sc: Scenario) -> np.ndarray:
         """Smallest first-group size for which ``df > 0``."""
@@ -245,6 +290,15 @@ class TDesign(Design):
             se1 = self.se(unit)
             z = special.ndtri(1.0 - test.alpha / test.sides) + special.ndtri(test.power)
             guess = (z * se1 / np.abs(effect)) ** 2
+            # One refinement with the t distribution at the df of that first guess (normal
+            # approximation to the noncentral t, Abramowitz & Stegun 26.7.10): the bracket
+            # search then starts within a fraction of a per cent of the root.
+            df0 = self.df(self.with_n1(sc, guess))
+            usable = np.isfinite(df0) & (df0 > 0)
+            c = t_critical(test.alpha, test.sides, np.where(usable, df0, np.inf))
+            spread = np.sqrt(1.0 + c * c / (2.0 * np.where(usable, df0, np.inf)))
+            multiplier = c + special.ndtri(test.power) * spread
+            guess = np.where(usable, (multiplier * se1 / np.abs(effect)) ** 2, guess)
         lower = self.min_n1(sc)
         ok = (
             np.isfinite(guess)
@@ -273,7 +327,8 @@ class TDesign(Design):
             sub_test.power,
             sub_test.direction,
         )
-        n1 = solve_increasing(
+        # A very large effect may reach the target with the smallest usable design already.
+        n1 = smallest_size(
             power_at,
             sub_test.power,
             np.maximum(guess[ok], lower[ok] * 1.01),

@@ -7,7 +7,7 @@ from collections.abc import Callable
 import numpy as np
 from scipy.optimize import elementwise
 
-__all__ = ["solve_increasing", "unique_rows"]
+__all__ = ["smallest_size", "solve_increasing", "unique_rows"]
 
 
 def solve_increasing(
@@ -76,6 +76,40 @@ def solve_increasing(
             maxiter=200,
         )
     out[found] = np.where(root.success, root.x, np.nan)
+    return out
+
+
+def smallest_size(
+    func: Callable[..., np.ndarray],
+    target: np.ndarray,
+    guess: np.ndarray,
+    *,
+    lower: np.ndarray,
+    upper: float = 1e12,
+    args: tuple[np.ndarray, ...] = (),
+) -> np.ndarray:
+    """Smallest continuous size ``x >= lower`` with ``func(x, *args) >= target``.
+
+    Like :func:`solve_increasing`, but where ``func`` already reaches the target at ``lower``
+    (a large effect needs no more than the smallest usable design) the answer is ``lower``
+    rather than "no root". nan where the target is not reached below ``upper``.
+    """
+    target = np.asarray(target, dtype=float)
+    lower = np.broadcast_to(np.asarray(lower, dtype=float), target.shape)
+    args = tuple(np.broadcast_to(np.asarray(a, dtype=float), target.shape) for a in args)
+    with np.errstate(all="ignore"):
+        done = func(lower, *args) >= target
+    out = np.where(done, lower, np.nan)
+    rest = ~done
+    if rest.any():
+        out[rest] = solve_increasing(
+            func,
+            target[rest],
+            np.maximum(np.broadcast_to(guess, target.shape)[rest], lower[rest]),
+            lower=lower[rest],
+            upper=upper,
+            args=tuple(a[rest] for a in args),
+        )
     return out
 
 

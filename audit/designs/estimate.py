@@ -50,6 +50,9 @@ class Estimate(Design):
         sc["df"] = np.where(np.isnan(sc["df"]), np.inf, sc["df"])
         return sc
 
+    def analysis_df(self, sc: Scenario) -> np.ndarray:
+        return sc["df"]
+
     def total_size(self, sc: Scenario) -> np.ndarray:
         return np.full(len(sc["se"]), np.nan)
 

@@ -1,0 +1,278 @@
+"""Figures (``check --plots DIR``): power curves per study and two portfolio views.
+
+* ``study_<id>.png`` — power against the true effect for the design as planned and as realized,
+  with the planned effect, the SESOI and the MDE marked. Written for at most ``max_studies``
+  studies: those with the most serious findings first, then in input order.
+* ``portfolio_power.png`` — distribution of design-based power at the planned effect.
+* ``portfolio_mde.png`` — standardized MDE against realized size, one colour per design.
+
+Curves are computed with the designs' own vectorised power functions over a grid (one call per
+design for all plotted studies). Rendering uses matplotlib's Agg backend: no display is needed.
+"""
+
+from __future__ import annotations
+
+import re
+import textwrap
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from audit.designs import DESIGNS
+from audit.metrics import test_settings
+
+if TYPE_CHECKING:
+    from audit.pipeline import AuditResult
+
+__all__ = ["PALETTE", "power_curves", "write_plots"]
+
+#: The project's colours: planned design, realized design, markers, portfolio bars.
+PALETTE = {
+    "planned": "#5B7DA8",
+    "realized": "#C0612B",
+    "planned_effect": "#3D3D3D",
+    "sesoi": "#7A9A3A",
+    "mde": "#8E4A8E",
+    "bars": "#6E9C9A",
+    "grid": "#E3E3E3",
+    "designs": ["#5B7DA8", "#C0612B", "#7A9A3A", "#8E4A8E", "#B8963A", "#3F8F8C", "#A8525E",
+                "#6B6B6B", "#4F6F3A", "#9C7BB5"],
+}  # fmt: skip
+
+_GRID = 121
+_SEVERITY_RANK = {"serious": 0, "warning": 1, "note": 2}
+
+
+def _style(ax) -> None:
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.grid(True, color=PALETTE["grid"], linewidth=0.8)
+    ax.set_axisbelow(True)
+
+
+def power_curves(
+    result: AuditResult, positions: np.ndarray, grid: int = _GRID
+) -> dict[int, dict[str, np.ndarray]]:
+    """Power of the planned and the realized design over a grid of true effects.
+
+    Returns, per row position, ``effect`` (effect units), ``planned`` and ``realized`` (power),
+    computed with one vectorised call per design.
+    """
+    table, metrics = result.table, result.metrics
+    out: dict[int, dict[str, np.ndarray]] = {}
+    designs = table["design"].to_numpy(dtype=object)
+    for name, design in DESIGNS.items():
+        pos = positions[designs[positions] == name]
+        if not len(pos):
+            continue
+        rows = table.iloc[pos]
+        test = test_settings(rows, design)
+        effect = design.planned_effect(rows)
+        anchors = [design.to_analysis(effect), design.to_analysis(metrics["mde"].to_numpy()[pos])]
+        if "sesoi" in rows:
+            anchors.append(
+                design.to_analysis(design.orient(rows["sesoi"].to_numpy(float), test.direction))
+            )
+        with np.errstate(invalid="ignore", divide="ignore"):
+            reach = np.nanmax(np.abs(np.vstack(anchors)), axis=0) * 1.6
+        reach = np.where(np.isfinite(reach) & (reach > 0), reach, 1.0)
+        k = len(pos)
+        frac = np.linspace(0.0, 1.0, grid)
+        analysis = test.direction[:, None] * reach[:, None] * frac[None, :]
+        effects = design.from_analysis(analysis).reshape(-1)
+
+        def tile(a: np.ndarray) -> np.ndarray:
+            return np.repeat(a, grid)
+
+        big_test = type(test)(
+            tile(test.alpha), tile(test.sides), tile(test.power), tile(test.direction)
+        )
+        curves = {}
+        for stage in ("planned", "realized"):
+            sc = {key: tile(v) for key, v in design.scenario(rows, stage).items()}
+            with np.errstate(all="ignore"):
+                curves[stage] = design.power(sc, effects, big_test).reshape(k, grid)
+        effects = effects.reshape(k, grid)
+        for i, p in enumerate(pos):
+            out[int(p)] = {
+                "effect": effects[i],
+                "planned": curves["planned"][i],
+                "realized": curves["realized"][i],
+            }
+    return out
+
+
+def _choose(result: AuditResult, max_studies: int, study: str | None) -> np.ndarray:
+    audited = np.flatnonzero(result.valid)
+    if study is not None:
+        ids = result.table["study_id"].to_numpy(dtype=object)
+        return audited[ids[audited] == study]
+    rank = np.full(len(result.table), 3)
+    f = result.findings
+    if len(f):
+        sev = f["severity"].map(_SEVERITY_RANK).fillna(3).to_numpy(dtype=int)
+        np.minimum.at(rank, f["pos"].to_numpy(dtype=int), sev)
+    order = audited[np.argsort(rank[audited], kind="stable")]
+    return np.sort(order[:max_studies])
+
+
+def _safe_name(text: object) -> str:
+    return re.sub(r"[^A-Za-z0-9._-]+", "_", str(text)).strip("_")[:80] or "study"
+
+
+def write_plots(
+    result: AuditResult,
+    folder: str | Path,
+    *,
+    fmt: str = "png",
+    max_studies: int = 60,
+    study: str | None = None,
+) -> list[Path]:
+    """Write the figures into ``folder``; returns the files written."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    written: list[Path] = []
+    positions = _choose(result, max_studies, study)
+    curves = power_curves(result, positions)
+    table, metrics = result.table, result.metrics
+    for pos in positions:
+        c = curves.get(int(pos))
+        if c is None or not np.isfinite(c["realized"]).any():
+            continue
+        row = table.iloc[pos]
+        design = DESIGNS[row["design"]]
+        fig, ax = plt.subplots(figsize=(6.4, 4.6), dpi=110)
+        _style(ax)
+        ax.plot(c["effect"], c["planned"], color=PALETTE["planned"], lw=2, label="as planned")
+        ax.plot(c["effect"], c["realized"], color=PALETTE["realized"], lw=2, label="as realized")
+        target = float(row["target_power"])
+        ax.axhline(target, color="#9A9A9A", lw=0.9, ls="-", zorder=0)
+        ax.text(
+            0.995,
+            target,
+            f"target {target:.0%}",
+            va="bottom",
+            ha="right",
+            fontsize=8,
+            color="#555555",
+            transform=ax.get_yaxis_transform(),
+        )
+        marks = [
+            (
+                design.planned_effect(table.iloc[[pos]])[0],
+                "planned effect",
+                PALETTE["planned_effect"],
+                "-",
+            ),
+            (metrics["mde"].iat[pos], "MDE (realized)", PALETTE["mde"], "--"),
+        ]
+        if "sesoi" in row and np.isfinite(row["sesoi"]):
+            direction = design.direction(design.planned_effect(table.iloc[[pos]]))
+            marks.append(
+                (
+                    design.orient(np.array([row["sesoi"]]), direction)[0],
+                    "SESOI",
+                    PALETTE["sesoi"],
+                    ":",
+                )
+            )
+        for x, label, colour, ls in marks:
+            if x is not None and np.isfinite(x):
+                ax.axvline(x, color=colour, lw=1.3, ls=ls, label=f"{label} = {x:.3g}")
+        achieved = metrics["power_at_planned_effect"].iat[pos]
+        if np.isfinite(achieved):
+            ax.plot([marks[0][0]], [achieved], "o", color=PALETTE["realized"], ms=6, zorder=5)
+            ax.annotate(
+                f"{achieved:.2f}",
+                (marks[0][0], achieved),
+                textcoords="offset points",
+                xytext=(6, -12),
+                fontsize=8,
+                color=PALETTE["realized"],
+            )
+        ax.set_ylim(0, 1.02)
+        ax.set_xlabel(f"true effect: {design.effect_unit}")
+        ax.set_ylabel("design-based power")
+        title = str(row["study_id"])
+        if isinstance(row.get("title"), str):
+            title += " — " + textwrap.shorten(row["title"], width=64, placeholder="…")
+        ax.set_title(title, loc="left", fontsize=10)
+        ax.legend(
+            frameon=False, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=3
+        )
+        fig.tight_layout()
+        path = folder / f"study_{_safe_name(row['study_id'])}.{fmt}"
+        fig.savefig(path)
+        plt.close(fig)
+        written.append(path)
+    if study is None:
+        written.extend(_portfolio_plots(result, folder, fmt, plt))
+    return written
+
+
+def _portfolio_plots(result: AuditResult, folder: Path, fmt: str, plt) -> list[Path]:
+    from matplotlib.ticker import FuncFormatter
+
+    written = []
+    metrics = result.metrics
+    power = metrics["power_at_planned_effect"].to_numpy(dtype=float)
+    power = power[np.isfinite(power)]
+    if len(power):
+        fig, ax = plt.subplots(figsize=(6.4, 3.8), dpi=110)
+        _style(ax)
+        ax.hist(power, bins=np.linspace(0, 1, 21), color=PALETTE["bars"], edgecolor="white")
+        median = float(np.median(power))
+        ax.axvline(median, color=PALETTE["realized"], lw=1.6, label=f"median {median:.2f}")
+        ax.axvline(0.8, color=PALETTE["planned_effect"], lw=1.0, ls=":", label="0.80")
+        ax.set_xlabel("design-based power at the planned effect (realized design)")
+        ax.set_ylabel("studies")
+        ax.set_title(f"Power at the planned effect, {len(power)} studies", loc="left", fontsize=10)
+        ax.legend(frameon=False, fontsize=8)
+        fig.tight_layout()
+        path = folder / f"portfolio_power.{fmt}"
+        fig.savefig(path)
+        plt.close(fig)
+        written.append(path)
+    table = result.table
+    mde_std = np.abs(metrics["mde_std"].to_numpy(dtype=float))
+    size = np.nansum(
+        np.column_stack(
+            [table.get("realized_n1", np.nan), table.get("realized_n2", np.nan)]
+        ).astype(float),
+        axis=1,
+    )
+    ok = np.isfinite(mde_std) & (size > 0) & result.valid
+    if ok.any():
+        fig, ax = plt.subplots(figsize=(6.4, 4.2), dpi=110)
+        _style(ax)
+        designs = table["design"].to_numpy(dtype=object)
+        for k, name in enumerate(sorted(set(designs[ok]))):
+            sel = ok & (designs == name)
+            std = DESIGNS[name].standardized_as or "std"
+            ax.scatter(
+                size[sel],
+                mde_std[sel],
+                s=18,
+                alpha=0.8,
+                color=PALETTE["designs"][k % len(PALETTE["designs"])],
+                label=f"{name} ({std})",
+            )
+        ax.set_xscale("log")
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+        ax.xaxis.set_minor_formatter(FuncFormatter(lambda v, _: ""))
+        ax.set_xlabel("realized size (units in n1 + n2; clusters for cluster trials)")
+        ax.set_ylabel("standardized MDE (magnitude)")
+        ax.set_title("What each study could detect, by size", loc="left", fontsize=10)
+        ax.legend(frameon=False, fontsize=7, ncol=2)
+        fig.tight_layout()
+        path = folder / f"portfolio_mde.{fmt}"
+        fig.savefig(path)
+        plt.close(fig)
+        written.append(path)
+    return written

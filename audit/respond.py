@@ -1,0 +1,344 @@
+"""Reviewer-ready text for one study: ``study-audit respond FILE STUDY_ID``.
+
+A short Markdown draft an author can adapt when a referee asks about power: the sensitivity
+analysis (MDE at the realized size for 80 % and 90 % power), design-based power at the planned
+effect and at the SESOI (or at an effect the referee names), what the confidence interval rules
+out, why observed power is not reported, and the references. Numbers are printed as a journal
+would: powers as proportions with two decimals (as in the terminal report), effects with three
+significant digits, P values without a leading zero.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from audit._format import format_number
+from audit.designs import DESIGNS, TestSpec
+from audit.errors import ConfigError
+from audit.metrics import test_settings
+
+if TYPE_CHECKING:
+    from audit.pipeline import AuditResult
+
+__all__ = ["REFERENCES", "format_p", "respond_text"]
+
+REFERENCES = {
+    "hoenig": "Hoenig, J. M., & Heisey, D. M. (2001). The abuse of power: The pervasive fallacy "
+    "of power calculations for data analysis. *The American Statistician*, 55(1), 19–24.",
+    "gelman": "Gelman, A., & Carlin, J. (2014). Beyond power calculations: Assessing Type S "
+    "(sign) and Type M (magnitude) errors. *Perspectives on Psychological Science*, 9(6), "
+    "641–651.",
+    "cohen": "Cohen, J. (1988). *Statistical power analysis for the behavioral sciences* (2nd "
+    "ed.). Lawrence Erlbaum.",
+    "bloom": "Bloom, H. S. (1995). Minimum detectable effects: A simple way to report the "
+    "statistical power of experimental designs. *Evaluation Review*, 19(5), 547–556.",
+}
+
+
+def format_p(p: float) -> str:
+    """A P value as journals print it.
+
+    >>> format_p(0.0312), format_p(0.0004), format_p(0.5)
+    ('P = .031', 'P < .001', 'P = .50')
+    """
+    if p < 0.001:
+        return "P < .001"
+    text = f"{p:.3f}" if p < 0.01 or (p < 0.1 and round(p, 2) != p) else f"{p:.2f}"
+    return "P = " + text.lstrip("0")
+
+
+#: What the effect of each design is called in a sentence ("a ... of 0.5").
+EFFECT_NOUNS = {
+    "one_mean": "mean difference from the reference value",
+    "paired_means": "mean within-pair difference",
+    "two_means": "difference in means",
+    "two_proportions": "risk difference",
+    "correlation": "correlation",
+    "k_means": "Cohen's f",
+    "regression": "Cohen's f²",
+    "cluster_two_means": "difference in means",
+    "survival": "hazard ratio",
+    "estimate": "effect",
+}
+_STANDARDIZED_NOUNS = {"paired_means": "standardized mean difference (d_z)"}
+#: What the sizes count, by design.
+UNIT_NOUNS = {"paired_means": "pairs", "cluster_two_means": "clusters", "survival": "participants"}
+
+
+def _num(value: float) -> str:
+    """Three significant digits, with a true minus sign."""
+    return format_number(value).replace("-", "−")
+
+
+def _fixed(value: float, decimals: int) -> str:
+    return f"{value:.{decimals}f}".replace("-", "−")
+
+
+def _decimals(spread: float) -> int:
+    """Decimals that show an interval of this half-width to about two significant digits."""
+    if not math.isfinite(spread) or spread <= 0:
+        return 2
+    return int(min(6, max(0, 1 - math.floor(math.log10(spread)))))
+
+
+def _power(value: float) -> str:
+    return f"{value:.2f}"
+
+
+def _alpha_phrase(alpha: float, sides: float, comparisons: float) -> str:
+    side = "two-sided" if sides == 2 else "one-sided"
+    text = f"{side} α = {format_number(alpha)}"
+    if comparisons > 1:
+        text += f" shared by {int(comparisons)} comparisons (Bonferroni)"
+    return text
+
+
+def _effect_phrase(design_name: str, standardized: bool, value: float, std: float | None) -> str:
+    """'a difference in means of 5 (d = 0.5)'."""
+    design = DESIGNS[design_name]
+    if standardized:
+        noun = _STANDARDIZED_NOUNS.get(design_name, "standardized mean difference (d)")
+        return f"a {noun} of {_num(value)}"
+    text = f"a {EFFECT_NOUNS.get(design_name, 'effect')} of {_num(value)}"
+    label = design.standardized_as
+    if std is not None and math.isfinite(std) and label and not math.isclose(abs(std), abs(value)):
+        text += f" ({label} = {_num(std)})"
+    return text
+
+
+def _mde_at(result: AuditResult, pos: int, power: float) -> tuple[float, float]:
+    """MDE (effect units and standardized) of the realized design at another target power."""
+    name = str(result.table["design"].iat[pos])
+    design = DESIGNS[name]
+    rows = result.table.iloc[[pos]]
+    base = test_settings(rows, design)
+    test = TestSpec(base.alpha, base.sides, np.array([power]), base.direction)
+    real = design.scenario(rows, "realized")
+    with np.errstate(all="ignore"):
+        mde = design.mde(real, test)
+        std = design.standardize(real, mde)
+    return float(mde[0]), float(std[0])
+
+
+def _power_at(result: AuditResult, pos: int, effect: float) -> float:
+    name = str(result.table["design"].iat[pos])
+    design = DESIGNS[name]
+    rows = result.table.iloc[[pos]]
+    real = design.scenario(rows, "realized")
+    with np.errstate(all="ignore"):
+        return float(design.power(real, np.array([effect]), test_settings(rows, design))[0])
+
+
+def respond_text(result: AuditResult, study_id: str, effect: float | None = None) -> str:
+    """The Markdown draft for ``study_id`` (the first audited row with that id).
+
+    Raises
+    ------
+    ConfigError
+        No audited study has that id.
+    """
+    positions = [p for p in result.positions_of(study_id) if result.valid[p]]
+    if not positions:
+        known = result.positions_of(study_id)
+        why = "its row was not audited (see the report)" if known else "no such study_id"
+        raise ConfigError(f"cannot write a response for '{study_id}': {why}.")
+    pos = positions[0]
+    row = result.table.iloc[pos]
+    m = result.metrics.iloc[pos]
+    name = str(row["design"])
+    design = DESIGNS[name]
+    alpha, sides = float(row["alpha"]), float(row["sides"])
+    comparisons = float(row["comparisons"])
+    target = float(row["target_power"])
+    refs = ["hoenig"]
+    paragraphs: list[str] = []
+    standardized = row.get("effect_scale") == "d" and name in (
+        "one_mean",
+        "paired_means",
+        "two_means",
+        "cluster_two_means",
+    )
+    units = UNIT_NOUNS.get(name, "analysable units")
+    title = row.get("title")
+    heading = f"## Power and sensitivity: {row['study_id']}"
+    if isinstance(title, str) and title:
+        heading += f" ({title})"
+
+    # -- the plan -------------------------------------------------------------------------
+    planned = design.planned_effect(result.table.iloc[[pos]])[0]
+    plan_bits = []
+    if math.isfinite(planned):
+        std_planned = float(
+            design.standardize(
+                design.scenario(result.table.iloc[[pos]], "planned"), np.array([planned])
+            )[0]
+        )
+        plan_bits.append(
+            f"The study was planned to detect "
+            f"{_effect_phrase(name, standardized, planned, std_planned)} with {target:.0%} "
+            f"power at a "
+            f"{_alpha_phrase(alpha, sides, comparisons)}."
+        )
+        discrepancy = m.get("plan_discrepancy", np.nan)
+        needed_events = m.get("events_required_plan", np.nan)
+        events = f" ({int(needed_events)} events)" if math.isfinite(needed_events) else ""
+        required = m.get("n_required_plan", np.nan)
+        if math.isfinite(discrepancy) and math.isfinite(required):
+            if abs(discrepancy) <= 0.10:
+                plan_bits.append(
+                    f"Recomputed from its stated inputs, that calculation requires "
+                    f"{int(required)} {units}{events}, in line with the planned size."
+                )
+            else:
+                plan_bits.append(
+                    f"Recomputed from its stated inputs, that calculation requires "
+                    f"{int(required)} {units}{events}; the planned size is "
+                    f"{abs(discrepancy):.0%} {'larger' if discrepancy > 0 else 'smaller'} than "
+                    f"that."
+                )
+    ratio = m.get("n_ratio", np.nan)
+    if math.isfinite(ratio):
+        plan_bits.append(f"The analysed sample was {ratio:.0%} of the planned size.")
+    sd_ratio = m.get("sd_ratio", np.nan)
+    if math.isfinite(sd_ratio) and abs(sd_ratio - 1) >= 0.05:
+        plan_bits.append(
+            f"The observed standard deviation was {sd_ratio:.2f} times the planning value."
+        )
+    if plan_bits:
+        paragraphs.append(" ".join(plan_bits))
+
+    # -- sensitivity ----------------------------------------------------------------------
+    sens = []
+    mde80, std80 = _mde_at(result, pos, 0.80)
+    mde90, std90 = _mde_at(result, pos, 0.90)
+    if math.isfinite(mde80):
+        tested = _alpha_phrase(alpha, sides, comparisons)
+        at90 = (
+            f", and {_effect_phrase(name, standardized, mde90, std90)} with 90% power."
+            if math.isfinite(mde90)
+            else "."
+        )
+        sens.append(
+            f"**Sensitivity analysis.** With the realized sample size and variability, the "
+            f"smallest effect the study could detect with 80% power ({tested}) was "
+            f"{_effect_phrase(name, standardized, mde80, std80)}{at90}"
+        )
+        refs.append("bloom")
+        if design.standardized_as in ("d", "d_z", "f", "f2", "r", "h"):
+            refs.append("cohen")
+    target_mde = m.get("mde", np.nan)
+    if (
+        math.isfinite(target_mde)
+        and not math.isclose(target, 0.8)
+        and not math.isclose(target, 0.9)
+    ):
+        sens.append(
+            f"At the study's own target of {target:.0%} power, the minimal detectable effect was "
+            f"{_num(target_mde)}."
+        )
+    powers = []
+    p_plan = m.get("power_at_planned_effect", np.nan)
+    if math.isfinite(p_plan):
+        powers.append(
+            f"design-based power for the planned effect of {_num(planned)} was {_power(p_plan)}"
+        )
+    if effect is not None:
+        p_eff = _power_at(result, pos, effect)
+        if math.isfinite(p_eff):
+            powers.append(f"for an effect of {_num(effect)} it was {_power(p_eff)}")
+    else:
+        p_sesoi = m.get("power_at_sesoi", np.nan)
+        sesoi = row.get("sesoi")
+        if math.isfinite(p_sesoi):
+            powers.append(
+                f"for the smallest effect of interest ({_num(abs(float(sesoi)))}) it was "
+                f"{_power(p_sesoi)}"
+            )
+    if powers:
+        text = "; ".join(powers)
+        sens.append(text[0].upper() + text[1:] + ".")
+    if sens:
+        paragraphs.append(" ".join(sens))
+
+    # -- the result -------------------------------------------------------------------------
+    verdict = m.get("ci_verdict")
+    low, high = m.get("result_ci_low", np.nan), m.get("result_ci_high", np.nan)
+    estimate, p = m.get("result_effect", np.nan), m.get("result_p", np.nan)
+    if isinstance(verdict, str) and math.isfinite(low) and math.isfinite(high):
+        level = m.get("result_ci_level", np.nan)
+        level_text = f"{level * 100:g}%" if math.isfinite(level) else "the"
+        places = _decimals(
+            (high - low) / 2
+            if name != "survival"
+            else min(abs(high - estimate), abs(estimate - low))
+        )
+        bits = [
+            f"**What the result rules out.** The estimate was {_fixed(estimate, places)} "
+            f"({level_text} CI {_fixed(low, places)} to {_fixed(high, places)}"
+            + (f"; {format_p(p)})." if math.isfinite(p) else ").")
+        ]
+        sesoi_val = row.get("sesoi")
+        if verdict == "detected":
+            bits.append(
+                "The result was statistically significant: the interval excludes the null "
+                "value (no effect)."
+            )
+            exaggeration = m.get("exaggeration", np.nan)
+            if math.isfinite(exaggeration) and exaggeration >= 1.25 and math.isfinite(p_plan):
+                refs.append("gelman")
+                bits.append(
+                    f"Because power at the planned effect was {_power(p_plan)}, a significant "
+                    f"estimate from this design would overstate a true effect of that size by "
+                    f"about {exaggeration:.1f}-fold on average (Type M error; Gelman & Carlin, "
+                    f"2014), so the estimate should be read with that in mind."
+                )
+        elif verdict == "excludes_sesoi":
+            bits.append(
+                f"The result was not statistically significant, and the interval excludes "
+                f"effects as large as the smallest effect of interest "
+                f"({_num(abs(float(sesoi_val)))}): the data argue against an effect of relevant "
+                f"size."
+            )
+        elif verdict == "excludes_planned_effect":
+            bits.append(
+                f"The result was not statistically significant, and the interval excludes the "
+                f"planned effect of {_num(planned)}, though not all smaller effects."
+            )
+        else:
+            bits.append(
+                "The result was not statistically significant, and the interval includes both "
+                "no effect and the planned effect: the study can neither confirm nor rule out "
+                "an effect of the size it was designed to detect."
+            )
+        paragraphs.append(" ".join(bits))
+
+    # -- observed power -------------------------------------------------------------------
+    obs = (
+        "**Why observed power is not reported.** Power calculated from the observed effect is "
+        "a one-to-one function of the P value and adds no information beyond it (Hoenig & "
+        'Heisey, 2001); a non-significant result always has low "observed power". We '
+        "therefore report power for effects fixed in advance and the confidence interval "
+        "instead."
+    )
+    reported = row.get("reported_power")
+    if reported is not None and math.isfinite(float(reported)):
+        obs += (
+            f" The post-hoc power of {float(reported):.2f} given in the manuscript should be "
+            f"removed for that reason."
+        )
+    paragraphs.append(obs)
+
+    out = [heading, "", *[p + "\n" for p in paragraphs]]
+    out.append("### References\n")
+    for key in dict.fromkeys(refs):
+        out.append(f"- {REFERENCES[key]}")
+    out.append("")
+    out.append(
+        "_Draft written by study-audit from the values in the input file; check each number "
+        "against the analysis actually reported. It supports, and does not replace, the "
+        "judgment of a qualified statistician._"
+    )
+    return "\n".join(out) + "\n"

@@ -1,0 +1,912 @@
+"""Audit rules as data: load and check rule files (TOML), evaluate them vectorised -> findings.
+
+A rule file holds new rules as ``[[rule]]`` tables and changes to existing rules as
+``[override.RULE-ID]`` tables::
+
+    [[rule]]
+    id = "power-below-target"
+    severity = "warning"                      # note < warning < serious
+    title = "one line: what the rule flags"
+    message = "power is {power_at_planned_effect:.2f}, below {target_power:.2f}"
+    rationale = "why it matters, in a paragraph"
+    references = ["Author (year). Title. Journal."]
+    when = { column = "power_at_planned_effect", below = "target_power", margin = "tolerance" }
+
+    [rule.parameters.tolerance]
+    value = 0.01
+    range = [0.0, 0.5]
+    meaning = "shortfalls up to this much power are ignored"
+
+    [override.mde-exceeds-sesoi]
+    severity = "serious"
+    sesoi_multiple = 1.5                      # a parameter, by name
+
+Conditions are data, never code: a *test* names a ``column`` (a metric or an input column) and
+one comparison — ``below``, ``at_most``, ``above``, ``at_least`` (against a number, a parameter
+or another column; optionally ``magnitude = true`` to compare absolute values, ``factor`` to
+multiply the threshold, ``margin`` to move it away from the column's value), ``is`` (text, or a
+list of texts) or ``blank`` (true/false) — and tests combine with ``all``, ``any`` and ``not``.
+Logic is three-valued: a comparison with a blank value is *unknown*, never true, and ``not``
+keeps it unknown, so a blank cell never raises a flag by accident.
+
+Message templates quote columns and parameters as ``{name}`` (3 significant digits) or
+``{name:spec}`` with a Python format specification (``{n_ratio:.0%}``). A rule that names a
+metric the tool does not compute yet *waits*: it is listed, and raises no flag, until the metric
+exists.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+import tomllib
+from collections.abc import Callable, Collection, Iterable, Mapping
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any, ClassVar
+
+import numpy as np
+import pandas as pd
+
+from audit._format import format_number
+from audit.errors import ConfigError
+from audit.metrics import METRICS
+from audit.schema import COLUMNS
+
+__all__ = [
+    "CONTRACT_METRICS",
+    "SEVERITIES",
+    "SEVERITY_RANK",
+    "Evaluation",
+    "Parameter",
+    "Rule",
+    "RuleSet",
+    "evaluate_rules",
+    "load_rules",
+    "resolve_rules",
+]
+
+SEVERITIES = ("note", "warning", "serious")
+SEVERITY_RANK = {s: i for i, s in enumerate(SEVERITIES)}
+
+#: Metric names of the output contract (DESIGN.md section 5) that rules may name even where
+#: this version does not compute them yet; a rule naming one waits until it exists.
+CONTRACT_METRICS: dict[str, str] = {
+    "type_s": "Type S error rate of a significant estimate (Gelman & Carlin 2014)",
+    "exaggeration": "expected exaggeration ratio of a significant estimate (Type M)",
+    "observed_power": "power at the observed effect: a transform of the p-value, never evidence",
+    "ci_verdict": "what the reported CI shows: detected, excludes_planned_effect, "
+    "excludes_sesoi or inconclusive",
+    "events_required_plan": "events needed at the planned hazard ratio (survival)",
+    "icc_ratio": "realized / planned intracluster correlation (cluster designs)",
+    "events_ratio": "realized / planned number of events (survival)",
+}
+
+#: Columns holding text: only ``is`` and ``blank`` apply to them.
+TEXT_COLUMNS = frozenset(
+    {c.name for c in COLUMNS if c.kind in ("text", "design")} | {"effect_scale", "ci_verdict"}
+)
+
+_ID = re.compile(r"^[a-z][a-z0-9]*(?:-[a-z0-9]+)+$")
+_NAME = re.compile(r"^[a-z][a-z0-9_]*$")
+_FIELD = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)(?::([^{}]*))?\}")
+_NUMERIC_OPS = {"below": "<", "at_most": "≤", "above": ">", "at_least": "≥"}
+_RULE_KEYS = {
+    "id": "kebab-case identifier that says what the rule flags",
+    "severity": "note, warning or serious",
+    "title": "one line: what the rule flags",
+    "when": "the condition, as data (see `study-audit rules` and DEVELOPERS.md)",
+    "message": "one-line message template quoting the numbers, e.g. {power_at_planned_effect}",
+    "rationale": "a paragraph: why the finding matters and where the threshold comes from",
+    "references": "list of references (may be empty in a user's own rule)",
+}
+_RULE_OPTIONAL = {"parameters", "supersedes", "enabled"}
+_PARAMETER_KEYS = {"value", "range", "meaning"}
+_OVERRIDE_RESERVED = {"severity", "enabled"}
+
+
+def known_columns() -> dict[str, str]:
+    """Every name a rule may test or quote: input columns, metrics, contract metrics to come."""
+    names = {c.name: c.meaning for c in COLUMNS}
+    names.update(CONTRACT_METRICS)
+    names.update(METRICS)
+    return names
+
+
+def _suggest(name: str, valid: Iterable[str]) -> str:
+    close = difflib.get_close_matches(name, list(valid), n=1)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+# -- conditions -----------------------------------------------------------------------------------
+
+
+class _Data:
+    """Column access for one evaluation: metrics first, then the validated input table."""
+
+    def __init__(self, table: pd.DataFrame, metrics: pd.DataFrame) -> None:
+        self.table = table
+        self.metrics = metrics
+        self.n = len(table)
+        self._numeric: dict[str, np.ndarray] = {}
+
+    def has(self, name: str) -> bool:
+        return name in self.metrics.columns or name in self.table.columns
+
+    def raw(self, name: str) -> np.ndarray:
+        frame = self.metrics if name in self.metrics.columns else self.table
+        return frame[name].to_numpy()
+
+    def numeric(self, name: str) -> np.ndarray:
+        if name not in self._numeric:
+            values = self.raw(name)
+            if values.dtype.kind in "fiub":
+                out = values.astype(float)
+            else:  # text-typed columns ('sides' is "1"/"2"); anything not a number is blank
+                out = pd.to_numeric(pd.Series(values), errors="coerce").to_numpy(dtype=float)
+            self._numeric[name] = out
+        return self._numeric[name]
+
+    def text(self, name: str) -> np.ndarray:
+        values = pd.Series(self.raw(name), dtype=object)
+        blank = values.isna()
+        return values.where(blank, values.astype(str).str.strip()).to_numpy(dtype=object)
+
+    def blank(self, name: str) -> np.ndarray:
+        values = self.raw(name)
+        if values.dtype.kind in "fiub":
+            return np.isnan(values.astype(float))
+        series = pd.Series(values, dtype=object)
+        return (series.isna() | (series.astype(str).str.strip() == "")).to_numpy()
+
+
+#: (true, false) masks; a row in neither is unknown.
+Truth = tuple[np.ndarray, np.ndarray]
+
+
+class Condition:
+    """A condition over the rows; subclasses are the tests and their combinations."""
+
+    def evaluate(self, data: _Data, params: Mapping[str, float]) -> Truth:
+        raise NotImplementedError
+
+    def names(self) -> set[str]:
+        """Column and parameter names the condition reads."""
+        raise NotImplementedError
+
+    def literals(self) -> list[float]:
+        """Numbers written into the condition itself rather than as named parameters."""
+        return []
+
+    def describe(self, params: Collection[str] = ()) -> str:
+        """The condition in words; ``params`` are the names that are parameters, not columns."""
+        raise NotImplementedError
+
+
+@dataclass(frozen=True)
+class Compare(Condition):
+    """``column`` compared with a threshold: a number, a parameter or another column."""
+
+    column: str
+    op: str
+    operand: float | str
+    magnitude: bool = False
+    factor: float | str | None = None
+    margin: float | str | None = None
+
+    def _value(self, ref: float | str | None, data: _Data, params: Mapping[str, float]):
+        if ref is None or isinstance(ref, float):
+            return ref
+        if ref in params:
+            return float(params[ref])
+        return data.numeric(ref)
+
+    def evaluate(self, data: _Data, params: Mapping[str, float]) -> Truth:
+        x = data.numeric(self.column)
+        threshold = np.broadcast_to(
+            np.asarray(self._value(self.operand, data, params), dtype=float), x.shape
+        )
+        if self.magnitude:
+            x, threshold = np.abs(x), np.abs(threshold)
+        factor = self._value(self.factor, data, params)
+        if factor is not None:
+            threshold = threshold * factor
+        margin = self._value(self.margin, data, params)
+        if margin is not None:
+            # The margin moves the threshold away from the value: "below by more than margin".
+            threshold = (
+                threshold - margin if self.op in ("below", "at_most") else threshold + margin
+            )
+        known = ~np.isnan(x) & ~np.isnan(threshold)
+        with np.errstate(invalid="ignore"):
+            hit = {
+                "below": np.less,
+                "at_most": np.less_equal,
+                "above": np.greater,
+                "at_least": np.greater_equal,
+            }[self.op](x, threshold)
+        true = hit & known
+        return true, known & ~true
+
+    def names(self) -> set[str]:
+        refs = (self.operand, self.factor, self.margin)
+        return {self.column} | {r for r in refs if isinstance(r, str)}
+
+    def literals(self) -> list[float]:
+        return [r for r in (self.operand, self.factor, self.margin) if isinstance(r, float)]
+
+    def describe(self, params: Collection[str] = ()) -> str:
+        def show(ref: float | str) -> str:
+            return format_number(ref) if isinstance(ref, float) else ref
+
+        left, right = self.column, show(self.operand)
+        if self.magnitude:
+            left = f"|{left}|"
+            if isinstance(self.operand, str) and self.operand not in params:
+                right = f"|{right}|"
+        if self.factor is not None:
+            right = f"{show(self.factor)} × {right}"
+        if self.margin is not None:
+            sign = "−" if self.op in ("below", "at_most") else "+"
+            right = f"{right} {sign} {show(self.margin)}"
+        return f"{left} {_NUMERIC_OPS[self.op]} {right}"
+
+
+@dataclass(frozen=True)
+class IsText(Condition):
+    """``column`` equals one of the given texts (trimmed, case-sensitive)."""
+
+    column: str
+    values: tuple[str, ...]
+
+    def evaluate(self, data: _Data, params: Mapping[str, float]) -> Truth:
+        text = data.text(self.column)
+        known = ~pd.isna(text)
+        true = known & np.isin(text.astype(str), self.values)
+        return true, known & ~true
+
+    def names(self) -> set[str]:
+        return {self.column}
+
+    def describe(self, params: Collection[str] = ()) -> str:
+        quoted = " or ".join(f"'{v}'" for v in self.values)
+        return f"{self.column} is {quoted}"
+
+
+@dataclass(frozen=True)
+class Blank(Condition):
+    """``column`` is blank (``blank = true``) or given (``blank = false``); never unknown."""
+
+    column: str
+    blank: bool
+
+    def evaluate(self, data: _Data, params: Mapping[str, float]) -> Truth:
+        empty = data.blank(self.column)
+        true = empty if self.blank else ~empty
+        return true, ~true
+
+    def names(self) -> set[str]:
+        return {self.column}
+
+    def describe(self, params: Collection[str] = ()) -> str:
+        return f"{self.column} is {'blank' if self.blank else 'given'}"
+
+
+@dataclass(frozen=True)
+class AllOf(Condition):
+    parts: tuple[Condition, ...]
+    joiner: ClassVar[str] = "and"
+
+    def evaluate(self, data: _Data, params: Mapping[str, float]) -> Truth:
+        true = np.ones(data.n, dtype=bool)
+        false = np.zeros(data.n, dtype=bool)
+        for part in self.parts:
+            t, f = part.evaluate(data, params)
+            true &= t
+            false |= f
+        return true & ~false, false
+
+    def names(self) -> set[str]:
+        return set().union(*(p.names() for p in self.parts))
+
+    def literals(self) -> list[float]:
+        return [x for p in self.parts for x in p.literals()]
+
+    def describe(self, params: Collection[str] = ()) -> str:
+        def wrap(p: Condition) -> str:
+            text = p.describe(params)
+            return f"({text})" if isinstance(p, (AllOf, AnyOf)) else text
+
+        return f" {self.joiner} ".join(wrap(p) for p in self.parts)
+
+
+@dataclass(frozen=True)
+class AnyOf(AllOf):
+    joiner: ClassVar[str] = "or"
+
+    def evaluate(self, data: _Data, params: Mapping[str, float]) -> Truth:
+        true = np.zeros(data.n, dtype=bool)
+        false = np.ones(data.n, dtype=bool)
+        for part in self.parts:
+            t, f = part.evaluate(data, params)
+            true |= t
+            false &= f
+        return true, false & ~true
+
+
+@dataclass(frozen=True)
+class Not(Condition):
+    part: Condition
+
+    def evaluate(self, data: _Data, params: Mapping[str, float]) -> Truth:
+        true, false = self.part.evaluate(data, params)
+        return false, true
+
+    def names(self) -> set[str]:
+        return self.part.names()
+
+    def literals(self) -> list[float]:
+        return self.part.literals()
+
+    def describe(self, params: Collection[str] = ()) -> str:
+        return f"not ({self.part.describe(params)})"
+
+
+# -- message templates ----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Template:
+    """A one-line message with ``{name}`` / ``{name:spec}`` fields, filled per flagged row."""
+
+    text: str
+    fields: tuple[tuple[str, str | None], ...]
+
+    @classmethod
+    def parse(cls, text: str, where: str) -> Template:
+        if "\n" in text.strip():
+            raise ConfigError(f"{where}: the message must be one line.")
+        fields = tuple((m.group(1), m.group(2)) for m in _FIELD.finditer(text))
+        if "{" in _FIELD.sub("", text) or "}" in _FIELD.sub("", text):
+            raise ConfigError(
+                f"{where}: the message has a brace that is not a field; fields look like "
+                "{name} or {name:.2f}."
+            )
+        return cls(text.strip(), fields)
+
+    def names(self) -> set[str]:
+        return {name for name, _ in self.fields}
+
+    def render(self, values: Mapping[str, np.ndarray], size: int) -> np.ndarray:
+        """Messages for ``size`` rows; ``values`` maps each field name to its row values."""
+        out = np.full(size, "", dtype=object)
+        start = 0
+        for match in _FIELD.finditer(self.text):
+            out = out + self.text[start : match.start()]
+            name, spec = match.group(1), match.group(2)
+            out = out + np.array([_format(v, spec) for v in values[name]], dtype=object)
+            start = match.end()
+        return out + self.text[start:]
+
+
+def _format(value: Any, spec: str | None) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "n/a"
+    if isinstance(value, str):
+        if spec:
+            try:  # a number held as text, like the 'sides' choice "2"
+                return format(float(value), spec)
+            except ValueError:
+                return format(value, spec)
+        return value
+    if isinstance(value, (int, float, np.integer, np.floating)):
+        return format(float(value), spec) if spec else format_number(float(value))
+    return str(value)
+
+
+# -- rules ----------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """A named threshold of a rule: its value, the allowed range and what it means."""
+
+    name: str
+    value: float
+    low: float
+    high: float
+    meaning: str
+
+
+@dataclass(frozen=True)
+class Rule:
+    """One audit rule: definition and documentation in one (see the module docstring)."""
+
+    id: str
+    severity: str
+    title: str
+    when: Condition
+    message: Template
+    rationale: str
+    references: tuple[str, ...]
+    parameters: Mapping[str, Parameter] = field(default_factory=dict)
+    supersedes: tuple[str, ...] = ()
+    enabled: bool = True
+    source: str = ""
+    overridden_by: tuple[str, ...] = ()
+
+    def condition_text(self) -> str:
+        """The condition in words, with parameter names as written in the rule."""
+        return self.when.describe(set(self.parameters))
+
+    def param_values(self) -> dict[str, float]:
+        return {name: p.value for name, p in self.parameters.items()}
+
+    def columns(self) -> set[str]:
+        """Columns (metrics or inputs) the rule reads, in its condition or its message."""
+        return (self.when.names() | self.message.names()) - set(self.parameters)
+
+    def missing(self, available: Iterable[str]) -> list[str]:
+        """Columns the rule needs that are not among ``available`` (it waits for them)."""
+        have = set(available)
+        return sorted(c for c in self.columns() if c not in have)
+
+
+@dataclass
+class RuleSet:
+    """The rules of a run, by id, in listing order, with the files they came from."""
+
+    rules: dict[str, Rule]
+    files: list[str]
+
+    def enabled(self) -> list[Rule]:
+        return [r for r in self.rules.values() if r.enabled]
+
+    def get(self, rule_id: str) -> Rule:
+        if rule_id not in self.rules:
+            raise ConfigError(
+                f"unknown rule '{rule_id}'{_suggest(rule_id, self.rules)}; "
+                f"known rules: {', '.join(self.rules)}."
+            )
+        return self.rules[rule_id]
+
+    def __len__(self) -> int:
+        return len(self.rules)
+
+
+_TYPE_NAMES = {
+    str: "text",
+    float: "a number",
+    int: "a number",
+    bool: "true or false",
+    dict: "a table",
+    list: "a list",
+}
+
+
+def _expect(kind: type, value: Any, where: str, what: str) -> Any:
+    """``value`` if it is of ``kind`` (booleans are not numbers), else a ConfigError."""
+    if not isinstance(value, kind) or (isinstance(value, bool) and kind is not bool):
+        raise ConfigError(
+            f"{where}: {what} must be {_TYPE_NAMES.get(kind, kind.__name__)}, got {value!r}."
+        )
+    return value
+
+
+class _Parser:
+    """Builds rules from parsed TOML, checking every name against columns and parameters."""
+
+    def __init__(self, where: str, parameters: Mapping[str, Parameter]) -> None:
+        self.where = where
+        self.parameters = parameters
+        self.columns = known_columns()
+
+    def column(self, name: Any) -> str:
+        _expect(str, name, self.where, "'column'")
+        if name not in self.columns:
+            raise ConfigError(
+                f"{self.where}: unknown column '{name}'{_suggest(name, self.columns)}; rules can "
+                "test the input columns and metrics listed in DEVELOPERS.md."
+            )
+        return name
+
+    def ref(self, value: Any, key: str) -> float | str:
+        if isinstance(value, bool):
+            raise ConfigError(f"{self.where}: '{key}' must be a number, parameter or column.")
+        if isinstance(value, (int, float)):
+            return float(value)
+        _expect(str, value, self.where, f"'{key}'")
+        if value in self.parameters:
+            return value
+        if value in self.columns:
+            if value in TEXT_COLUMNS:
+                raise ConfigError(f"{self.where}: '{key}' names the text column '{value}'.")
+            return value
+        valid = [*self.parameters, *self.columns]
+        raise ConfigError(
+            f"{self.where}: '{key} = \"{value}\"' is neither a parameter of this rule "
+            f"({', '.join(self.parameters) or 'none'}) nor a column{_suggest(value, valid)}."
+        )
+
+    def condition(self, spec: Any) -> Condition:
+        _expect(dict, spec, self.where, "a condition")
+        keys = set(spec)
+        for combiner, cls in (("all", AllOf), ("any", AnyOf)):
+            if combiner in keys:
+                if keys != {combiner}:
+                    raise ConfigError(f"{self.where}: '{combiner}' stands alone in its table.")
+                parts = _expect(list, spec[combiner], self.where, f"'{combiner}'")
+                if not parts:
+                    raise ConfigError(f"{self.where}: '{combiner}' needs at least one condition.")
+                return cls(tuple(self.condition(p) for p in parts))
+        if "not" in keys:
+            if keys != {"not"}:
+                raise ConfigError(f"{self.where}: 'not' stands alone in its table.")
+            return Not(self.condition(spec["not"]))
+        if "column" not in keys:
+            raise ConfigError(
+                f"{self.where}: a condition is a test with a 'column', or 'all', 'any' or 'not' "
+                f"(got keys {', '.join(sorted(keys)) or 'none'})."
+            )
+        column = self.column(spec["column"])
+        ops = keys & {*_NUMERIC_OPS, "is", "blank"}
+        if len(ops) != 1:
+            raise ConfigError(
+                f"{self.where}: the test on '{column}' needs exactly one of "
+                f"{', '.join([*_NUMERIC_OPS, 'is', 'blank'])}."
+            )
+        (op,) = ops
+        modifiers = keys - {"column", op}
+        allowed = {"magnitude", "factor", "margin"} if op in _NUMERIC_OPS else set()
+        if modifiers - allowed:
+            raise ConfigError(
+                f"{self.where}: unexpected {', '.join(sorted(modifiers - allowed))} in the test "
+                f"on '{column}'" + (f"; allowed: {', '.join(sorted(allowed))}." if allowed else ".")
+            )
+        if op == "blank":
+            return Blank(column, _expect(bool, spec["blank"], self.where, "'blank'"))
+        if op == "is":
+            if column not in TEXT_COLUMNS:
+                raise ConfigError(
+                    f"{self.where}: 'is' compares text; '{column}' is a number (use below, "
+                    "at_most, above or at_least)."
+                )
+            values = spec["is"] if isinstance(spec["is"], list) else [spec["is"]]
+            return IsText(column, tuple(_expect(str, v, self.where, "'is'") for v in values))
+        if column in TEXT_COLUMNS:
+            raise ConfigError(
+                f"{self.where}: '{column}' holds text; compare it with 'is' or 'blank'."
+            )
+        return Compare(
+            column,
+            op,
+            self.ref(spec[op], op),
+            magnitude=_expect(bool, spec.get("magnitude", False), self.where, "'magnitude'"),
+            factor=self.ref(spec["factor"], "factor") if "factor" in spec else None,
+            margin=self.ref(spec["margin"], "margin") if "margin" in spec else None,
+        )
+
+
+def _parameter(name: str, spec: Any, where: str) -> Parameter:
+    if not _NAME.match(name) or name in _OVERRIDE_RESERVED:
+        raise ConfigError(
+            f"{where}: parameter name '{name}' must be snake_case and not severity or enabled."
+        )
+    if name in known_columns():
+        raise ConfigError(f"{where}: parameter '{name}' has the name of a column; rename it.")
+    _expect(dict, spec, where, f"parameter '{name}'")
+    missing = _PARAMETER_KEYS - set(spec)
+    extra = set(spec) - _PARAMETER_KEYS
+    if missing or extra:
+        raise ConfigError(
+            f"{where}: parameter '{name}' needs exactly value, range and meaning"
+            + (f" (missing {', '.join(sorted(missing))})" if missing else "")
+            + (f" (unexpected {', '.join(sorted(extra))})" if extra else "")
+            + "."
+        )
+    rng = spec["range"]
+    if (
+        not isinstance(rng, list)
+        or len(rng) != 2
+        or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in rng)
+        or rng[0] > rng[1]
+    ):
+        raise ConfigError(f"{where}: parameter '{name}' range must be [low, high], got {rng!r}.")
+    meaning = _expect(str, spec["meaning"], where, f"parameter '{name}' meaning").strip()
+    if not meaning:
+        raise ConfigError(f"{where}: parameter '{name}' needs a meaning.")
+    param = Parameter(name, 0.0, float(rng[0]), float(rng[1]), meaning)
+    return _set_value(param, spec["value"], where)
+
+
+def _set_value(param: Parameter, value: Any, where: str) -> Parameter:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or math.isnan(value):
+        raise ConfigError(f"{where}: parameter '{param.name}' must be a number, got {value!r}.")
+    if not param.low <= value <= param.high:
+        raise ConfigError(
+            f"{where}: parameter '{param.name}' = {value:g} is outside its allowed range "
+            f"[{param.low:g}, {param.high:g}] ({param.meaning})."
+        )
+    return replace(param, value=float(value))
+
+
+def _severity(value: Any, where: str) -> str:
+    if value not in SEVERITIES:
+        raise ConfigError(
+            f"{where}: severity must be one of {', '.join(SEVERITIES)}, got {value!r}."
+        )
+    return value
+
+
+def parse_rule(spec: Any, source: str) -> Rule:
+    """Build and check one rule from a ``[[rule]]`` table."""
+    _expect(dict, spec, source, "each [[rule]]")
+    rid = spec.get("id")
+    where = f"{source}: rule '{rid}'" if isinstance(rid, str) else f"{source}: a rule"
+    missing = [k for k in _RULE_KEYS if k not in spec]
+    if missing:
+        raise ConfigError(
+            f"{where} lacks {', '.join(missing)}; a rule needs "
+            + "; ".join(f"{k} ({v})" for k, v in _RULE_KEYS.items())
+            + "."
+        )
+    unknown = set(spec) - set(_RULE_KEYS) - _RULE_OPTIONAL
+    if unknown:
+        valid = [*_RULE_KEYS, *sorted(_RULE_OPTIONAL)]
+        raise ConfigError(
+            f"{where}: unknown key {', '.join(sorted(unknown))}; valid keys: {', '.join(valid)}."
+        )
+    _expect(str, rid, where, "id")
+    if not _ID.match(rid):
+        raise ConfigError(
+            f"{where}: the id must be kebab-case words (like 'power-below-target'), got '{rid}'."
+        )
+    params_spec = _expect(dict, spec.get("parameters", {}), where, "parameters")
+    parameters = {name: _parameter(name, p, where) for name, p in params_spec.items()}
+    parser = _Parser(where, parameters)
+    when = parser.condition(spec["when"])
+    message = Template.parse(_expect(str, spec["message"], where, "message"), where)
+    for name, fmt in message.fields:
+        if name not in parameters:
+            parser.column(name)
+        sample: Any = "text" if name in TEXT_COLUMNS else 0.5
+        try:
+            format(sample, fmt or "")
+        except ValueError as exc:
+            raise ConfigError(
+                f"{where}: bad format '{{{name}:{fmt}}}' in the message: {exc}."
+            ) from None
+    references = _expect(list, spec["references"], where, "references")
+    for ref in references:
+        _expect(str, ref, where, "each reference")
+    supersedes = spec.get("supersedes", [])
+    _expect(list, supersedes, where, "supersedes")
+    for ref in supersedes:
+        _expect(str, ref, where, "each superseded rule id")
+    unused = set(parameters) - when.names() - message.names()
+    if unused:
+        raise ConfigError(f"{where}: parameter {', '.join(sorted(unused))} is never used.")
+    text = {k: _expect(str, spec[k], where, k).strip() for k in ("title", "rationale")}
+    for key, value in text.items():
+        if not value:
+            raise ConfigError(f"{where}: {key} is empty.")
+    return Rule(
+        id=rid,
+        severity=_severity(spec["severity"], where),
+        title=text["title"],
+        when=when,
+        message=message,
+        rationale=text["rationale"],
+        references=tuple(references),
+        parameters=parameters,
+        supersedes=tuple(supersedes),
+        enabled=_expect(bool, spec.get("enabled", True), where, "enabled"),
+        source=source,
+    )
+
+
+def _apply_override(rule: Rule, spec: Any, source: str) -> Rule:
+    where = f"{source}: override of '{rule.id}'"
+    _expect(dict, spec, where, "an override")
+    changes: dict[str, Any] = {"overridden_by": (*rule.overridden_by, source)}
+    params = dict(rule.parameters)
+    for key, value in spec.items():
+        if key == "severity":
+            changes["severity"] = _severity(value, where)
+        elif key == "enabled":
+            changes["enabled"] = _expect(bool, value, where, "enabled")
+        elif key in params:
+            params[key] = _set_value(params[key], value, where)
+        else:
+            valid = ["severity", "enabled", *params]
+            raise ConfigError(
+                f"{where}: unknown setting '{key}'{_suggest(key, valid)}; "
+                f"valid: {', '.join(valid)}."
+            )
+    return replace(rule, parameters=params, **changes)
+
+
+def _read_toml(source: str | Path | Mapping[str, Any]) -> tuple[str, Mapping[str, Any]]:
+    if isinstance(source, Mapping):
+        return "<rules given in Python>", source
+    path = Path(source)
+    try:
+        with path.open("rb") as handle:
+            return str(path), tomllib.load(handle)
+    except FileNotFoundError:
+        raise ConfigError(f"rules file {path}: no such file.") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"rules file {path} is not valid TOML: {exc}.") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"rules file {path} cannot be read: {exc}.") from None
+
+
+def _merge(rules: dict[str, Rule], source: str | Path | Mapping[str, Any]) -> str:
+    name, doc = _read_toml(source)
+    unknown = set(doc) - {"rule", "override"}
+    if unknown:
+        raise ConfigError(
+            f"{name}: unknown top-level key {', '.join(sorted(unknown))}; a rules file has "
+            "[[rule]] tables (new rules) and [override.RULE-ID] tables (changes)."
+        )
+    for spec in _expect(list, doc.get("rule", []), name, "'rule' ([[rule]] tables)"):
+        rule = parse_rule(spec, name)
+        if rule.id in rules:
+            raise ConfigError(
+                f"{name}: rule '{rule.id}' is already defined in {rules[rule.id].source}; to "
+                f"change it write [override.{rule.id}], or give the new rule its own id."
+            )
+        rules[rule.id] = rule
+    for rid, spec in _expect(dict, doc.get("override", {}), name, "'override'").items():
+        if rid not in rules:
+            raise ConfigError(
+                f"{name}: override of unknown rule '{rid}'{_suggest(rid, rules)}; "
+                f"known rules: {', '.join(rules)}."
+            )
+        rules[rid] = _apply_override(rules[rid], spec, name)
+    return name
+
+
+def default_rule_files() -> list[Path]:
+    """The bundled rule files, in name order."""
+    from audit.resources import bundled_dir
+
+    return sorted(bundled_dir("rules").glob("*.toml"))
+
+
+def load_rules(
+    sources: Iterable[str | Path | Mapping[str, Any]] = (), *, defaults: bool = True
+) -> RuleSet:
+    """The bundled rules (unless ``defaults=False``) plus ``sources``, applied in order.
+
+    Each source is a TOML file path or an already parsed mapping of the same shape.
+
+    Raises
+    ------
+    ConfigError
+        A file is missing or malformed, a rule lacks a field, a name is unknown, an override
+        names an unknown rule or parameter, or a value is outside its range.
+    """
+    rules: dict[str, Rule] = {}
+    files: list[str] = []
+    for path in default_rule_files() if defaults else []:
+        _merge(rules, path)
+    for source in sources:
+        files.append(_merge(rules, source))
+    for rule in rules.values():
+        for other in rule.supersedes:
+            if other not in rules:
+                raise ConfigError(
+                    f"{rule.source}: rule '{rule.id}' supersedes unknown rule '{other}'."
+                )
+    order = sorted(rules.values(), key=lambda r: (-SEVERITY_RANK[r.severity], r.id))
+    return RuleSet({r.id: r for r in order}, files)
+
+
+def resolve_rules(rules: Any) -> RuleSet:
+    """What ``audit_table(rules=...)`` accepts: None (the bundled rules), a :class:`RuleSet`, or
+    one or more extra rule files / parsed mappings applied on top of the bundled rules."""
+    if rules is None:
+        return load_rules()
+    if isinstance(rules, RuleSet):
+        return rules
+    if isinstance(rules, (str, Path, Mapping)):
+        return load_rules([rules])
+    return load_rules(list(rules))
+
+
+# -- evaluation -----------------------------------------------------------------------------------
+
+_FINDING_COLUMNS = ["pos", "rule", "severity", "message"]
+
+
+@dataclass
+class Evaluation:
+    """What the rules found.
+
+    Attributes
+    ----------
+    findings : ``pos``, ``rule``, ``severity``, ``message``, ordered by row then rule.
+    problems : ``rule``, ``severity``, ``problem``: rules that failed internally (the run went on).
+    waiting : rule id -> the metric columns it needs that this run does not have.
+    """
+
+    findings: pd.DataFrame
+    problems: pd.DataFrame
+    waiting: dict[str, list[str]]
+
+
+def evaluate_rules(
+    ruleset: RuleSet,
+    table: pd.DataFrame,
+    metrics: pd.DataFrame,
+    valid: np.ndarray,
+    *,
+    on_rule: Callable[[Rule], None] | None = None,
+) -> Evaluation:
+    """Apply every enabled rule to the valid rows, each as a few vectorised masks.
+
+    Messages are formatted only for flagged rows. A rule that raises becomes a line of
+    ``problems`` and the other rules still run. Where a rule fires, the findings of the rules it
+    ``supersedes`` on the same row are dropped (a serious finding replaces its milder twin).
+    """
+    data = _Data(table.reset_index(drop=True), metrics.reset_index(drop=True))
+    valid = np.asarray(valid, dtype=bool)
+    parts: list[pd.DataFrame] = []
+    problems: list[dict[str, str]] = []
+    waiting: dict[str, list[str]] = {}
+    fired: dict[str, np.ndarray] = {}
+    enabled = ruleset.enabled()
+    for order, rule in enumerate(enabled):
+        if on_rule is not None:
+            on_rule(rule)
+        missing = [c for c in sorted(rule.columns()) if not data.has(c)]
+        if missing:
+            waiting[rule.id] = missing
+            continue
+        try:
+            params = rule.param_values()
+            true, _ = rule.when.evaluate(data, params)
+            pos = np.flatnonzero(true & valid)
+            values = {
+                name: (np.full(len(pos), params[name]) if name in params else data.raw(name)[pos])
+                for name in rule.message.names()
+            }
+            messages = rule.message.render(values, len(pos))
+        except Exception as exc:  # a broken rule must not stop the audit
+            problems.append(
+                {
+                    "rule": rule.id,
+                    "severity": rule.severity,
+                    "problem": f"{type(exc).__name__}: {exc}",
+                }
+            )
+            continue
+        fired[rule.id] = pos
+        parts.append(
+            pd.DataFrame(
+                {
+                    "pos": pos,
+                    "rule": rule.id,
+                    "severity": rule.severity,
+                    "message": messages,
+                    "_order": order,
+                }
+            )
+        )
+    findings = (
+        pd.concat(parts, ignore_index=True)
+        if parts
+        else pd.DataFrame({c: pd.Series(dtype=object) for c in [*_FINDING_COLUMNS, "_order"]})
+    )
+    for rule in enabled:
+        if rule.id in fired and rule.supersedes and len(findings):
+            drop = findings["rule"].isin(rule.supersedes) & findings["pos"].isin(fired[rule.id])
+            findings = findings[~drop.to_numpy()]
+    if len(findings):
+        findings = findings.sort_values(["pos", "_order"], kind="stable")
+        findings["pos"] = findings["pos"].astype(int)
+    findings = findings.drop(columns="_order").reset_index(drop=True)
+    problem_frame = pd.DataFrame(problems, columns=["rule", "severity", "problem"])
+    return Evaluation(findings, problem_frame, waiting)

@@ -1,0 +1,258 @@
+"""Outputs people use: annotated workbook, input template, referee text, plots, the demo."""
+
+from __future__ import annotations
+
+import csv
+
+import numpy as np
+import pandas as pd
+import pytest
+from openpyxl import load_workbook
+
+import audit
+from audit.cli import main
+from audit.report import key_numbers
+from audit.resources import bundled_dir
+from audit.respond import format_p, respond_text
+from audit.schema import COLUMNS
+from audit.template import EXAMPLES, write_template
+from audit.workbook import write_workbook
+
+DEMO = bundled_dir("demo_data") / "demo_portfolio.csv"
+DEMO_XLSX = bundled_dir("demo_data") / "demo_portfolio.xlsx"
+FORMULA_LIKE = [
+    '=HYPERLINK("http://example.org","x")',
+    "@SUM(A1:A3)",
+    "+1 booster arm",
+    "-minus arm first",
+]
+
+
+def _same_metrics(a: audit.AuditResult, b: audit.AuditResult) -> None:
+    assert list(a.status) == list(b.status)
+    for name in a.metrics.columns:
+        x, y = a.metrics[name], b.metrics[name]
+        if name == "ci_verdict":
+            assert x.fillna("").tolist() == y.fillna("").tolist()
+        else:
+            np.testing.assert_array_equal(x.to_numpy(float), y.to_numpy(float), err_msg=name)
+
+
+@pytest.fixture(scope="module")
+def demo() -> audit.AuditResult:
+    return audit.audit_file(DEMO)
+
+
+# -- workbook -----------------------------------------------------------------------------------
+
+
+def test_workbook_reaudits_to_identical_metrics(demo, tmp_path):
+    out = tmp_path / "audit.xlsx"
+    write_workbook(demo, out)
+    again = audit.audit_file(out, sheet="audit")
+    _same_metrics(demo, again)
+    book = load_workbook(out, read_only=True)
+    assert book.sheetnames == ["audit", "portfolio", "rules", "invalid rows", "read me"]
+
+
+def test_workbook_keeps_user_columns_first_and_numbers_as_numbers(demo, tmp_path):
+    out = tmp_path / "audit.xlsx"
+    write_workbook(demo, out)
+    ws = load_workbook(out)["audit"]
+    header = [c.value for c in ws[1]]
+    with DEMO.open() as handle:
+        user = next(csv.reader(handle))
+    assert header[: len(user)] == user
+    col = {name: i for i, name in enumerate(header)}
+    first = [c for c in ws[2]]
+    assert isinstance(first[col["planned_n1"]].value, (int, float))
+    assert isinstance(first[col["power_at_planned_effect"]].value, float)
+    assert first[col["power_at_planned_effect"]].number_format == "0.000"
+    # Severity is written as text and shown by fill, so it survives black-and-white printing.
+    severities = {
+        ws.cell(row=r, column=col["highest severity"] + 1).value for r in range(2, ws.max_row + 1)
+    }
+    assert {"serious", "warning"} <= severities
+    serious_row = next(
+        r
+        for r in range(2, ws.max_row + 1)
+        if ws.cell(row=r, column=col["highest severity"] + 1).value == "serious"
+    )
+    assert ws.cell(row=serious_row, column=col["highest severity"] + 1).fill.fgColor.rgb.endswith(
+        "E8A0A0"
+    )
+
+
+def test_workbook_and_csv_neutralise_formula_like_text(tmp_path):
+    # OWASP's CSV-injection guidance: cells starting with = + - @ must not be executable.
+    frame = pd.DataFrame(
+        {
+            "study_id": ["A", "B", "C", "D"],
+            "design": "estimate",
+            "realized_se": [1.0, 1.0, 1.0, 1.0],
+            "title": FORMULA_LIKE,
+        }
+    )
+    result = audit.audit_table(frame)
+    out = tmp_path / "a.xlsx"
+    write_workbook(result, out)
+    ws = load_workbook(out)["audit"]
+    titles = [ws.cell(row=r, column=4) for r in range(2, 6)]
+    assert [c.value for c in titles] == FORMULA_LIKE  # text kept exactly
+    assert all(c.data_type == "s" for c in titles)  # stored as text, not as formulas
+    assert all(c.quotePrefix for c in titles if c.value.startswith(("=", "+", "-", "@")))
+    _same_metrics(result, audit.audit_file(out))
+    from audit.export import write_csv
+
+    write_csv(result, tmp_path / "a.csv")
+    with (tmp_path / "a.csv").open() as handle:
+        rows = list(csv.DictReader(handle))
+    assert all(r["title"].startswith("'") for r in rows)
+
+
+def test_workbook_lists_rules_and_invalid_rows(demo, tmp_path):
+    out = tmp_path / "audit.xlsx"
+    write_workbook(demo, out)
+    book = load_workbook(out)
+    rules = [r[0] for r in book["rules"].iter_rows(min_row=2, values_only=True)]
+    assert set(rules) == {r.id for r in demo.rules}
+    rationale = [r[3] for r in book["rules"].iter_rows(min_row=2, values_only=True)]
+    assert all(isinstance(t, str) and len(t) > 80 for t in rationale)
+    invalid = list(book["invalid rows"].iter_rows(min_row=2, values_only=True))
+    assert len(invalid) == len(demo.errors) and len(invalid) >= 2
+
+
+# -- template -----------------------------------------------------------------------------------
+
+
+def test_template_has_validations_guide_and_clean_examples(tmp_path):
+    out = tmp_path / "template.xlsx"
+    write_template(out)
+    book = load_workbook(out)
+    assert book.sheetnames[0] == "studies"
+    ws = book["studies"]
+    header = [c.value for c in ws[1]]
+    assert set(header) == {c.name for c in COLUMNS}
+    lists = {dv.formula1 for dv in ws.data_validations.dataValidation if dv.type == "list"}
+    assert any("two_means" in f and "survival" in f for f in lists)  # design
+    assert '"1,2"' in lists  # sides
+    assert '"raw,d"' in lists  # effect_scale
+    ranges = [dv for dv in ws.data_validations.dataValidation if dv.type in ("decimal", "whole")]
+    assert len(ranges) >= 10
+    guide = [r[0] for r in book["guide"].iter_rows(min_row=2, values_only=True) if r[0]]
+    assert {c.name for c in COLUMNS} <= set(guide)
+    # The blank input sheet reads as a portfolio with no studies; the examples audit cleanly.
+    assert len(audit.audit_file(out).table) == 0
+    examples = audit.audit_file(out, sheet="examples")
+    assert list(examples.status) == ["audited"] * len(EXAMPLES)
+    assert set(examples.table["design"]) == set(audit.DESIGNS)
+
+
+# -- referee text -------------------------------------------------------------------------------
+
+
+def test_format_p_as_journals_print_it():
+    # APA style (Publication Manual, 7th ed.): no leading zero, exact to 2-3 decimals, < .001.
+    assert format_p(0.2) == "P = .20"
+    assert format_p(0.0312) == "P = .031"
+    assert format_p(0.0004) == "P < .001"
+
+
+@pytest.mark.parametrize("study", ["KF-101", "KF-105", "KF-117", "KF-111", "KF-114", "KF-107"])
+def test_respond_quotes_the_numbers_of_the_report(demo, study):
+    text = respond_text(demo, study)
+    pos = demo.positions_of(study)[0]
+    for phrase in key_numbers(demo, pos):
+        if phrase.startswith("power "):
+            assert phrase.split()[1] in text  # power at the planned effect, as printed
+        if phrase.startswith("MDE "):
+            # the MDE at the study's target (80 % here) as printed, with a true minus sign
+            assert phrase.split()[1].replace("-", "−") in text
+    assert "Hoenig & Heisey, 2001" in text
+    assert "90% power" in text
+    assert "References" in text and "does not replace" in text
+
+
+def test_respond_with_an_effect_and_unknown_study(demo, capsys):
+    text = respond_text(demo, "KF-105", effect=4.0)
+    assert "for an effect of 4 it was" in text
+    assert main(["respond", str(DEMO), "NOPE"]) == 2
+    assert "no such study_id" in capsys.readouterr().err
+
+
+# -- plots ----------------------------------------------------------------------------------------
+
+
+def test_plots_are_written_and_not_empty(demo, tmp_path):
+    from audit.plots import write_plots
+
+    files = write_plots(demo, tmp_path / "png")
+    names = {f.name for f in files}
+    assert {"portfolio_power.png", "portfolio_mde.png"} <= names
+    assert sum(n.startswith("study_") for n in names) == int(demo.valid.sum())
+    for f in files:
+        data = f.read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 5000
+    svg = write_plots(demo, tmp_path / "svg", fmt="svg", study="KF-117")
+    assert [f.name for f in svg] == ["study_KF-117.svg"]
+    assert svg[0].read_text().lstrip().startswith("<?xml")
+
+
+def test_power_curves_pass_through_the_reported_power(demo):
+    # The curve of the realized design evaluated at the planned effect is the reported power.
+    from audit.plots import power_curves
+
+    pos = np.flatnonzero(demo.valid)
+    curves = power_curves(demo, pos, grid=5)
+    for p in pos:
+        c = curves[int(p)]
+        assert np.all(np.diff(c["effect"]) != 0)
+        assert np.nanmin(c["realized"]) >= 0 and np.nanmax(c["realized"]) <= 1
+
+
+# -- demo ---------------------------------------------------------------------------------------
+
+
+def test_demo_triggers_every_default_rule_and_covers_every_design(demo):
+    assert set(demo.portfolio["flag_counts"]) == {r.id for r in demo.rules}
+    assert set(demo.table.loc[demo.valid, "design"]) == set(audit.DESIGNS)
+    assert 30 <= len(demo.table) <= 50
+    assert demo.portfolio["excess_significance"] is not None
+
+
+def test_demo_csv_and_xlsx_audit_alike(demo):
+    _same_metrics(demo, audit.audit_file(DEMO_XLSX))
+
+
+def test_demo_command_writes_every_export(tmp_path, capsys):
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out), "--quiet"]) == 0
+    for name in ("report.txt", "audit.json", "audit.csv", "audit.xlsx"):
+        assert (out / name).stat().st_size > 1000, name
+    assert any((out / "plots").glob("study_*.png"))
+    assert list(out.glob("response_*.md"))
+    assert "Reading these results" in (out / "report.txt").read_text()
+    assert str(out.resolve()) in capsys.readouterr().out
+
+
+def test_template_command(tmp_path, capsys):
+    assert main(["template", str(tmp_path / "t.xlsx")]) == 0
+    assert (tmp_path / "t.xlsx").exists()
+    assert "guide" in capsys.readouterr().out
+
+
+def test_check_writes_workbook_and_plots(tmp_path):
+    code = main(
+        [
+            "check",
+            str(DEMO),
+            "--xlsx",
+            str(tmp_path / "w.xlsx"),
+            "--plots",
+            str(tmp_path / "p"),
+            "--quiet",
+        ]
+    )
+    assert code == 0
+    assert (tmp_path / "w.xlsx").stat().st_size > 0
+    assert (tmp_path / "p" / "portfolio_power.png").exists()

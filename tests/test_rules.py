@@ -1,0 +1,428 @@
+"""The rule engine: rule files as documentation, configuration errors, overrides, three-valued
+logic, waiting rules, a failing rule, and evaluation over many rows."""
+
+from __future__ import annotations
+
+import copy
+import tomllib
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import audit
+from audit.errors import ConfigError
+from audit.rules import (
+    CONTRACT_METRICS,
+    Condition,
+    RuleSet,
+    evaluate_rules,
+    known_columns,
+    load_rules,
+    parse_rule,
+)
+
+RULES_DIR = Path(__file__).resolve().parent.parent / "rules"
+BUNDLED = sorted(RULES_DIR.glob("*.toml"))
+
+#: Rules the issue asks for, by what they check; the ids are ours.
+REQUIRED_RULES = {
+    "power-below-target",
+    "power-critically-low",
+    "mde-exceeds-sesoi",
+    "size-short-of-plan",
+    "sd-assumption-optimistic",
+    "icc-assumption-optimistic",
+    "control-rate-assumption-optimistic",
+    "fewer-events-than-planned",
+    "sample-size-not-reproducible",
+    "sample-size-inputs-incomplete",
+    "observed-power-reported",
+    "null-result-inconclusive",
+}
+
+
+def _table(**columns) -> pd.DataFrame:
+    n = len(next(iter(columns.values())))
+    return pd.DataFrame({"study_id": [f"S{i}" for i in range(n)], **columns})
+
+
+def _two_means(n_per_group, planned=64, effect=0.5, **extra) -> pd.DataFrame:
+    n = np.atleast_1d(n_per_group)
+    return _table(
+        design=["two_means"] * len(n),
+        effect_scale=["d"] * len(n),
+        planned_effect=[effect] * len(n),
+        planned_n1=[planned] * len(n),
+        planned_n2=[planned] * len(n),
+        realized_n1=list(n),
+        realized_n2=list(n),
+        **extra,
+    )
+
+
+def _flagged(result, rule_id: str) -> list[str]:
+    f = result.findings
+    return sorted(result.table["study_id"].iloc[f.loc[f["rule"] == rule_id, "pos"]].tolist())
+
+
+# -- the rule files are their own documentation ---------------------------------------------------
+
+
+@pytest.mark.parametrize("path", BUNDLED, ids=lambda p: p.stem)
+def test_bundled_rule_is_complete(path):
+    doc = tomllib.loads(path.read_text())
+    assert set(doc) == {"rule"} and len(doc["rule"]) == 1, "one [[rule]] per bundled file"
+    spec = doc["rule"][0]
+    assert spec["id"] == path.stem, "the file is named after its rule"
+    for key in ("id", "severity", "title", "message", "rationale", "references", "when"):
+        assert spec.get(key), f"{path.name} lacks {key}"
+    assert spec["severity"] in ("note", "warning", "serious")
+    assert len(spec["rationale"].split()) >= 40, "the rationale is a paragraph"
+    assert all(len(ref) > 20 for ref in spec["references"])
+    assert "\n" not in spec["message"].strip()
+    rule = parse_rule(spec, str(path))
+    assert rule.message.fields, "the message quotes numbers"
+    # Thresholds are named parameters, never numbers written into the condition.
+    assert rule.when.literals() == []
+    for param in rule.parameters.values():
+        assert param.meaning and param.low <= param.value <= param.high
+
+
+def test_default_rule_set_covers_the_issue():
+    assert REQUIRED_RULES <= set(load_rules().rules)
+
+
+@pytest.mark.parametrize(
+    "key", ["id", "severity", "title", "when", "message", "rationale", "references"]
+)
+def test_a_rule_lacking_a_field_is_rejected(key):
+    spec = tomllib.loads((RULES_DIR / "power-below-target.toml").read_text())["rule"][0]
+    del spec[key]
+    with pytest.raises(ConfigError, match=key):
+        parse_rule(spec, "x.toml")
+
+
+def test_rules_name_only_known_columns():
+    names = set(known_columns())
+    for rule in load_rules().rules.values():
+        assert rule.columns() <= names
+    # The metrics a later part of the tool computes are the contract's (DESIGN.md section 5).
+    assert {"type_s", "exaggeration", "observed_power", "ci_verdict"} <= set(CONTRACT_METRICS)
+
+
+# -- user rules files -----------------------------------------------------------------------------
+
+
+def _write(tmp_path, text: str) -> Path:
+    path = tmp_path / "mine.toml"
+    path.write_text(text)
+    return path
+
+
+def test_override_changes_threshold_and_outcome(tmp_path):
+    # 100 of 128 units (78 %) is flagged at the default 0.8; a stricter reading of "a fifth"
+    # lost as the limit (0.75) clears it.
+    df = _two_means([50, 64])
+    assert _flagged(audit.audit_table(df), "size-short-of-plan") == ["S0"]
+    path = _write(tmp_path, "[override.size-short-of-plan]\nmin_size_ratio = 0.75\n")
+    result = audit.audit_table(df, rules=path)
+    assert _flagged(result, "size-short-of-plan") == []
+    assert result.settings["rule_parameters"]["size-short-of-plan"] == {"min_size_ratio": 0.75}
+    assert result.settings["rule_files"] == [str(path)]
+
+
+def test_override_severity_and_switch_off(tmp_path):
+    df = _two_means([40])
+    path = _write(
+        tmp_path,
+        "[override.power-below-target]\nseverity = 'serious'\n"
+        "[override.mde-exceeds-sesoi]\nenabled = false\n",
+    )
+    result = audit.audit_table(df, rules=path)
+    severities = dict(zip(result.findings["rule"], result.findings["severity"], strict=True))
+    assert severities["power-below-target"] == "serious"
+    assert "mde-exceeds-sesoi" not in result.settings["rules"]
+    assert result.settings["rules_disabled"] == ["mde-exceeds-sesoi"]
+
+
+def test_overrides_as_a_mapping_and_in_order():
+    df = _two_means([50])
+    first = {"override": {"size-short-of-plan": {"min_size_ratio": 0.5}}}
+    second = {"override": {"size-short-of-plan": {"min_size_ratio": 0.9}}}
+    assert _flagged(audit.audit_table(df, rules=[first]), "size-short-of-plan") == []
+    assert _flagged(audit.audit_table(df, rules=[first, second]), "size-short-of-plan") == ["S0"]
+
+
+def test_user_rule_is_added(tmp_path):
+    path = _write(
+        tmp_path,
+        """
+[[rule]]
+id = "tiny-realized-group"
+severity = "note"
+title = "A group with fewer than ten analysed units"
+message = "Group 1 analysed {realized_n1} units (fewer than {min_units})"
+rationale = "Very small groups make the normal-theory approximations fragile."
+references = []
+when = { column = "realized_n1", below = "min_units" }
+parameters.min_units = { value = 10, range = [1, 1000], meaning = "smallest group size" }
+""",
+    )
+    result = audit.audit_table(_two_means([8, 30]), rules=path)
+    assert _flagged(result, "tiny-realized-group") == ["S0"]
+    message = result.findings.loc[result.findings["rule"] == "tiny-realized-group", "message"]
+    assert message.iloc[0] == "Group 1 analysed 8 units (fewer than 10)"
+
+
+@pytest.mark.parametrize(
+    "text,expected",
+    [
+        ("[override.power-below-targt]\nseverity='note'\n", "did you mean 'power-below-target'"),
+        ("[override.nope]\nseverity='note'\n", "known rules: .*power-below-target"),
+        ("[override.power-below-target]\ntolerence = 0.1\n", "valid: severity, enabled, tolerance"),
+        (
+            "[override.power-below-target]\ntolerance = 0.9\n",
+            r"outside its allowed range \[0, 0.5\]",
+        ),
+        ("[override.power-below-target]\ntolerance = 'x'\n", "must be a number"),
+        ("[override.power-below-target]\nseverity = 'fatal'\n", "note, warning, serious"),
+        ("[override.power-below-target\n", "not valid TOML"),
+        ("[rules]\n", "unknown top-level key rules"),
+    ],
+)
+def test_configuration_errors_say_what_is_valid(tmp_path, text, expected):
+    with pytest.raises(ConfigError, match=expected):
+        load_rules([_write(tmp_path, text)])
+
+
+def _rule_text(**changes) -> str:
+    base = {
+        "id": '"my-rule"',
+        "severity": '"note"',
+        "title": '"t"',
+        "message": '"power {power_at_planned_effect}"',
+        "rationale": '"r"',
+        "references": "[]",
+        "when": '{ column = "power_at_planned_effect", below = 0.5 }',
+    }
+    base.update(changes)
+    return "[[rule]]\n" + "".join(f"{k} = {v}\n" for k, v in base.items() if v is not None)
+
+
+@pytest.mark.parametrize(
+    "changes,expected",
+    [
+        ({"id": '"MyRule"'}, "kebab-case"),
+        ({"when": '{ column = "power_at_planed_effect", below = 0.5 }'}, "did you mean"),
+        ({"when": '{ column = "ci_verdict", below = 0.5 }'}, "holds text"),
+        ({"when": '{ column = "mde", is = "big" }'}, "'is' compares text"),
+        ({"when": '{ column = "mde", below = 1, above = 2 }'}, "exactly one of"),
+        ({"when": '{ column = "mde", below = "threshold" }'}, "neither a parameter"),
+        ({"when": "{ all = [] }"}, "at least one"),
+        ({"when": '{ column = "mde", blank = true, factor = 2 }'}, "unexpected factor"),
+        ({"message": '"power {powr}"'}, "unknown column 'powr'"),
+        ({"message": '"power {mde:.2q}"'}, "bad format"),
+        ({"message": '"power {mde"'}, "brace"),
+        ({"colour": '"red"'}, "unknown key colour"),
+        ({"supersedes": '["no-such-rule"]'}, "supersedes unknown rule"),
+        ({"id": '"power-below-target"'}, "already defined"),
+    ],
+)
+def test_bad_user_rules_are_rejected(tmp_path, changes, expected):
+    with pytest.raises(ConfigError, match=expected):
+        load_rules([_write(tmp_path, _rule_text(**changes))])
+
+
+def test_parameter_specs_are_checked(tmp_path):
+    text = _rule_text(when='{ column = "mde", above = "limit" }')
+    with pytest.raises(ConfigError, match="needs exactly value, range and meaning"):
+        load_rules([_write(tmp_path, text + "parameters.limit = { value = 1 }\n")])
+    with pytest.raises(ConfigError, match="never used"):
+        load_rules(
+            [
+                _write(
+                    tmp_path,
+                    _rule_text()
+                    + "parameters.limit = { value = 1, range = [0, 2], meaning = 'm' }\n",
+                )
+            ]
+        )
+    with pytest.raises(ConfigError, match="name of a column"):
+        load_rules(
+            [
+                _write(
+                    tmp_path,
+                    _rule_text(when='{ column = "mde", above = "sesoi" }')
+                    + "parameters.sesoi = { value = 1, range = [0, 2], meaning = 'm' }\n",
+                )
+            ]
+        )
+
+
+def test_missing_rules_file_is_a_config_error(tmp_path):
+    with pytest.raises(ConfigError, match="no such file"):
+        load_rules([tmp_path / "absent.toml"])
+
+
+# -- evaluation semantics -------------------------------------------------------------------------
+
+
+def _only(*texts: str) -> RuleSet:
+    return load_rules([tomllib.loads(t) for t in texts], defaults=False)
+
+
+def test_blank_values_never_flag_even_under_not():
+    # Three-valued logic: not (power >= 0.5) is unknown, not true, when power is blank.
+    rules = _only(
+        _rule_text(when='{ not = { column = "power_at_planned_effect", at_least = 0.5 } }')
+    )
+    df = _two_means([20, 64])
+    df.loc[1, "planned_effect"] = None
+    result = audit.audit_table(df, rules=rules)
+    assert np.isnan(result.metrics["power_at_planned_effect"].iloc[1])
+    assert _flagged(result, "my-rule") == ["S0"]
+
+
+def test_any_all_and_columns_as_thresholds():
+    rules = _only(
+        _rule_text(
+            when='{ any = [ { column = "realized_n1", below = "planned_n1", factor = 0.5 },'
+            ' { all = [ { column = "sesoi", blank = false },'
+            ' { column = "mde", above = "sesoi", magnitude = true } ] } ] }'
+        )
+    )
+    df = _two_means([30, 40, 40], sesoi=[None, 0.9, 0.3])
+    # S0: 30 < 0.5 * 64; S1: MDE (about 0.63 at 40 per group) below a SESOI of 0.9; S2: above 0.3
+    assert _flagged(audit.audit_table(df, rules=rules), "my-rule") == ["S0", "S2"]
+
+
+def test_invalid_rows_are_never_flagged():
+    df = _two_means([20, 20])
+    df.loc[1, "alpha"] = 7  # invalid (not a proportion)
+    result = audit.audit_table(df)
+    assert set(result.findings["pos"]) == {0}
+
+
+def test_serious_finding_replaces_its_milder_twin():
+    result = audit.audit_table(_two_means([20, 40]))
+    assert _flagged(result, "power-critically-low") == ["S0"]
+    assert _flagged(result, "power-below-target") == ["S1"]
+
+
+def test_findings_order_and_json_flags():
+    result = audit.audit_table(_two_means([20, 64, 40]))
+    assert list(result.findings["pos"]) == sorted(result.findings["pos"])
+    doc = result.to_dict()
+    assert doc["studies"][1]["flags"] == []
+    rules = [f["rule"] for f in doc["studies"][0]["flags"]]
+    assert "power-critically-low" in rules
+    assert doc["portfolio"]["flag_counts"]["power-critically-low"] == 1
+    assert doc["settings"]["rules"] == [r.id for r in load_rules().enabled()]
+
+
+def test_rules_wait_for_metrics_and_activate_when_they_exist():
+    df = _table(
+        design=["estimate"] * 2,
+        planned_effect=[0.5, 0.5],
+        realized_se=[0.2, 0.2],
+        observed_effect=[0.1, 0.6],
+    )
+    result = audit.audit_table(df)
+    # A metrics table without the retrospective metrics (as a version that lacks them): the
+    # rules that need them wait, without flags and without errors.
+    absent = result.metrics.drop(columns=["ci_verdict", "exaggeration", "observed_power"])
+    waiting = evaluate_rules(load_rules(), result.table, absent, result.valid)
+    assert waiting.waiting == {
+        "null-result-inconclusive": ["ci_verdict"],
+        "observed-power-reported": ["observed_power"],
+        "significant-result-likely-exaggerated": ["ci_verdict", "exaggeration"],
+    }
+    assert "null-result-inconclusive" not in set(waiting.findings["rule"])
+    # With the metrics present they are evaluated.
+    metrics = result.metrics.copy()
+    metrics["ci_verdict"] = pd.Series(["inconclusive", "detected"], dtype=object)
+    metrics["exaggeration"] = [2.0, 1.8]
+    evaluation = evaluate_rules(load_rules(), result.table, metrics, result.valid)
+    assert evaluation.waiting == {}
+    found = set(zip(evaluation.findings["pos"], evaluation.findings["rule"], strict=True))
+    assert (0, "null-result-inconclusive") in found
+    assert (1, "significant-result-likely-exaggerated") in found
+    assert (1, "null-result-inconclusive") not in found
+
+
+class _Broken(Condition):
+    def evaluate(self, data, params):
+        raise ZeroDivisionError("boom")
+
+    def names(self):
+        return {"mde"}
+
+
+def test_a_failing_rule_becomes_a_problem_and_the_run_goes_on():
+    rules = load_rules()
+    broken = copy.copy(rules.rules["mde-exceeds-sesoi"])
+    object.__setattr__(broken, "when", _Broken())
+    rules.rules["mde-exceeds-sesoi"] = broken
+    result = audit.audit_table(_two_means([20]), rules=rules)
+    assert result.rule_problems.to_dict("records") == [
+        {"rule": "mde-exceeds-sesoi", "severity": "warning", "problem": "ZeroDivisionError: boom"}
+    ]
+    assert _flagged(result, "power-critically-low") == ["S0"]
+    assert result.settings["rule_problems"][0]["rule"] == "mde-exceeds-sesoi"
+
+
+def test_blank_message_values_read_na():
+    rules = _only(
+        _rule_text(
+            when='{ column = "realized_n1", below = 100 }',
+            message='"sesoi {sesoi}, n {realized_n1}"',
+        )
+    )
+    result = audit.audit_table(_two_means([20]), rules=rules)
+    assert result.findings["message"].tolist() == ["sesoi n/a, n 20"]
+
+
+def test_evaluation_is_vectorised_over_many_rows():
+    # 50,000 studies: every rule is a handful of array operations (timings belong to
+    # benchmarks/, not to tests). Counts are checked against plain numpy.
+    rng = np.random.default_rng(7)
+    n = 50_000
+    table = pd.DataFrame(
+        {
+            "study_id": np.arange(n).astype(str).astype(object),
+            "design": np.full(n, "two_means", dtype=object),
+            "target_power": np.full(n, 0.8),
+            "planned_n1": np.full(n, 64.0),
+            "planned_events": np.full(n, np.nan),
+            "sesoi": rng.uniform(0.1, 1.0, n),
+            "reported_power": np.full(n, np.nan),
+        }
+    )
+    metrics = pd.DataFrame(
+        {
+            "power_at_planned_effect": rng.uniform(0, 1, n),
+            "mde": rng.uniform(0.1, 1.0, n),
+            "n_ratio": rng.uniform(0.5, 1.2, n),
+            "plan_power": rng.uniform(0, 1, n),
+        }
+    )
+    for name in ("sd_ratio", "icc_ratio", "events_ratio", "plan_discrepancy"):
+        metrics[name] = np.nan
+    for name in ("power_cost_nuisance", "power_cost_attrition", "power_at_sesoi"):
+        metrics[name] = rng.uniform(0, 0.2, n)
+    metrics["n_required_plan"] = 128.0
+    metrics["mde_sesoi_ratio"] = metrics["mde"] / table["sesoi"]
+    for name in ("planned_sd", "realized_sd", "planned_icc", "realized_icc", "planned_p1"):
+        table[name] = np.nan
+    for name in ("realized_p1", "realized_events"):
+        table[name] = np.nan
+    evaluation = evaluate_rules(load_rules(), table, metrics, np.ones(n, dtype=bool))
+    power = metrics["power_at_planned_effect"].to_numpy()
+    counts = evaluation.findings["rule"].value_counts()
+    assert counts["power-critically-low"] == (power < 0.5).sum()
+    assert counts["power-below-target"] == ((power >= 0.5) & (power < 0.79)).sum()
+    assert counts["mde-exceeds-sesoi"] == (metrics["mde"] > table["sesoi"]).sum()
+    assert len(evaluation.findings) == counts.sum()
+    assert counts["size-short-of-plan"] == (metrics["n_ratio"] < 0.8).sum()
