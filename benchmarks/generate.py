@@ -59,9 +59,7 @@ def generate(rows: int, seed: int = 1) -> pd.DataFrame:
     power = rng.choice([0.8, 0.8, 0.9, 0.85], rows)
     out["alpha"], out["sides"], out["target_power"] = alpha, sides, power
     out["comparisons"] = rng.choice([1, 1, 1, 1, 2, 3], rows)
-    z = special.ndtri(1 - alpha / sides / out["comparisons"].to_numpy(float)) + special.ndtri(
-        power
-    )
+    z = special.ndtri(1 - alpha / sides / out["comparisons"].to_numpy(float)) + special.ndtri(power)
     noise = rng.lognormal(0.0, 0.12, rows)  # planning calculations that do not reproduce
     keep = rng.uniform(0.6, 1.05, rows)  # attrition
     drift = rng.lognormal(0.05, 0.15, rows)  # nuisance parameters vs plan
@@ -79,8 +77,7 @@ def generate(rows: int, seed: int = 1) -> pd.DataFrame:
         put(m, "realized_n1", np.maximum(np.floor(per * keep), 3))
         if groups == 2:
             put(m, "planned_n2", per)
-            put(m, "realized_n2", np.maximum(np.floor(per * keep * rng.uniform(0.9, 1.1, rows)),
-                                             3))
+            put(m, "realized_n2", np.maximum(np.floor(per * keep * rng.uniform(0.9, 1.1, rows)), 3))
         put(m, "planned_sd", np.round(sd, 2))
         put(m, "realized_sd", np.round(sd * drift, 2))
         put(m, "planned_effect", np.round(d * sd, 3))
@@ -169,8 +166,11 @@ def generate(rows: int, seed: int = 1) -> pd.DataFrame:
     put(has, "observed_effect", np.round(obs, 4))
     put(has, "observed_se", np.round(obs_se, 4))
     put(has, "observed_p", np.round(2 * special.ndtr(-np.abs(obs / obs_se)), 5))
-    put(has & (rng.uniform(size=rows) < 0.05), "reported_power", np.round(
-        rng.uniform(0.2, 0.95, rows), 2))
+    put(
+        has & (rng.uniform(size=rows) < 0.05),
+        "reported_power",
+        np.round(rng.uniform(0.2, 0.95, rows), 2),
+    )
     out["registry"] = rng.choice(["north", "south", "east"], rows)
     # About 1 % invalid cells of several kinds.
     bad = rng.uniform(size=rows) < 0.01
