@@ -57,6 +57,8 @@ def generate(rows: int, seed: int = 1) -> pd.DataFrame:
     alpha = rng.choice([0.05, 0.05, 0.05, 0.01, 0.025], rows)
     sides = np.where(alpha == 0.025, 1, rng.choice([2, 2, 2, 1], rows))
     power = rng.choice([0.8, 0.8, 0.9, 0.85], rows)
+    # F tests (k means, regression) have no one-sided form: their rows say two-sided.
+    sides = np.where(np.isin(design, ["k_means", "regression"]), 2, sides)
     out["alpha"], out["sides"], out["target_power"] = alpha, sides, power
     out["comparisons"] = rng.choice([1, 1, 1, 1, 2, 3], rows)
     z = special.ndtri(1 - alpha / sides / out["comparisons"].to_numpy(float)) + special.ndtri(power)
@@ -165,7 +167,8 @@ def generate(rows: int, seed: int = 1) -> pd.DataFrame:
     obs = obs_se * rng.normal(1.5, 1.2, rows)
     put(has, "observed_effect", np.round(obs, 4))
     put(has, "observed_se", np.round(obs_se, 4))
-    put(has, "observed_p", np.round(2 * special.ndtr(-np.abs(obs / obs_se)), 5))
+    # p-values as papers print them: rounded, never below 0.0001.
+    put(has, "observed_p", np.maximum(np.round(2 * special.ndtr(-np.abs(obs / obs_se)), 4), 1e-4))
     put(
         has & (rng.uniform(size=rows) < 0.05),
         "reported_power",
