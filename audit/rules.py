@@ -385,9 +385,29 @@ class Template:
         for match in _FIELD.finditer(self.text):
             out = out + self.text[start : match.start()]
             name, spec = match.group(1), match.group(2)
-            out = out + np.array([_format(v, spec) for v in values[name]], dtype=object)
+            out = out + _format_column(values[name], spec)
             start = match.end()
         return out + self.text[start:]
+
+
+def _format_column(values: np.ndarray, spec: str | None) -> np.ndarray:
+    """Format a column of values; float columns take a fast path (one ``format`` call per value,
+    no type checks), other columns go value by value through :func:`_format`."""
+    arr = np.asarray(values)
+    if arr.dtype.kind != "f":
+        return np.array([_format(v, spec) for v in arr], dtype=object)
+    missing = np.isnan(arr)
+    clean = np.where(missing, 0.0, arr)
+    if spec:
+        out = np.array([format(v, spec) for v in clean.tolist()], dtype=object)
+    else:
+        # format_number: three significant digits, whole numbers from 10 up as integers.
+        out = np.array([f"{v:.3g}" for v in clean.tolist()], dtype=object)
+        whole = (clean == np.round(clean)) & (np.abs(clean) >= 10) & np.isfinite(clean)
+        out[whole] = [str(int(v)) for v in clean[whole].tolist()]
+        out[np.isinf(clean)] = "-"
+    out[missing] = "n/a"
+    return out
 
 
 def _format(value: Any, spec: str | None) -> str:

@@ -241,7 +241,7 @@ class TDesign(Design):
         return self.df(sc)
 
     def min_n1(self, sc: Scenario) -> np.ndarray:
-        """Smallest first-group size for which ``df > 0``."""
+        """Smallest first-group size of a testable design: ``df >= 1``, a unit in each group."""
         raise NotImplementedError
 
     def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
@@ -294,7 +294,7 @@ class TDesign(Design):
             # approximation to the noncentral t, Abramowitz & Stegun 26.7.10): the bracket
             # search then starts within a fraction of a per cent of the root.
             df0 = self.df(self.with_n1(sc, guess))
-            usable = np.isfinite(df0) & (df0 > 0)
+            usable = np.isfinite(df0) & (df0 >= 1)
             c = t_critical(test.alpha, test.sides, np.where(usable, df0, np.inf))
             spread = np.sqrt(1.0 + c * c / (2.0 * np.where(usable, df0, np.inf)))
             multiplier = c + special.ndtri(test.power) * spread

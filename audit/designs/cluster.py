@@ -145,9 +145,9 @@ class ClusterTwoMeans(_MeanDesign):
         return np.where(np.isfinite(r) & (r > 0), r, 1.0)
 
     def min_n1(self, sc: Scenario) -> np.ndarray:
-        # df > 0 and at least one cluster per arm.
+        # At least one degree of freedom (J - 2 >= 1) and one cluster per arm.
         r = self._ratio(sc)
-        return np.maximum(2.0 / (1.0 + r), np.maximum(1.0, 1.0 / r))
+        return np.maximum(3.0 / (1.0 + r), np.maximum(1.0, 1.0 / r))
 
     def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
         n1 = np.broadcast_to(n1, sc["n1"].shape).astype(float)

@@ -77,7 +77,9 @@ class _OneGroup(_MeanDesign):
         return sc["n1"] - 1.0
 
     def min_n1(self, sc: Scenario) -> np.ndarray:
-        return np.ones(len(sc["n1"]))
+        # The smallest testable design has one degree of freedom (n = 2); below it the t
+        # distribution, and so power, is not defined.
+        return np.full(len(sc["n1"]), 2.0)
 
     def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
         return {**sc, "n1": np.broadcast_to(n1, sc["n1"].shape).astype(float)}
@@ -176,9 +178,9 @@ class TwoMeans(_MeanDesign):
         return np.where(np.isfinite(r) & (r > 0), r, 1.0)
 
     def min_n1(self, sc: Scenario) -> np.ndarray:
-        # df > 0 and at least one unit per group.
+        # At least one degree of freedom and one unit per group.
         r = self._ratio(sc)
-        return np.maximum((2.0 + sc["covariates"]) / (1.0 + r), np.maximum(1.0, 1.0 / r))
+        return np.maximum((3.0 + sc["covariates"]) / (1.0 + r), np.maximum(1.0, 1.0 / r))
 
     def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
         n1 = np.broadcast_to(n1, sc["n1"].shape).astype(float)
