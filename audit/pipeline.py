@@ -92,11 +92,16 @@ class AuditResult:
 
     def by_row(self, frame: pd.DataFrame, column: str) -> list[list[Any]]:
         """Group a long (pos, ...) table into one list per input row."""
-        out: list[list[Any]] = [[] for _ in range(len(self.table))]
-        if len(frame):
-            for pos, value in zip(frame["pos"].to_numpy(), frame[column].to_numpy(), strict=True):
-                out[int(pos)].append(value)
-        return out
+        n = len(self.table)
+        if not len(frame):
+            return [[] for _ in range(n)]
+        # Sort once (stable: the order within a row is kept), then slice a plain list per row.
+        positions = frame["pos"].to_numpy(dtype=np.int64)
+        order = np.argsort(positions, kind="stable")
+        values = frame[column].to_numpy(dtype=object)[order].tolist()
+        ends = np.cumsum(np.bincount(positions, minlength=n)).tolist()
+        starts = [0, *ends[:-1]]
+        return [values[a:b] for a, b in zip(starts, ends, strict=True)]
 
     def error_texts(self) -> list[list[str]]:
         """One sentence per failure: column, value as written, and the reason."""
@@ -119,20 +124,12 @@ class AuditResult:
 
         errors = self.error_texts()
         details = self.by_row(
-            self.errors.assign(detail=self.errors[["column", "value", "reason"]].to_dict("records"))
-            if len(self.errors)
-            else self.errors.assign(detail=[]),
-            "detail",
+            _records(self.errors, ("column", "value", "reason"), "detail"), "detail"
         )
         notes = self.by_row(self.notes, "text")
-        flag_records = (
-            self.findings.assign(
-                flag=self.findings[["rule", "severity", "message"]].to_dict("records")
-            )
-            if len(self.findings)
-            else self.findings.assign(flag=[])
+        flags = self.by_row(
+            _records(self.findings, ("rule", "severity", "message"), "flag"), "flag"
         )
-        flags = self.by_row(flag_records, "flag")
         metric_records = _metric_records(self.metrics)
         ids = self.table["study_id"].to_numpy(dtype=object)
         designs = self.table["design"].to_numpy(dtype=object)
@@ -159,6 +156,16 @@ class AuditResult:
             "portfolio": _jsonable(self.portfolio),
             "caveats": self.caveats,
         }
+
+
+def _records(frame: pd.DataFrame, keys: tuple[str, ...], name: str) -> pd.DataFrame:
+    """``pos`` and a column ``name`` of dicts built from ``keys`` (plain lists, no pandas
+    per-row machinery: a large portfolio has hundreds of thousands of findings)."""
+    columns = [frame[k].to_numpy(dtype=object).tolist() for k in keys]
+    dicts = [dict(zip(keys, values, strict=True)) for values in zip(*columns, strict=True)]
+    out = pd.DataFrame({"pos": frame["pos"].to_numpy(dtype=np.int64)})
+    out[name] = pd.Series(dicts, dtype=object) if dicts else pd.Series([], dtype=object)
+    return out
 
 
 _INTEGER_METRICS = {"n_required_plan", "n_required_realized", "events_required_plan"}

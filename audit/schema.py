@@ -304,7 +304,9 @@ def parse_numbers(
     text_mask = pd.Series(kind == _TEXT, index=values.index)
     if text_mask.any():
         text = values[text_mask].astype(object)
-        empty = (text.str.strip() == "").to_numpy(dtype=bool)
+        # Empty cells (half of a wide sheet) are dropped at C speed; whitespace-only cells go to
+        # the careful path below, which reads them as blank too.
+        empty = text.to_numpy(dtype=object) == ""
         text_mask[text.index[empty]] = False
         text = text[~empty]
         # Fast path for the common case, a plain number (C-speed parsing); everything else

@@ -526,11 +526,25 @@ def test_interrupted_export_leaves_the_old_file(tmp_path, monkeypatch):
     target = tmp_path / "audit.json"
     target.write_text("the previous good export")
 
-    def broken_dump(*args, **kwargs):
-        args[1].write('{"half": ')
-        raise KeyboardInterrupt
+    real_fdopen = export.os.fdopen
 
-    monkeypatch.setattr(export.json, "dump", broken_dump)
+    class Interrupted:
+        """A file that takes half of what it is given, then the user presses Ctrl-C."""
+
+        def __init__(self, handle):
+            self.handle = handle
+
+        def write(self, data):
+            self.handle.write(data[: len(data) // 2])
+            raise KeyboardInterrupt
+
+        def __enter__(self):
+            return self
+
+        def __exit__(self, *exc):
+            self.handle.close()
+
+    monkeypatch.setattr(export.os, "fdopen", lambda *a, **k: Interrupted(real_fdopen(*a, **k)))
     with pytest.raises(KeyboardInterrupt):
         export.write_json(result, target)
     assert target.read_text() == "the previous good export"
