@@ -138,16 +138,63 @@ def json_bytes(document: dict[str, object], *, indent: bool) -> bytes:
 def write_json(result: AuditResult, path: str | Path) -> None:
     """The contract JSON document (DESIGN.md section 5), UTF-8.
 
-    Indented for portfolios of up to :data:`JSON_INDENT_LIMIT` studies, compact beyond (a
-    100,000-study document is some 200 MB either way; compact is written in a fraction of a
-    second).
+    Indented for portfolios of up to :data:`JSON_INDENT_LIMIT` studies. Larger documents are
+    compact and streamed: studies are built and encoded a chunk at a time while a second thread
+    writes the previous chunk (file writes release the interpreter lock), so memory stays
+    bounded and the disk works while the next chunk is encoded.
     """
     refuse_input(result, path)
-    document = result.to_dict()
-    data = json_bytes(document, indent=len(result.table) <= JSON_INDENT_LIMIT)
-    with atomic_output(path, "wb") as handle:
-        handle.write(data)
-        handle.write(b"\n")
+    if len(result.table) <= JSON_INDENT_LIMIT:
+        data = json_bytes(result.to_dict(), indent=True)
+        with atomic_output(path, "wb") as handle:
+            handle.write(data)
+            handle.write(b"\n")
+        return
+    head = json_bytes(result.document_head(), indent=False)
+    tail = json_bytes(result.document_tail(), indent=False)
+    with atomic_output(path, "wb") as handle, _BackgroundWriter(handle) as writer:
+        writer.write(head[:-1] + b',"studies":[')
+        for i, part in enumerate(result.study_records()):
+            encoded = json_bytes(part, indent=False)  # b"[...]"
+            if len(encoded) > 2:
+                writer.write((b"," if i else b"") + encoded[1:-1])
+        writer.write(b"]," + tail[1:] + b"\n")
+
+
+class _BackgroundWriter:
+    """Writes queued byte strings to a file in a thread, in order; errors surface on exit."""
+
+    def __init__(self, handle: IO) -> None:
+        import queue
+        import threading
+
+        self._handle = handle
+        self._queue: queue.Queue[bytes | None] = queue.Queue(maxsize=2)
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _run(self) -> None:
+        while (data := self._queue.get()) is not None:
+            if self._error is None:
+                try:
+                    self._handle.write(data)
+                except BaseException as exc:  # reported by the main thread on exit
+                    self._error = exc
+
+    def __enter__(self) -> _BackgroundWriter:
+        self._thread.start()
+        return self
+
+    def write(self, data: bytes) -> None:
+        if self._error is not None:
+            raise self._error
+        self._queue.put(data)
+
+    def __exit__(self, *exc: object) -> None:
+        self._queue.put(None)
+        self._thread.join()
+        if self._error is not None and exc[0] is None:
+            raise self._error
 
 
 def studies_frame(result: AuditResult) -> pd.DataFrame:

@@ -9,7 +9,7 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -118,44 +118,78 @@ class AuditResult:
         )
         return self.by_row(pd.DataFrame({"pos": e["pos"], "text": text}), "text")
 
-    def to_dict(self) -> dict[str, Any]:
-        """The JSON document of the output contract (DESIGN.md section 5)."""
+    def document_head(self) -> dict[str, Any]:
+        """The keys of the JSON document that come before ``studies``."""
         from audit import __version__
 
+        return {"tool": "study-audit", "version": __version__, "settings": self.settings}
+
+    def document_tail(self) -> dict[str, Any]:
+        """The keys of the JSON document that come after ``studies``."""
+        return {"portfolio": _jsonable(self.portfolio), "caveats": self.caveats}
+
+    def study_records(self, chunk: int = 10_000) -> Iterator[list[dict[str, Any]]]:
+        """The ``studies`` of the JSON document, in input order, ``chunk`` studies at a time.
+
+        Built a chunk at a time so that a large portfolio never holds all of its study
+        objects at once (see :func:`audit.export.write_json`).
+        """
+        n = len(self.table)
         errors = self.error_texts()
-        details = self.by_row(
-            _records(self.errors, ("column", "value", "reason"), "detail"), "detail"
-        )
-        notes = self.by_row(self.notes, "text")
-        flags = self.by_row(
-            _records(self.findings, ("rule", "severity", "message"), "flag"), "flag"
-        )
-        metric_records = _metric_records(self.metrics)
-        ids = self.table["study_id"].to_numpy(dtype=object)
-        designs = self.table["design"].to_numpy(dtype=object)
-        rows = self.table["_row"].to_numpy()
-        studies = [
-            {
-                "study_id": ids[i],
-                "row": int(rows[i]),
-                "design": designs[i],
-                "status": str(self.status[i]),
-                "errors": errors[i],
-                "error_details": details[i],
-                "notes": notes[i],
-                "metrics": metric_records[i],
-                "flags": flags[i],
-            }
-            for i in range(len(self.table))
+        details = _RowGroups(_records(self.errors, ("column", "value", "reason"), "x"), "x", n)
+        notes = _RowGroups(self.notes, "text", n)
+        flags = _RowGroups(_records(self.findings, ("rule", "severity", "message"), "x"), "x", n)
+        ids = self.table["study_id"].to_numpy(dtype=object).tolist()
+        designs = self.table["design"].to_numpy(dtype=object).tolist()
+        rows = self.table["_row"].to_numpy(dtype=np.int64).tolist()
+        status = [str(v) for v in self.status]
+        for start in range(0, n, chunk):
+            stop = min(n, start + chunk)
+            metrics = _metric_records(self.metrics.iloc[start:stop])
+            note_lists = notes.lists(start, stop)
+            flag_lists = flags.lists(start, stop)
+            detail_lists = details.lists(start, stop)
+            yield [
+                {
+                    "study_id": ids[i],
+                    "row": rows[i],
+                    "design": designs[i],
+                    "status": status[i],
+                    "errors": errors[i],
+                    "error_details": detail_lists[i - start],
+                    "notes": note_lists[i - start],
+                    "metrics": metrics[i - start],
+                    "flags": flag_lists[i - start],
+                }
+                for i in range(start, stop)
+            ]
+
+    def to_dict(self) -> dict[str, Any]:
+        """The JSON document of the output contract (DESIGN.md section 5)."""
+        studies = [study for part in self.study_records() for study in part]
+        return {**self.document_head(), "studies": studies, **self.document_tail()}
+
+
+class _RowGroups:
+    """A long (pos, value) table sorted once, then cut into one list per row for any range."""
+
+    def __init__(self, frame: pd.DataFrame, column: str, n: int) -> None:
+        if len(frame):
+            positions = frame["pos"].to_numpy(dtype=np.int64)
+            order = np.argsort(positions, kind="stable")  # stable: order within a row kept
+            self.values = frame[column].to_numpy(dtype=object)[order].tolist()
+            counts = np.bincount(positions, minlength=n)
+        else:
+            self.values = []
+            counts = np.zeros(n, dtype=np.int64)
+        self.ends = np.cumsum(counts).tolist()
+        self.starts = [0, *self.ends[:-1]]
+
+    def lists(self, start: int, stop: int) -> list[list[Any]]:
+        values = self.values
+        return [
+            values[a:b] for a, b in zip(self.starts[start:stop], self.ends[start:stop], strict=True)
         ]
-        return {
-            "tool": "study-audit",
-            "version": __version__,
-            "settings": self.settings,
-            "studies": studies,
-            "portfolio": _jsonable(self.portfolio),
-            "caveats": self.caveats,
-        }
 
 
 def _records(frame: pd.DataFrame, keys: tuple[str, ...], name: str) -> pd.DataFrame:

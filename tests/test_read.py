@@ -136,3 +136,50 @@ def test_dataframe_api_numbers_rows_from_two():
         {"study_id": ["a", "b"], "design": ["estimate", "estimate"], "realized_se": [1.0, 2.0]}
     )
     assert audit.audit_table(df).table["_row"].tolist() == [2, 3]
+
+
+def test_large_plain_sheets_read_the_same_with_the_fast_reader(monkeypatch):
+    # The demo workbook read by calamine (threshold lowered to 0) and by openpyxl gives the same
+    # typed table: the fast reader is an implementation detail, not a different reading.
+    import numpy as np
+
+    from audit import read
+    from audit.resources import bundled_dir
+    from audit.schema import validate
+
+    path = bundled_dir("demo_data") / "demo_portfolio.xlsx"
+    careful = validate(read_table(path))
+    calls = []
+    original = read._fast_worksheet
+
+    def spy(*args, **kwargs):
+        sheet = original(*args, **kwargs)
+        calls.append(sheet is not None)
+        return sheet
+
+    monkeypatch.setattr(read, "FAST_READ_MIN_BYTES", 0)
+    monkeypatch.setattr(read, "_fast_worksheet", spy)
+    fast = validate(read_table(path))
+    assert calls == [True]
+    assert list(fast.valid) == list(careful.valid)
+    for column in careful.table.columns:
+        a, b = fast.table[column], careful.table[column]
+        if a.dtype == object or b.dtype == object:
+            assert a.fillna("").astype(str).tolist() == b.fillna("").astype(str).tolist(), column
+        else:
+            np.testing.assert_array_equal(a.to_numpy(), b.to_numpy(), err_msg=column)
+
+
+def test_fast_reader_leaves_formulas_to_the_careful_reader(tmp_path, monkeypatch):
+    # A sheet with a formula is read by openpyxl even when large, so that a formula without a
+    # saved value is still reported (calamine would read it as blank).
+    from audit import read
+
+    monkeypatch.setattr(read, "FAST_READ_MIN_BYTES", 0)
+    path = _xlsx(
+        tmp_path,
+        [["study_id", "design", "realized_se"], ["A", "estimate", "=1/2"], ["B", "estimate", 0.5]],
+    )
+    result = audit.audit_file(path)
+    assert result.status.tolist() == ["invalid", "audited"]
+    assert "formula without a saved value" in result.errors.loc[0, "reason"]

@@ -22,7 +22,13 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from audit.designs._power import t_critical, t_ncp_for_power, t_power
+from audit.designs._power import (
+    TABLE_MIN_DF,
+    NcpLookup,
+    t_critical,
+    t_ncp_for_power,
+    t_power,
+)
 from audit.designs._solve import smallest_size
 
 __all__ = ["Design", "NullReasons", "Scenario", "TDesign", "TestSpec"]
@@ -309,6 +315,68 @@ class TDesign(Design):
         )
         if not ok.any():
             return out
+        n1 = np.full(n, np.nan)
+        # Sizes with df >= TABLE_MIN_DF: the SE scales as 1 / sqrt(n1), so the target is reached
+        # where |effect| sqrt(n1) / se1 equals the noncentrality the test needs at df(n1). That
+        # noncentrality changes slowly with df, so the fixed point
+        #     n1 <- (ncp_needed(df(n1)) * se1 / |effect|)^2
+        # converges in a few steps, each a table look-up (t_ncp_for_power) rather than a search
+        # over noncentral t evaluations.
+        fast = ok & (guess >= lower * 2.0)
+        if fast.any():
+            n1[fast] = self._size_by_fixed_point(sc, effect, test, fast, se1, guess)
+        # Small designs, and anything the fixed point did not settle, are searched directly.
+        ok = ok & ~np.isfinite(n1)
+        if ok.any():
+            n1[ok] = self._size_by_search(sc, effect, test, ok, guess, lower)
+        done = np.isfinite(n1)
+        if done.any():
+            # Guard against solver noise at exact integers (64.0000000001 -> 64, not 65).
+            sub = {k: v[done] for k, v in sc.items()}
+            out[done] = self.rounded_total(sub, n1[done] * (1.0 - 1e-10))
+        return out
+
+    def _size_by_fixed_point(
+        self,
+        sc: Scenario,
+        effect: np.ndarray,
+        test: TestSpec,
+        mask: np.ndarray,
+        se1: np.ndarray,
+        guess: np.ndarray,
+    ) -> np.ndarray:
+        """Continuous first-group sizes by fixed-point iteration (nan where it does not apply)."""
+        sub = {k: v[mask] for k, v in sc.items()}
+        scale = se1[mask] / np.abs(effect[mask])
+        alpha, sides, power = test.alpha[mask], test.sides[mask], test.power[mask]
+        n1 = guess[mask].copy()
+        settled = np.zeros(len(n1), dtype=bool)
+        lookup = NcpLookup(power, alpha, sides)
+        for _ in range(40):
+            df = self.df(self.with_n1(sub, n1))
+            usable = df >= TABLE_MIN_DF
+            needed = lookup.at(np.where(usable, df, np.inf))
+            with np.errstate(invalid="ignore", over="ignore"):
+                new = (needed * scale) ** 2
+                step = np.abs(new - n1) / n1
+            settled = usable & np.isfinite(new) & (step < 1e-13)
+            n1 = np.where(usable & np.isfinite(new), new, np.nan)
+            if (settled | np.isnan(n1)).all():
+                break
+        # A root with df below the table's range is left to the direct search.
+        df = self.df(self.with_n1(sub, n1))
+        return np.where(settled & (df >= TABLE_MIN_DF), n1, np.nan)
+
+    def _size_by_search(
+        self,
+        sc: Scenario,
+        effect: np.ndarray,
+        test: TestSpec,
+        ok: np.ndarray,
+        guess: np.ndarray,
+        lower: np.ndarray,
+    ) -> np.ndarray:
+        """Continuous first-group sizes by a bracketed search on the exact power."""
         sub = {k: v[ok] for k, v in sc.items()}
         sub_test = test.subset(ok)
 
@@ -328,7 +396,7 @@ class TDesign(Design):
             sub_test.direction,
         )
         # A very large effect may reach the target with the smallest usable design already.
-        n1 = smallest_size(
+        return smallest_size(
             power_at,
             sub_test.power,
             np.maximum(guess[ok], lower[ok] * 1.01),
@@ -336,7 +404,3 @@ class TDesign(Design):
             upper=1e12,
             args=args,
         )
-        # Guard against solver noise at exact integers (e.g. 64.0000000001 -> 64, not 65).
-        n1 = n1 * (1.0 - 1e-10)
-        out[ok] = self.rounded_total(sub, n1)
-        return out
