@@ -453,7 +453,8 @@ def _retro_metrics(
     alpha, sides = test.alpha, test.sides
     se_based = "se_realized" not in design.not_applicable
     reported = {c: _col(rows, c) for c in (*RESULT_COLUMNS, "observed_ci_level", "reported_power")}
-    has_result = np.zeros(n, dtype=bool)
+    # A p printed as a bound ("< 0.001", "n.s.") is a reported result too.
+    has_result = ~np.isnan(_col(rows, "observed_p_relation"))
     for c in RESULT_COLUMNS:
         has_result |= ~np.isnan(reported[c])
     res_out: dict[str, np.ndarray] = {}
@@ -462,6 +463,7 @@ def _retro_metrics(
         p = reported["observed_p"]
         with np.errstate(invalid="ignore"):
             sig = np.where(np.isnan(p), np.nan, (p < alpha).astype(float))
+        sig = np.where(np.isnan(sig), _significance_by_bound(rows, alpha), sig)
         res_out["result_p"] = p
         res_out["result_significant"] = sig
         na = [m for m in RETRO_METRICS if m not in res_out]
@@ -514,6 +516,7 @@ def _retro_metrics(
         ci_level=reported["observed_ci_level"],
     )
     sig = retro.significant(res.ci_low, res.ci_high, res.p, alpha=alpha, sides=sides, direction=d)
+    sig = np.where(np.isnan(sig), _significance_by_bound(rows, alpha), sig)
     verdict = retro.ci_verdicts(res.ci_low, res.ci_high, sig, effect_a, sesoi_a, direction=d)
     with np.errstate(all="ignore"):
         res_out["result_effect"] = np.where(
@@ -558,6 +561,18 @@ def _retro_metrics(
         sig,
     )
     return res_out
+
+
+def _significance_by_bound(rows: pd.DataFrame, alpha: np.ndarray) -> np.ndarray:
+    """Significance from a p printed as a bound ("< 0.001", "n.s."), nan where it cannot tell:
+    below a bound at or under alpha is significant, above one at or over alpha is not."""
+    bound, relation = _col(rows, "observed_p_bound"), _col(rows, "observed_p_relation")
+    with np.errstate(invalid="ignore"):
+        return np.where(
+            (relation < 0) & (bound <= alpha),
+            1.0,
+            np.where((relation > 0) & ((bound >= alpha) | np.isnan(bound)), 0.0, np.nan),
+        )
 
 
 #: How far a reported post-hoc power may be from the observed power and still "match" it.

@@ -477,6 +477,8 @@ def validate(raw: RawTable) -> Validated:
         if spec.kind in ("text", "design", "choice"):
             _text_column(spec, cells, table, fail)
             continue
+        if spec.name == "observed_p":
+            cells = _p_value_bounds(cells, table, notes_pos, notes_text)
         numbers, problem = parse_numbers(
             cells, decimal_comma=raw.decimal_comma, whole=spec.kind == "integer"
         )
@@ -586,6 +588,81 @@ def validate(raw: RawTable) -> Validated:
         }
     )
     return Validated(table, failures, notes, valid, extra, raw, file_notes)
+
+
+_P_BOUND = re.compile(
+    r"^\s*(?:p\s*)?(?P<rel><=|>=|<|>|\u2264|\u2265)\s*(?P<num>[0-9]*[.,]?[0-9]+(?:[eE][-+]?[0-9]+)?)\s*$",
+    re.IGNORECASE,
+)
+_P_EQUALS = re.compile(r"^\s*p\s*=\s*(?P<num>\S+)\s*$", re.IGNORECASE)
+_NOT_SIGNIFICANT = frozenset({"ns", "n.s.", "n.s", "not significant"})
+
+
+def _p_value_bounds(
+    cells: pd.Series,
+    table: pd.DataFrame,
+    notes_pos: list[np.ndarray],
+    notes_text: list[np.ndarray],
+) -> pd.Series:
+    """Read p-values as papers print them: ``p < 0.001``, ``< .05``, ``>0.1``, ``0.000``, ``n.s.``.
+
+    A bound is not a p-value: it can decide whether the test was significant but no standard
+    error can be derived from it. Bounds go to ``observed_p_bound`` with ``observed_p_relation``
+    (-1 for "below", +1 for "above"); "n.s." is "above the study's alpha" (bound nan, relation
+    +1); a p printed as zero (``0.000``) is below half its last printed digit. ``p = 0.03`` is
+    simply 0.03. The cells returned keep only plain p-values for the number parser.
+    """
+    n = len(cells)
+    bound = np.full(n, np.nan)
+    relation = np.full(n, np.nan)
+    cleaned = cells.copy()
+    texts = [(i, v) for i, v in enumerate(cells.tolist()) if isinstance(v, str) and v.strip()]
+    for i, raw in texts:
+        text = raw.strip().replace("\u2212", "-")
+        if text.lower() in _NOT_SIGNIFICANT:
+            relation[i] = 1.0
+            cleaned.iat[i] = None
+            continue
+        equals = _P_EQUALS.match(text)
+        if equals:
+            cleaned.iat[i] = equals.group("num")
+            text = equals.group("num")
+        match = _P_BOUND.match(text)
+        if match:
+            number = float(match.group("num").replace(",", "."))
+            relation[i] = -1.0 if match.group("rel") in ("<", "<=", "\u2264") else 1.0
+            bound[i] = number
+            cleaned.iat[i] = None
+            continue
+        zero = re.fullmatch(r"0?[.,](0+)", text)
+        if zero or text == "0":
+            digits = len(zero.group(1)) if zero else 0
+            relation[i] = -1.0
+            bound[i] = 0.5 * 10.0 ** (-digits) if digits else 0.001
+            cleaned.iat[i] = None
+    numeric_zero = np.array(
+        [isinstance(v, (int, float)) and not isinstance(v, bool) and v == 0 for v in cells],
+        dtype=bool,
+    )
+    relation[numeric_zero] = -1.0
+    bound[numeric_zero] = 0.001
+    cleaned[numeric_zero] = None
+    table["observed_p_bound"] = bound
+    table["observed_p_relation"] = relation
+    marked = np.flatnonzero(~np.isnan(relation))
+    if len(marked):
+        notes_pos.append(marked)
+        notes_text.append(
+            np.array(
+                [
+                    f"observed_p '{cells.iat[i]}' read as a bound, not a p-value: it decides "
+                    "significance where no interval does, and nothing is derived from it"
+                    for i in marked
+                ],
+                dtype=object,
+            )
+        )
+    return cleaned
 
 
 def _text_column(

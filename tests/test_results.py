@@ -403,3 +403,27 @@ def test_ci_level_given_as_a_percentage_is_caught():
     q = stats.t.isf(0.05, 98)  # a 90 % t interval on the realized 98 df (scipy)
     assert ok.metrics.loc[0, "result_se"] == pytest.approx(2.0 / q)
     assert ok.metrics.loc[0, "result_ci_level"] == pytest.approx(0.95)
+
+
+def test_p_values_printed_as_bounds():
+    # Papers print "p < 0.001", "< .05", "n.s.", "0.000" (SPSS). A bound decides significance
+    # only (common practice: the test rejects when p < alpha); nothing is derived from it.
+    frame = pd.DataFrame(
+        {
+            "study_id": list("ABCDEFG"),
+            "design": "estimate",
+            "realized_se": 1.0,
+            "planned_effect": 2.5,
+            "observed_p": ["<0.001", "n.s.", "p < .05", ">0.1", "0.000", "P = 0.03", "< 0.1"],
+        }
+    )
+    result = audit.audit_table(frame)
+    assert list(result.status) == ["audited"] * 7
+    sig = result.metrics["result_significant"].tolist()
+    assert sig[:6] == [1.0, 0.0, 1.0, 0.0, 1.0, 1.0]
+    assert np.isnan(sig[6])  # p < 0.1 at alpha .05: cannot tell
+    assert np.isnan(result.metrics["result_p"][0]) and result.metrics["result_p"][5] == 0.03
+    assert result.table["observed_p_bound"][4] == pytest.approx(0.0005)
+    notes = result.by_row(result.notes, "text")
+    assert any("read as a bound" in n for n in notes[0])
+    assert not any(n.startswith("no result reported") for n in notes[2])
