@@ -167,3 +167,24 @@ def test_f_lambda_round_trip():
     power = rng.uniform(0.1, 0.99, 300)
     lam = f_lambda_for_power(power, d1, d2, 0.05)
     np.testing.assert_allclose(f_power(lam, d1, d2, 0.05), power, atol=1e-9)
+
+
+def test_noncentrality_interpolant_matches_the_direct_search():
+    # NcpLookup interpolates the root of t_power(ncp) = power over df; the reference is the
+    # direct bracketed search on scipy's noncentral t (which statsmodels agrees with, above).
+    from audit.designs._power import NcpLookup, _exact_ncp
+
+    rng = np.random.default_rng(17)
+    k = 3000
+    power = rng.choice([0.06, 0.5, 0.8, 0.9, 0.95, 0.999], k)
+    alpha = rng.choice([1e-8, 1e-4, 0.01, 0.025, 0.05, 0.2], k)
+    sides = rng.choice([1.0, 2.0], k)
+    keep = power > alpha
+    power, alpha, sides = power[keep], alpha[keep], sides[keep]
+    df = np.exp(rng.uniform(np.log(2.0), np.log(1e7), len(power)))
+    df[:50] = np.inf
+    df[50:100] = 2.0
+    df[100:150] = 30.0
+    interpolated = NcpLookup(power, alpha, sides).at(df)
+    direct = _exact_ncp(power, df, alpha, sides)
+    np.testing.assert_allclose(interpolated, direct, rtol=1e-9)
