@@ -648,6 +648,17 @@ def _cell(value: object) -> str:
     return str(value)
 
 
+def _not_applicable(result: AuditResult, pos: int) -> set[str]:
+    """Metrics the study's notes declare not applicable to its design."""
+    out: set[str] = set()
+    for text in result.notes.loc[result.notes["pos"] == pos, "text"]:
+        if text.startswith("not applicable to "):
+            out.update(text.split(": ", 1)[1].split(", "))
+        elif ": not applicable" in text:
+            out.add(text.split(":", 1)[0])
+    return out
+
+
 def render_study(result: AuditResult, console: Console, positions: Sequence[int]) -> None:
     """One study in depth: planned versus realized, every metric with its meaning, each finding
     with its rationale, and the notes on what could not be computed."""
@@ -714,8 +725,11 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
         metrics.add_column("metric", no_wrap=True)
         metrics.add_column("value", justify="right", no_wrap=True)
         metrics.add_column("meaning")
+        not_applicable = _not_applicable(result, pos)
         for name in result.metrics.columns:
             value = result.metrics[name].iat[pos]
+            if name in not_applicable and not _cell(value):
+                continue  # defined for other designs only; the notes list them
             metrics.add_row(name, _cell(value) or "-", meanings.get(name, ""))
         console.print(Padding(metrics, (0, 0, 0, 1)))
 
