@@ -87,6 +87,13 @@ def _column(rows: pd.DataFrame, name: str) -> np.ndarray:
     return np.full(len(rows), np.nan)
 
 
+def allocation_ratio(sc: Scenario) -> np.ndarray:
+    """n2 / n1 of a two-group scenario; 1 (equal groups) where the sizes are not given."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = sc["n2"] / sc["n1"]
+    return np.where(np.isfinite(r) & (r > 0), r, 1.0)
+
+
 class Design:
     """Base class of a study design; see the module docstring for the contract.
 

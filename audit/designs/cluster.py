@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 
 from audit.designs._base import Scenario, _column
-from audit.designs.means import _MeanDesign
+from audit.designs.means import _TwoGroups
 
 __all__ = ["ClusterTwoMeans", "design_effect"]
 
@@ -57,7 +57,7 @@ def design_effect(m: np.ndarray, icc: np.ndarray, cv: np.ndarray = 0.0) -> np.nd
     return 1.0 + ((cv * cv + 1.0) * m - 1.0) * icc
 
 
-class ClusterTwoMeans(_MeanDesign):
+class ClusterTwoMeans(_TwoGroups):
     """Two arms of clusters compared on a mean (t test on J − 2 df, design-effect variance).
 
     ``se = sd · sqrt(DE) · sqrt(1/(n1·m) + 1/(n2·m))`` with n1, n2 clusters of mean size m.
@@ -138,20 +138,5 @@ class ClusterTwoMeans(_MeanDesign):
     def df(self, sc: Scenario) -> np.ndarray:
         return sc["n1"] + sc["n2"] - 2.0
 
-    def _ratio(self, sc: Scenario) -> np.ndarray:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            r = sc["n2"] / sc["n1"]
-        # Without planned cluster counts the allocation is taken as 1:1.
-        return np.where(np.isfinite(r) & (r > 0), r, 1.0)
-
-    def min_n1(self, sc: Scenario) -> np.ndarray:
-        # At least one degree of freedom (J - 2 >= 1) and one cluster per arm.
-        r = self._ratio(sc)
-        return np.maximum(3.0 / (1.0 + r), np.maximum(1.0, 1.0 / r))
-
-    def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
-        n1 = np.broadcast_to(n1, sc["n1"].shape).astype(float)
-        return {**sc, "n1": n1, "n2": n1 * self._ratio(sc)}
-
-    def rounded_total(self, sc: Scenario, n1: np.ndarray) -> np.ndarray:
-        return np.ceil(n1) + np.ceil(n1 * self._ratio(sc) * (1.0 - 1e-12))
+    def df_spent(self, sc: Scenario) -> np.ndarray:
+        return np.full(len(sc["n1"]), 2.0)

@@ -18,7 +18,7 @@ from typing import ClassVar
 import numpy as np
 import pandas as pd
 
-from audit.designs._base import Scenario, TDesign, _column
+from audit.designs._base import Scenario, TDesign, _column, allocation_ratio
 
 __all__ = ["OneMean", "PairedMeans", "TwoMeans"]
 
@@ -122,7 +122,29 @@ class PairedMeans(_OneGroup):
     standardized_as = "d_z"
 
 
-class TwoMeans(_MeanDesign):
+class _TwoGroups(_MeanDesign):
+    """Two groups (of units or of clusters) sized together, the planned allocation kept.
+
+    Subclasses give ``df_spent``: n1 + n2 minus the test's df.
+    """
+
+    def df_spent(self, sc: Scenario) -> np.ndarray:
+        raise NotImplementedError
+
+    def min_n1(self, sc: Scenario) -> np.ndarray:
+        # At least one degree of freedom and one unit (or cluster) per group.
+        r = allocation_ratio(sc)
+        return np.maximum((1.0 + self.df_spent(sc)) / (1.0 + r), np.maximum(1.0, 1.0 / r))
+
+    def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
+        n1 = np.broadcast_to(n1, sc["n1"].shape).astype(float)
+        return {**sc, "n1": n1, "n2": n1 * allocation_ratio(sc)}
+
+    def rounded_total(self, sc: Scenario, n1: np.ndarray) -> np.ndarray:
+        return np.ceil(n1) + np.ceil(n1 * allocation_ratio(sc) * (1.0 - 1e-12))
+
+
+class TwoMeans(_TwoGroups):
     """Two independent groups compared with a t test, optionally covariate-adjusted (ANCOVA).
 
     ``se = sd * sqrt(1 - R^2) * sqrt(1/n1 + 1/n2)`` and ``df = n1 + n2 - 2 - q`` with ``q``
@@ -171,23 +193,8 @@ class TwoMeans(_MeanDesign):
     def df(self, sc: Scenario) -> np.ndarray:
         return sc["n1"] + sc["n2"] - 2.0 - sc["covariates"]
 
-    def _ratio(self, sc: Scenario) -> np.ndarray:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            r = sc["n2"] / sc["n1"]
-        # Without planned sizes the allocation is taken as 1:1.
-        return np.where(np.isfinite(r) & (r > 0), r, 1.0)
-
-    def min_n1(self, sc: Scenario) -> np.ndarray:
-        # At least one degree of freedom and one unit per group.
-        r = self._ratio(sc)
-        return np.maximum((3.0 + sc["covariates"]) / (1.0 + r), np.maximum(1.0, 1.0 / r))
-
-    def with_n1(self, sc: Scenario, n1: np.ndarray) -> Scenario:
-        n1 = np.broadcast_to(n1, sc["n1"].shape).astype(float)
-        return {**sc, "n1": n1, "n2": n1 * self._ratio(sc)}
-
-    def rounded_total(self, sc: Scenario, n1: np.ndarray) -> np.ndarray:
-        return np.ceil(n1) + np.ceil(n1 * self._ratio(sc) * (1.0 - 1e-12))
+    def df_spent(self, sc: Scenario) -> np.ndarray:
+        return 2.0 + sc["covariates"]
 
     def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         q = _column(rows, "covariates")

@@ -22,7 +22,14 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from audit.designs._base import Design, NullReasons, Scenario, TestSpec, _column
+from audit.designs._base import (
+    Design,
+    NullReasons,
+    Scenario,
+    TestSpec,
+    _column,
+    allocation_ratio,
+)
 from audit.designs._solve import smallest_size, solve_increasing
 
 __all__ = ["TwoProportions", "cohens_h", "fleiss_n1", "proportions_power"]
@@ -293,12 +300,6 @@ class TwoProportions(Design):
         """Cohen's h between ``p1`` and ``p1 + effect``."""
         return cohens_h(sc["p1"], sc["p1"] + effect)
 
-    def _ratio(self, sc: Scenario) -> np.ndarray:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            r = sc["n2"] / sc["n1"]
-        # Without planned sizes the allocation is taken as 1:1.
-        return np.where(np.isfinite(r) & (r > 0), r, 1.0)
-
     def required_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
         """Smallest total size reaching the target power, allocation kept, groups rounded up.
 
@@ -309,7 +310,7 @@ class TwoProportions(Design):
         out = np.full(n, np.nan)
         p1 = sc["p1"]
         p2 = p1 + effect
-        r = self._ratio(sc)
+        r = allocation_ratio(sc)
         cc = sc["continuity_correction"]
         ok = (
             np.isfinite(p2)
