@@ -25,7 +25,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import special
 
 __all__ = [
     "ExcessTest",
@@ -135,6 +135,8 @@ def poisson_binomial_sf(k: int, probs: np.ndarray) -> float:
     hi = 1.0
     while tilted_mean(hi) < 0:
         hi *= 2.0
+    from scipy import optimize  # one scalar root per portfolio: not worth importing up front
+
     log_t = optimize.brentq(tilted_mean, 0.0, hi, xtol=1e-12)
     t = np.exp(log_t)
     tilted = p * t / (1.0 - p + p * t)
@@ -194,12 +196,12 @@ def excess_significance_test(
     if method == "chi2":
         with np.errstate(divide="ignore", invalid="ignore"):
             a = (observed - expected) ** 2 / expected + (observed - expected) ** 2 / (n - expected)
-        half = float(stats.chi2.sf(a, 1)) / 2.0 if np.isfinite(a) else float("nan")
+        half = float(special.chdtrc(1, a)) / 2.0 if np.isfinite(a) else float("nan")
         p_value = half if observed > expected else 1.0 - half
         return ExcessTest(observed, expected, n, p_value, "chi-square", float(a))
     if method != "exact":
         raise ValueError(f"method must be 'exact' or 'chi2', but got {method!r}")
     if n and np.ptp(pw) <= 1e-12:
-        p_value = float(stats.binom.sf(observed - 1, n, pw[0]))
+        p_value = float(special.bdtrc(observed - 1, n, pw[0]))
         return ExcessTest(observed, expected, n, p_value, "binomial")
     return ExcessTest(observed, expected, n, poisson_binomial_sf(observed, pw), "poisson-binomial")

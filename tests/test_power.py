@@ -54,6 +54,40 @@ def test_power_near_one_is_a_number(df, ncp):
     assert np.isfinite(p) and p == pytest.approx(1.0, abs=1e-6)
 
 
+def test_noncentral_survival_functions_match_scipy_stats():
+    # The noncentral t and F survival functions are taken from scipy.special (to spare the
+    # import of scipy.stats); they must be the ones scipy.stats' public methods compute.
+    from audit.designs._power import _ncf_sf, _nct_sf
+
+    rng = np.random.default_rng(11)
+    x = rng.uniform(-3.0, 8.0, 500)
+    df = np.exp(rng.uniform(0.0, np.log(1e4), 500))
+    nc = rng.uniform(-20.0, 40.0, 500)
+    # scipy.stats clips the t's survival function to [0, 1], as audit's t_power does after it.
+    np.testing.assert_allclose(
+        np.clip(_nct_sf(x, df, nc), 0, 1), stats.nct.sf(x, df, nc), rtol=1e-12, atol=1e-300
+    )
+    f = rng.uniform(0.1, 10.0, 500)
+    dfn = rng.integers(1, 12, 500).astype(float)
+    lam = rng.uniform(0.1, 60.0, 500)
+    np.testing.assert_allclose(
+        _ncf_sf(f, dfn, df, lam), stats.ncf.sf(f, dfn, df, lam), rtol=1e-12, atol=1e-300
+    )
+
+
+def test_importing_the_audit_leaves_scipy_stats_alone():
+    # Start-up time: scipy.stats takes about 0.45 s to import and the audit does not need it.
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, audit.cli, audit.pipeline, audit.export; "
+        "print(any(m.startswith('scipy.stats') for m in sys.modules))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"
+
+
 def test_t_critical_matches_scipy():
     # scipy.stats.t.isf is the reference quantile function.
     df = np.array([1.0, 3.0, 30.0, 1e4])
