@@ -118,28 +118,23 @@ def neutralise_formula(value: object) -> object:
 JSON_INDENT_LIMIT = 2_000
 
 
-def _json_default(value: object) -> object:
-    """Values orjson does not know: pandas' missing value, anything else as text."""
-    if value is pd.NA or value is pd.NaT:
-        return None
-    return str(value)
-
-
 def json_bytes(document: dict[str, object], *, indent: bool) -> bytes:
     """Encode the contract document with orjson (NaN becomes null, numpy scalars are numbers)."""
     import orjson
 
+    from audit.studyjson import json_default
+
     option = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
     if indent:
         option |= orjson.OPT_INDENT_2
-    return orjson.dumps(document, default=_json_default, option=option)
+    return orjson.dumps(document, default=json_default, option=option)
 
 
 def write_json(result: AuditResult, path: str | Path) -> None:
     """The contract JSON document (DESIGN.md section 5), UTF-8.
 
     Indented for portfolios of up to :data:`JSON_INDENT_LIMIT` studies. Larger documents are
-    compact and streamed: studies are built and encoded a chunk at a time while a second thread
+    compact and streamed: studies are encoded a chunk at a time while a second thread
     writes the previous chunk (file writes release the interpreter lock), so memory stays
     bounded and the disk works while the next chunk is encoded.
     """
@@ -154,10 +149,8 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     tail = json_bytes(result.document_tail(), indent=False)
     with atomic_output(path, "wb") as handle, _BackgroundWriter(handle) as writer:
         writer.write(head[:-1] + b',"studies":[')
-        for i, part in enumerate(result.study_records()):
-            encoded = json_bytes(part, indent=False)  # b"[...]"
-            if len(encoded) > 2:
-                writer.write((b"," if i else b"") + encoded[1:-1])
+        for i, part in enumerate(result.study_json()):
+            writer.write((b"," if i else b"") + part)
         writer.write(b"]," + tail[1:] + b"\n")
 
 

@@ -128,106 +128,19 @@ class AuditResult:
         """The keys of the JSON document that come after ``studies``."""
         return {"portfolio": _jsonable(self.portfolio), "caveats": self.caveats}
 
-    def study_records(self, chunk: int = 10_000) -> Iterator[list[dict[str, Any]]]:
-        """The ``studies`` of the JSON document, in input order, ``chunk`` studies at a time.
+    def study_json(self, chunk: int = 10_000) -> Iterator[bytes]:
+        """The ``studies`` of the JSON document as JSON text, in input order, ``chunk`` studies
+        at a time (comma-separated objects; see :mod:`audit.studyjson`)."""
+        from audit.studyjson import study_chunks
 
-        Built a chunk at a time so that a large portfolio never holds all of its study
-        objects at once (see :func:`audit.export.write_json`).
-        """
-        n = len(self.table)
-        errors = self.error_texts()
-        details = _RowGroups(_records(self.errors, ("column", "value", "reason"), "x"), "x", n)
-        notes = _RowGroups(self.notes, "text", n)
-        flags = _RowGroups(_records(self.findings, ("rule", "severity", "message"), "x"), "x", n)
-        ids = self.table["study_id"].to_numpy(dtype=object).tolist()
-        designs = self.table["design"].to_numpy(dtype=object).tolist()
-        rows = self.table["_row"].to_numpy(dtype=np.int64).tolist()
-        status = [str(v) for v in self.status]
-        for start in range(0, n, chunk):
-            stop = min(n, start + chunk)
-            metrics = _metric_records(self.metrics.iloc[start:stop])
-            note_lists = notes.lists(start, stop)
-            flag_lists = flags.lists(start, stop)
-            detail_lists = details.lists(start, stop)
-            yield [
-                {
-                    "study_id": ids[i],
-                    "row": rows[i],
-                    "design": designs[i],
-                    "status": status[i],
-                    "errors": errors[i],
-                    "error_details": detail_lists[i - start],
-                    "notes": note_lists[i - start],
-                    "metrics": metrics[i - start],
-                    "flags": flag_lists[i - start],
-                }
-                for i in range(start, stop)
-            ]
+        return study_chunks(self, chunk)
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON document of the output contract (DESIGN.md section 5)."""
-        studies = [study for part in self.study_records() for study in part]
+        import orjson
+
+        studies = orjson.loads(b"[" + b",".join(self.study_json()) + b"]")
         return {**self.document_head(), "studies": studies, **self.document_tail()}
-
-
-class _RowGroups:
-    """A long (pos, value) table sorted once, then cut into one list per row for any range."""
-
-    def __init__(self, frame: pd.DataFrame, column: str, n: int) -> None:
-        if len(frame):
-            positions = frame["pos"].to_numpy(dtype=np.int64)
-            order = np.argsort(positions, kind="stable")  # stable: order within a row kept
-            self.values = frame[column].to_numpy(dtype=object)[order].tolist()
-            counts = np.bincount(positions, minlength=n)
-        else:
-            self.values = []
-            counts = np.zeros(n, dtype=np.int64)
-        self.ends = np.cumsum(counts).tolist()
-        self.starts = [0, *self.ends[:-1]]
-
-    def lists(self, start: int, stop: int) -> list[list[Any]]:
-        values = self.values
-        return [
-            values[a:b] for a, b in zip(self.starts[start:stop], self.ends[start:stop], strict=True)
-        ]
-
-
-def _records(frame: pd.DataFrame, keys: tuple[str, ...], name: str) -> pd.DataFrame:
-    """``pos`` and a column ``name`` of dicts built from ``keys`` (plain lists, no pandas
-    per-row machinery: a large portfolio has hundreds of thousands of findings)."""
-    columns = [frame[k].to_numpy(dtype=object).tolist() for k in keys]
-    dicts = [dict(zip(keys, values, strict=True)) for values in zip(*columns, strict=True)]
-    out = pd.DataFrame({"pos": frame["pos"].to_numpy(dtype=np.int64)})
-    out[name] = pd.Series(dicts, dtype=object) if dicts else pd.Series([], dtype=object)
-    return out
-
-
-_INTEGER_METRICS = {"n_required_plan", "n_required_realized", "events_required_plan"}
-
-
-def _metric_records(metrics: pd.DataFrame) -> list[dict[str, Any]]:
-    """Metrics per row with nan as None and sizes as integers."""
-    cols = list(metrics.columns)
-    arrays = []
-    for c in cols:
-        col = metrics[c]
-        if col.dtype == object:
-            arrays.append([v if isinstance(v, str) else None for v in col])
-        else:
-            vals = col.to_numpy(dtype=float)
-            obj = vals.astype(object)
-            obj[~np.isfinite(vals)] = None
-            if c in _INTEGER_METRICS:
-                finite = np.isfinite(vals)
-                # Python integers: a required size can exceed the int64 range (an effect of
-                # 1e-12 needs about 1e25 units), and JSON integers have no limit.
-                obj[finite] = [int(v) for v in vals[finite].tolist()]
-            arrays.append(obj.tolist())
-    return (
-        [dict(zip(cols, values, strict=True)) for values in zip(*arrays, strict=True)]
-        if cols
-        else [{} for _ in range(len(metrics))]
-    )
 
 
 def _jsonable(value: Any) -> Any:

@@ -1,0 +1,131 @@
+"""The ``studies`` array of the JSON contract, encoded column by column, against a plain build.
+
+The reference here is written the obvious way (a dict per study from the result's tables, then
+the standard library's json), independently of :mod:`audit.studyjson`.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import audit
+from audit import export
+from audit.resources import bundled_dir
+from audit.studyjson import INTEGER_METRICS, encode_numbers, study_chunks
+
+DEMO = bundled_dir("demo_data") / "demo_portfolio.csv"
+
+
+def _plain_studies(result: audit.AuditResult) -> list[dict]:
+    def number(name: str, v: object) -> object:
+        if isinstance(v, str) or v is None:
+            return v
+        v = float(v)
+        if not math.isfinite(v):
+            return None
+        return int(v) if name in INTEGER_METRICS and abs(v) < 2**63 else v
+
+    def per_row(frame: pd.DataFrame, make) -> dict[int, list]:
+        out: dict[int, list] = {}
+        for record in frame.to_dict("records"):
+            out.setdefault(int(record["pos"]), []).append(make(record))
+        return out
+
+    errors = per_row(
+        result.errors,
+        lambda e: (
+            f"{e['column']}"
+            + (" (blank)" if e["value"] == "" else f" = '{e['value']}'")
+            + f": {e['reason']}"
+        ),
+    )
+    details = per_row(result.errors, lambda e: {k: e[k] for k in ("column", "value", "reason")})
+    notes = per_row(result.notes, lambda r: r["text"])
+    flags = per_row(result.findings, lambda f: {k: f[k] for k in ("rule", "severity", "message")})
+    studies = []
+    for i in range(len(result.table)):
+        metrics = {
+            name: number(name, result.metrics[name].iloc[i]) for name in result.metrics.columns
+        }
+        studies.append(
+            {
+                "study_id": result.table["study_id"].iloc[i],
+                "row": int(result.table["_row"].iloc[i]),
+                "design": result.table["design"].iloc[i],
+                "status": str(result.status[i]),
+                "errors": errors.get(i, []),
+                "error_details": details.get(i, []),
+                "notes": notes.get(i, []),
+                "metrics": metrics,
+                "flags": flags.get(i, []),
+            }
+        )
+    # Through the standard library's encoder and back, as a reader of the file would see them.
+    return json.loads(json.dumps(studies))
+
+
+def _portfolio_with_trouble() -> pd.DataFrame:
+    demo = pd.read_csv(DEMO, dtype=str, keep_default_na=False)
+    extra = pd.DataFrame(
+        {
+            "study_id": ['quote " and \\ back', "", "tiny-effect", "ünïcode ✓"],
+            "design": ["two_means", "two_means", "two_means", "not_a_design"],
+            "alpha": ["0.05", "0.05", "0.05", "0.05"],
+            "planned_n1": ["50", "50", "50", "50"],
+            "planned_n2": ["50", "abc", "50", "50"],
+            "realized_n1": ["45", "45", "50", "45"],
+            "realized_n2": ["44", "44", "50", "44"],
+            "planned_sd": ["1", "1", "1", "1"],
+            "planned_effect": ["0.5", "0.5", "1e-12", "0.5"],
+        }
+    )
+    return pd.concat([demo, extra], ignore_index=True).fillna("")
+
+
+def test_encoded_studies_equal_a_plain_build():
+    result = audit.audit_table(_portfolio_with_trouble())
+    assert (result.status == "invalid").sum() >= 2  # the reference covers error lists too
+    expected = _plain_studies(result)
+    for chunk in (1, 7, 10_000):
+        text = b"[" + b",".join(study_chunks(result, chunk)) + b"]"
+        assert json.loads(text) == expected, chunk
+    assert result.to_dict()["studies"] == expected
+
+
+def test_streamed_file_equals_the_indented_document(tmp_path, monkeypatch):
+    result = audit.audit_table(_portfolio_with_trouble())
+    small = tmp_path / "small.json"
+    export.write_json(result, small)
+    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)  # force the compact, streamed path
+    large = tmp_path / "large.json"
+    export.write_json(result, large)
+    assert json.loads(small.read_text("utf-8")) == json.loads(large.read_text("utf-8"))
+    assert large.read_bytes().count(b"\n") == 1  # compact: one line
+
+
+def test_numbers_keep_their_double_and_sizes_are_integers():
+    x = np.array([0.1, 1 / 3, 5e-324, -2.5e300, np.nan, np.inf, -np.inf, 1352.0, 2.0**70])
+    texts = encode_numbers(x)
+    back = [json.loads(t) for t in texts]
+    assert back[:4] == [0.1, 1 / 3, 5e-324, -2.5e300]  # shortest text, same double
+    assert back[4:7] == [None, None, None]
+    sizes = [json.loads(t) for t in encode_numbers(x, integer=True)]
+    assert sizes[7] == 1352 and isinstance(sizes[7], int)
+    # Beyond the 64-bit range a size is the double it was computed as, in exponent form.
+    assert sizes[8] == pytest.approx(2.0**70) and b"e" in encode_numbers(x, integer=True)[8]
+
+
+def test_an_astronomical_required_size_is_written(tmp_path):
+    # An effect of 1e-12 needs some 1e25 units: more than a 64-bit integer holds.
+    result = audit.audit_table(_portfolio_with_trouble())
+    tiny = int(np.flatnonzero(result.table["study_id"].to_numpy(dtype=object) == "tiny-effect")[0])
+    study = result.to_dict()["studies"][tiny]
+    assert study["metrics"]["n_required_plan"] > 1e24
+    path = tmp_path / "out.json"
+    export.write_json(result, path)
+    assert json.loads(path.read_text("utf-8"))["studies"][tiny] == study
