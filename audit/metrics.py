@@ -215,13 +215,12 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
     valid : which rows passed validation; other rows get null metrics and no notes.
     """
     n = len(table)
-    values = pd.DataFrame(index=table.index)
-    for name in METRICS:
-        values[name] = (
-            pd.Series([None] * n, index=table.index, dtype=object)
-            if name in TEXT_METRICS
-            else np.full(n, np.nan)
-        )
+    # Plain arrays filled design by design, one frame at the end (pandas' per-column item
+    # assignment costs more than the arithmetic of some designs).
+    columns: dict[str, np.ndarray] = {
+        name: np.full(n, None, dtype=object) if name in TEXT_METRICS else np.full(n, np.nan)
+        for name in METRICS
+    }
     notes = _Notes()
     design_col = table["design"].to_numpy(dtype=object)
     for name, design in DESIGNS.items():
@@ -232,9 +231,18 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
         rows = table.iloc[positions]
         computed = _design_metrics(design, rows, positions, notes)
         for metric, arr in computed.items():
-            if metric not in values.columns:
-                values[metric] = np.full(n, np.nan)
-            values.iloc[positions, values.columns.get_loc(metric)] = arr
+            if metric not in columns:
+                columns[metric] = np.full(n, np.nan)
+            columns[metric][positions] = arr
+    values = pd.DataFrame(
+        {
+            # Text metrics stay object columns with None for "not computed" (a str column
+            # would turn None into nan).
+            name: pd.Series(arr, index=table.index, dtype=object) if arr.dtype == object else arr
+            for name, arr in columns.items()
+        },
+        index=table.index,
+    )
     return MetricTable(values, notes.frame())
 
 

@@ -75,6 +75,19 @@ def test_noncentral_survival_functions_match_scipy_stats():
     )
 
 
+def test_threaded_evaluation_equals_the_single_call(monkeypatch):
+    # Large arrays are split over threads; the parts must give exactly the values of one call.
+    from audit.designs import _power
+
+    monkeypatch.setattr(_power, "THREADS", 3)
+    rng = np.random.default_rng(5)
+    n = _power.THREADED_MIN + 1001
+    x, df, nc = rng.uniform(0, 4, n), rng.uniform(1, 500, n), rng.uniform(-2, 8, n)
+    np.testing.assert_array_equal(
+        _power.threaded(_power._nct_sf, x, df, nc), _power._nct_sf(x, df, nc)
+    )
+
+
 def test_importing_the_audit_leaves_scipy_stats_alone():
     # Start-up time: scipy.stats takes about 0.45 s to import and the audit does not need it.
     import subprocess
