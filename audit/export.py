@@ -134,12 +134,15 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     """The contract JSON document (DESIGN.md section 5), UTF-8.
 
     Indented for portfolios of up to :data:`JSON_INDENT_LIMIT` studies. Larger documents are
-    compact and streamed: studies are encoded a chunk at a time while a second thread
-    writes the previous chunk (file writes release the interpreter lock), so memory stays
-    bounded and the disk works while the next chunk is encoded.
+    compact and streamed: studies are encoded a chunk at a time while a second thread writes the
+    previous chunk (file writes release the interpreter lock), so memory stays bounded and the
+    disk works while the next chunk is encoded. From :data:`PARALLEL_JSON_MIN` studies, where
+    the platform can fork, a child process encodes the second half meanwhile (see
+    :class:`_ForkedHalf`).
     """
     refuse_input(result, path)
-    if len(result.table) <= JSON_INDENT_LIMIT:
+    n = len(result.table)
+    if n <= JSON_INDENT_LIMIT:
         data = json_bytes(result.to_dict(), indent=True)
         with atomic_output(path, "wb") as handle:
             handle.write(data)
@@ -147,11 +150,100 @@ def write_json(result: AuditResult, path: str | Path) -> None:
         return
     head = json_bytes(result.document_head(), indent=False)
     tail = json_bytes(result.document_tail(), indent=False)
-    with atomic_output(path, "wb") as handle, _BackgroundWriter(handle) as writer:
-        writer.write(head[:-1] + b',"studies":[')
-        for i, part in enumerate(result.study_json()):
-            writer.write((b"," if i else b"") + part)
-        writer.write(b"]," + tail[1:] + b"\n")
+    half = n // 2 if n >= PARALLEL_JSON_MIN else n
+    folder = None if str(path) == "-" else Path(path).resolve().parent
+    with atomic_output(path, "wb") as handle:
+        # Forked before the writer thread starts: a child has only the thread that forked.
+        with _ForkedHalf(result, half, n, folder) as second, _BackgroundWriter(handle) as writer:
+            writer.write(head[:-1] + b',"studies":[')
+            for i, part in enumerate(result.study_json(stop=half)):
+                writer.write((b"," if i else b"") + part)
+            if half < n:
+                writer.write(b",")
+                for part in second.parts():
+                    writer.write(part)
+            writer.write(b"]," + tail[1:] + b"\n")
+
+
+#: From this many studies the JSON encoding is split over two processes (where fork exists).
+PARALLEL_JSON_MIN = 20_000
+
+
+class _ForkedHalf:
+    """Studies ``start`` to ``stop`` encoded by a forked child into an unlinked temporary file.
+
+    The encoding is pure Python work, so a second core helps only as a second process; fork
+    shares the audit's tables without copying or pickling them. The child writes its JSON text
+    (comma-separated studies) and leaves with ``os._exit``, so it never flushes or closes
+    anything of the parent's. :meth:`parts` yields the child's text when it succeeded, and
+    otherwise encodes the studies in this process: a failed child costs time, never output.
+    Only on Linux (fork is unsafe with some system libraries on macOS, and absent on Windows);
+    elsewhere, or for ``start == stop``, the studies are simply encoded here.
+    """
+
+    def __init__(self, result: AuditResult, start: int, stop: int, folder: Path | None) -> None:
+        self._result, self._start, self._stop, self._folder = result, start, stop, folder
+        self._pid = 0
+        self._file: IO[bytes] | None = None
+
+    def __enter__(self) -> _ForkedHalf:
+        if self._start >= self._stop or not sys.platform.startswith("linux"):
+            return self
+        import warnings
+
+        try:
+            self._file = tempfile.TemporaryFile(dir=self._folder)
+            with warnings.catch_warnings():
+                # Python 3.12+ warns about forking a process with threads (a progress bar's
+                # refresh thread): the child only encodes and writes to its own file, and
+                # takes no lock such a thread could hold.
+                warnings.simplefilter("ignore", DeprecationWarning)
+                self._pid = os.fork()
+        except OSError:
+            self._pid = 0
+            return self
+        if self._pid == 0:
+            self._child()
+        return self
+
+    def _child(self) -> None:
+        status = 1
+        try:
+            assert self._file is not None
+            fd = self._file.fileno()
+            for i, part in enumerate(self._result.study_json(start=self._start, stop=self._stop)):
+                view = memoryview(b"," + part if i else part)
+                while view:
+                    view = view[os.write(fd, view) :]
+            status = 0
+        finally:
+            os._exit(status)
+
+    def parts(self) -> Iterator[bytes]:
+        """The JSON text of the studies, from the child if it succeeded, else encoded here."""
+        if self._pid and self._wait() == 0 and self._file is not None:
+            self._file.seek(0)
+            while block := self._file.read(16 * 2**20):
+                yield block
+            return
+        for i, part in enumerate(self._result.study_json(start=self._start, stop=self._stop)):
+            yield b"," + part if i else part
+
+    def _wait(self) -> int:
+        pid, self._pid = self._pid, 0
+        _, status = os.waitpid(pid, 0)
+        return os.waitstatus_to_exitcode(status)
+
+    def __exit__(self, *exc: object) -> None:
+        if self._pid:  # the parent failed before collecting the child: stop it
+            import signal
+
+            with contextlib.suppress(OSError):
+                os.kill(self._pid, signal.SIGKILL)
+            with contextlib.suppress(OSError):
+                self._wait()
+        if self._file is not None:
+            self._file.close()
 
 
 class _BackgroundWriter:

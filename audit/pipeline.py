@@ -128,12 +128,15 @@ class AuditResult:
         """The keys of the JSON document that come after ``studies``."""
         return {"portfolio": _jsonable(self.portfolio), "caveats": self.caveats}
 
-    def study_json(self, chunk: int = 10_000) -> Iterator[bytes]:
+    def study_json(
+        self, chunk: int = 10_000, start: int = 0, stop: int | None = None
+    ) -> Iterator[bytes]:
         """The ``studies`` of the JSON document as JSON text, in input order, ``chunk`` studies
-        at a time (comma-separated objects; see :mod:`audit.studyjson`)."""
+        at a time (comma-separated objects; see :mod:`audit.studyjson`), for the studies at
+        positions ``start`` to ``stop`` (default: all)."""
         from audit.studyjson import study_chunks
 
-        return study_chunks(self, chunk)
+        return study_chunks(self, chunk, start, stop)
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON document of the output contract (DESIGN.md section 5)."""

@@ -126,8 +126,11 @@ def _join_rows(grid: np.ndarray) -> list[bytes]:
     return [b"".join(flat[i : i + width]) for i in range(0, len(flat), width)]
 
 
-def study_chunks(result: AuditResult, chunk: int = 10_000) -> Iterator[bytes]:
-    """The members of ``studies``, comma-separated (no brackets), ``chunk`` studies at a time.
+def study_chunks(
+    result: AuditResult, chunk: int = 10_000, start: int = 0, stop: int | None = None
+) -> Iterator[bytes]:
+    """The members of ``studies``, comma-separated (no brackets), ``chunk`` studies at a time,
+    for the studies at positions ``start`` to ``stop`` (default: all).
 
     Each study: ``study_id``, ``row``, ``design``, ``status``, ``errors`` (sentences),
     ``error_details`` (column, value, reason), ``notes``, ``metrics`` (name -> value, null
@@ -135,20 +138,27 @@ def study_chunks(result: AuditResult, chunk: int = 10_000) -> Iterator[bytes]:
     """
     table = result.table
     n = len(table)
-    errors = result.errors
+    first, last = start, n if stop is None else min(stop, n)
+
+    def within(frame: pd.DataFrame) -> pd.DataFrame:
+        pos = frame["pos"].to_numpy(dtype=np.int64)
+        return frame[(pos >= first) & (pos < last)]
+
+    errors = within(result.errors)
     error_pos = errors["pos"].to_numpy(dtype=np.int64)
     error_texts = encode_objects(_error_sentences(errors))
     error_details = _encode_records(errors, ("column", "value", "reason"))
-    note_pos = result.notes["pos"].to_numpy(dtype=np.int64)
-    note_texts = encode_objects(result.notes["text"].to_numpy(dtype=object))
-    findings = result.findings
+    notes = within(result.notes)
+    note_pos = notes["pos"].to_numpy(dtype=np.int64)
+    note_texts = encode_objects(notes["text"].to_numpy(dtype=object))
+    findings = within(result.findings)
     flag_pos = findings["pos"].to_numpy(dtype=np.int64)
     flags = _encode_records(findings, ("rule", "severity", "message"))
     metrics = result.metrics
     names = list(metrics.columns)
     status = np.asarray(result.status, dtype=object)
-    for start in range(0, n, chunk):
-        stop = min(n, start + chunk)
+    for start in range(first, last, chunk):
+        stop = min(last, start + chunk)
         part = table.iloc[start:stop]
         pieces = [
             (_key("study_id", True), encode_objects(part["study_id"].to_numpy(dtype=object))),
@@ -161,7 +171,7 @@ def study_chunks(result: AuditResult, chunk: int = 10_000) -> Iterator[bytes]:
         ]
         for j, name in enumerate(names):
             column = metrics[name].iloc[start:stop]
-            if column.dtype == object:
+            if not pd.api.types.is_numeric_dtype(column.dtype):  # texts (object or str)
                 texts = encode_objects([v if isinstance(v, str) else None for v in column])
             else:
                 texts = encode_numbers(

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import json
 import math
+import os
+import sys
 
 import numpy as np
 import pandas as pd
@@ -129,3 +131,20 @@ def test_an_astronomical_required_size_is_written(tmp_path):
     path = tmp_path / "out.json"
     export.write_json(result, path)
     assert json.loads(path.read_text("utf-8"))["studies"][tiny] == study
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the split uses fork on Linux")
+@pytest.mark.parametrize("child_fails", [False, True])
+def test_json_split_over_two_processes_is_the_same_document(tmp_path, monkeypatch, child_fails):
+    result = audit.audit_table(_portfolio_with_trouble())
+    small = tmp_path / "small.json"
+    export.write_json(result, small)
+    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
+    monkeypatch.setattr(export, "PARALLEL_JSON_MIN", 4)
+    if child_fails:
+        # A child that dies without output: the parent encodes that half itself.
+        monkeypatch.setattr(export._ForkedHalf, "_child", lambda self: os._exit(1))
+    split = tmp_path / "split.json"
+    export.write_json(result, split)
+    assert json.loads(split.read_text("utf-8")) == json.loads(small.read_text("utf-8"))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["small.json", "split.json"]
