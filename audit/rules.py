@@ -379,15 +379,32 @@ class Template:
         return {name for name, _ in self.fields}
 
     def render(self, values: Mapping[str, np.ndarray], size: int) -> np.ndarray:
-        """Messages for ``size`` rows; ``values`` maps each field name to its row values."""
-        out = np.full(size, "", dtype=object)
+        """Messages for ``size`` rows; ``values`` maps each field name to its row values.
+
+        One ``str.format`` call per row: fields with a spec and no missing value are formatted
+        by that call; the others (missing values, the default number style) are formatted as
+        columns first.
+        """
+        pattern: list[str] = []
+        args: list[list[Any]] = []
         start = 0
-        for match in _FIELD.finditer(self.text):
-            out = out + self.text[start : match.start()]
+        for i, match in enumerate(_FIELD.finditer(self.text)):
+            # The literal text holds no braces (checked by parse), so it needs no escaping.
+            pattern.append(self.text[start : match.start()])
             name, spec = match.group(1), match.group(2)
-            out = out + _format_column(values[name], spec)
+            column = np.asarray(values[name])
+            if spec and column.dtype.kind == "f" and not np.isnan(column).any():
+                pattern.append(f"{{{i}:{spec}}}")
+                args.append(column.tolist())
+            else:
+                pattern.append(f"{{{i}}}")
+                args.append(_format_column(column, spec).tolist())
             start = match.end()
-        return out + self.text[start:]
+        pattern.append(self.text[start:])
+        fmt = "".join(pattern)
+        out = np.empty(size, dtype=object)
+        out[:] = [fmt.format(*row) for row in zip(*args, strict=True)] if args else fmt
+        return out
 
 
 def _format_column(values: np.ndarray, spec: str | None) -> np.ndarray:
