@@ -17,9 +17,11 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import IO, TYPE_CHECKING
 
+import numpy as np
 import pandas as pd
 
 from audit.errors import OutputError
+from audit.studyjson import INTEGER_METRICS
 
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
@@ -295,9 +297,9 @@ def studies_frame(result: AuditResult) -> pd.DataFrame:
         }
     )
     metrics = result.metrics.reset_index(drop=True)
-    for c in ("n_required_plan", "n_required_realized", "events_required_plan"):
-        if c in metrics.columns and metrics[c].dtype != object:
-            metrics[c] = metrics[c].astype("Int64")
+    for c in INTEGER_METRICS:
+        if c in metrics.columns and pd.api.types.is_float_dtype(metrics[c].dtype):
+            metrics[c] = _whole_numbers(metrics[c].to_numpy())
     flags = result.by_row(
         result.findings.assign(
             text=result.findings["rule"].astype(str)
@@ -320,6 +322,19 @@ def studies_frame(result: AuditResult) -> pd.DataFrame:
     return pd.concat([user, ours, metrics, tail], axis=1)
 
 
+def _whole_numbers(values: np.ndarray) -> pd.Series:
+    """Sizes as whole numbers (blank where not computed). A size past the 64-bit range (an
+    effect of 1e-12 needs some 1e25 units) stays the double it was computed as."""
+    finite = np.isfinite(values)
+    if (np.abs(values[finite]) < 2.0**63).all():
+        return pd.Series(values, dtype="Float64").astype("Int64")
+    out = np.full(len(values), None, dtype=object)
+    small = finite & (np.abs(values) < 2.0**63)
+    out[small] = [int(v) for v in values[small].tolist()]
+    out[finite & ~small] = values[finite & ~small].tolist()
+    return pd.Series(out, dtype=object)
+
+
 def write_csv(result: AuditResult, path: str | Path) -> None:
     """The per-study table as CSV, formula-like text made inert."""
     refuse_input(result, path)
@@ -327,7 +342,11 @@ def write_csv(result: AuditResult, path: str | Path) -> None:
     frame.columns = [neutralise_formula(str(c)) for c in frame.columns]
     for c in frame.columns:
         if frame[c].dtype == object or pd.api.types.is_string_dtype(frame[c]):
-            frame[c] = frame[c].astype(object).map(neutralise_formula)
+            # Built as an object column: Series.map would turn a column of whole numbers
+            # with one blank into floats ("128.0").
+            cells = np.empty(len(frame), dtype=object)
+            cells[:] = [neutralise_formula(v) for v in frame[c].tolist()]
+            frame[c] = pd.Series(cells, index=frame.index, dtype=object)
     with atomic_output(path) as handle:
         frame.to_csv(handle, index=False, lineterminator="\n")
 

@@ -131,6 +131,16 @@ def test_an_astronomical_required_size_is_written(tmp_path):
     path = tmp_path / "out.json"
     export.write_json(result, path)
     assert json.loads(path.read_text("utf-8"))["studies"][tiny] == study
+    # The CSV and the workbook carry it too (both used to stop with an internal error).
+    export.write_csv(result, tmp_path / "out.csv")
+    table = pd.read_csv(tmp_path / "out.csv", dtype=str, keep_default_na=False)
+    assert float(table["n_required_plan"][tiny]) == pytest.approx(
+        study["metrics"]["n_required_plan"]
+    )
+    assert table["n_required_plan"][0].isdigit()  # ordinary sizes stay whole numbers
+    from audit.workbook import write_workbook
+
+    write_workbook(result, tmp_path / "out.xlsx")
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the split uses fork on Linux")
