@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import csv
 import io
+import itertools
 import re
 import warnings
 import zipfile
@@ -317,43 +318,67 @@ def _parse_delimited(
     quoted = '"' in text
     records: list[list[object]] = []
     problems: list[tuple[int, int, str]] = []
+    failure: csv.Error | None = None
+    try:
+        # All records at C speed; extend keeps those read before a parse error.
+        records.extend(reader)
+    except csv.Error as exc:
+        failure = exc
     if not quoted:
-        # Without quote marks no cell can swallow lines: read everything at C speed, then check
-        # the limits on the whole.
-        try:
-            records = list(reader)
-        except csv.Error as exc:
+        # Without quote marks no cell can swallow lines: check the limits on the whole.
+        if failure is not None:
             raise InputError(
-                f"{source}: the file could not be read as delimited text ({exc})."
-            ) from exc
+                f"{source}: the file could not be read as delimited text ({failure})."
+            ) from failure
         if len(records) > MAX_ROWS + HEADER_SEARCH_ROWS:
             filled = sum(1 for r in records if any(r))
             if filled > MAX_ROWS + HEADER_SEARCH_ROWS:
                 raise InputError(_too_many_rows(source))
-        widest = max((len(r) for r in records), default=0)
+        widest = max(map(len, records), default=0)
         if widest > MAX_COLUMNS:
             for r in records:
                 if len(r) > MAX_COLUMNS and any(r[MAX_COLUMNS:]):
                     raise InputError(_too_many_columns(source, len(r)))
         return records, problems
-    try:
-        for record in reader:
-            if len(records) > MAX_ROWS + HEADER_SEARCH_ROWS and any(record):
-                raise InputError(_too_many_rows(source))
-            if len(record) > MAX_COLUMNS and any(record[MAX_COLUMNS:]):
-                raise InputError(_too_many_columns(source, len(record)))
-            # A line break plus the separator inside one cell is what an unbalanced quote mark
-            # produces: the lines up to the next quote mark are swallowed into the cell. (One
-            # test per record first: cells with line breaks are rare.)
-            if quoted and ("\n" in (joined := "".join(record)) or "\r" in joined):
-                problems.extend(_swallowed(record, delimiter, len(records)))
-            records.append(record)
-    except csv.Error as exc:
+    _check_limits_in_order(records, source)
+    if failure is not None:
         raise InputError(
             f"{source}: the file could not be read as delimited text near record "
-            f"{len(records) + 1} ({exc}); check quote marks there."
-        ) from exc
+            f"{len(records) + 1} ({failure}); check quote marks there."
+        ) from failure
+    # A line break plus the separator inside one cell is what an unbalanced quote mark
+    # produces: the lines up to the next quote mark are swallowed into the cell. Each record
+    # takes one line unless a cell holds a line break, so equal counts clear the whole file.
+    if len(records) != _line_count(text):
+        for index, record in enumerate(records):
+            if "\n" in (joined := "".join(record)) or "\r" in joined:  # type: ignore[arg-type]
+                problems.extend(_swallowed(record, delimiter, index))  # type: ignore[arg-type]
     return records, problems
+
+
+def _line_count(text: str) -> int:
+    """Lines as io.StringIO(newline="") splits them: at \\n, \\r and \\r\\n."""
+    breaks = text.count("\n") + text.count("\r") - text.count("\r\n")
+    return breaks + (not text.endswith(("\n", "\r")) if text else 0)
+
+
+def _check_limits_in_order(records: list[list[object]], source: object) -> None:
+    """Raise for the first record past the row limit or the column limit, whichever comes first
+    (a quoted file is checked record by record, as it would be read)."""
+    first_row = None
+    if len(records) > MAX_ROWS + HEADER_SEARCH_ROWS + 1:
+        start = MAX_ROWS + HEADER_SEARCH_ROWS + 1
+        first_row = next((i for i in range(start, len(records)) if any(records[i])), None)
+    first_column = None
+    if max(map(len, records), default=0) > MAX_COLUMNS:
+        first_column = next(
+            (i for i, r in enumerate(records) if len(r) > MAX_COLUMNS and any(r[MAX_COLUMNS:])),
+            None,
+        )
+    if first_row is not None and (first_column is None or first_row <= first_column):
+        raise InputError(_too_many_rows(source))
+    if first_column is not None:
+        raise InputError(_too_many_columns(source, len(records[first_column])))
 
 
 def _swallowed(record: list[str], delimiter: str, index: int) -> list[tuple[int, int, str]]:
@@ -773,6 +798,63 @@ def _row_is_blank(values: list[object]) -> bool:
         return all(_is_blank(v) for v in values)
 
 
+def _blank_mask(rows: list[list[object]]) -> np.ndarray:
+    """For each row, True when no cell holds anything.
+
+    Text rows (every row of a delimited file) are joined and tested by C-level maps, with no
+    Python code per row; ``str.isspace`` and ``str.strip`` agree on what whitespace is.
+    """
+    try:
+        joined = list(map("".join, rows))  # type: ignore[arg-type]
+    except TypeError:  # numbers, None or other cell values from a workbook
+        return np.fromiter(map(_row_is_blank, rows), dtype=bool, count=len(rows))
+    empty = np.fromiter(map(len, joined), dtype=np.int64, count=len(rows)) == 0
+    return empty | np.fromiter(map(str.isspace, joined), dtype=bool, count=len(rows))
+
+
+def _blank_numbers(numbers: list[int], blank_row: np.ndarray, last: int) -> list[int]:
+    """Spreadsheet numbers of the blank rows, in order: the rows found blank and the rows the
+    sheet does not store at all (a gap in an .xlsx), which are blank rows too."""
+    at = np.fromiter(numbers, dtype=np.int64, count=len(numbers))
+    before = np.concatenate(([last], at[:-1]))
+    # Only rows that are blank or follow a gap need a look (none, in most files).
+    out: list[int] = []
+    for i in np.flatnonzero(blank_row | (at - before > 1)):
+        out.extend(range(int(before[i]) + 1, numbers[i]))
+        if blank_row[i]:
+            out.append(numbers[i])
+    return out
+
+
+def _frame(rows: list[list[object]], width: int) -> pd.DataFrame:
+    """Rows as an object frame of ``width`` columns (0..width-1), short rows padded with None."""
+    try:
+        # The step DataFrame(rows) starts with (rows to one padded 2-D array), without the split
+        # into columns and re-stacking that follow it there: a third of the time.
+        from pandas._libs.lib import to_object_array
+    except ImportError:  # a pandas version that moved it: pad by hand for the constructor
+        lengths = np.fromiter(map(len, rows), dtype=np.int64, count=len(rows))
+        rows = list(rows)
+        for i in np.flatnonzero(lengths < width):
+            rows[i] = list(rows[i]) + [None] * (width - len(rows[i]))
+        return pd.DataFrame(rows or None, columns=range(width), dtype=object)
+    return pd.DataFrame(
+        to_object_array(rows, min_width=width), columns=range(width), dtype=object, copy=False
+    )
+
+
+def _has_data(values: np.ndarray) -> bool:
+    """True when any cell of a column is not blank; looked at per distinct value."""
+    try:
+        codes, uniques = pd.factorize(values)
+    except TypeError:  # an unhashable cell (a list in a DataFrame given from Python)
+        return not all(_is_blank(v) for v in values)
+    if not all(_is_blank(v) for v in uniques):
+        return True
+    # factorize sets every missing-value marker aside; only None is a blank cell.
+    return any(v is not None for v in values[codes < 0])
+
+
 def _is_blank(value: object) -> bool:
     return value is None or (isinstance(value, str) and not value.strip())
 
@@ -865,7 +947,7 @@ def _to_raw(
         raise InputError(
             f"{source}{_sheet_text(sheet_name)}: the file is empty (no cell holds anything)."
         )
-    width = max((len(r) for r in cells[h:]), default=0)
+    width = max(map(len, cells[h:]), default=0)
     header, header_rows, notes = _header_texts(sheet, h, width)
     notes = list(sheet.notes) + notes
     header_number = sheet.numbers[h]
@@ -881,15 +963,25 @@ def _to_raw(
         )
     body = cells[h + header_rows :]
     body_numbers = sheet.numbers[h + header_rows :]
+    blank_row = _blank_mask(body)
+    data_rows, numbers = body, body_numbers
+    if blank_row.any():
+        data_rows = list(itertools.compress(body, ~blank_row))
+        numbers = list(itertools.compress(body_numbers, ~blank_row))
+    blank = _blank_numbers(body_numbers, blank_row, header_number + header_rows - 1)
+    # One frame of every column, rows padded to the width with None; the columns kept are
+    # taken from it below.
+    full = _frame(data_rows, width)
     # Columns with neither header nor data (stray empty columns) are dropped; a column with data
-    # but no header gets a name from its letter so that nothing is lost.
+    # but no header gets a name from its letter so that nothing is lost. (Blank rows have no
+    # data, so the rows of the frame are all that need looking at.)
     names: list[str] = []
     written: list[str] = []
     keep: list[int] = []
     for j in range(width):
         text = header[j] if j < len(header) else None
         if _is_blank(text):
-            if all(j >= len(r) or _is_blank(r[j]) for r in body):
+            if not _has_data(full[j].to_numpy()):
                 continue
             text = f"column {_column_letter(j)}"
         keep.append(j)
@@ -909,30 +1001,10 @@ def _to_raw(
             duplicates.setdefault(name, []).append(names[k])
         else:
             seen[name] = k
-    data_rows: list[list[object]] = []
-    numbers: list[int] = []
-    blank: list[int] = []
-    last = header_number + header_rows - 1
-    every = keep == list(range(width))
-    for row, spreadsheet_row in zip(body, body_numbers, strict=True):
-        # Rows the sheet does not store at all (a gap in an .xlsx) are blank rows too.
-        blank.extend(range(last + 1, spreadsheet_row))
-        last = spreadsheet_row
-        if every:
-            # The common case (no dropped columns): the row as read, padded by the frame below.
-            values = row
-        else:
-            values = [row[j] if j < len(row) else None for j in keep]
-        if _row_is_blank(values):
-            blank.append(spreadsheet_row)
-            continue
-        data_rows.append(values)
-        numbers.append(spreadsheet_row)
     if len(data_rows) > MAX_ROWS:
         raise InputError(_too_many_rows(source))
-    if every and data_rows and any(len(r) != width for r in data_rows):
-        data_rows = [r + [None] * (width - len(r)) for r in data_rows]
-    frame = pd.DataFrame(data_rows, columns=names, dtype=object)
+    frame = full if keep == list(range(width)) else full.iloc[:, keep]
+    frame.columns = names
     if not len(data_rows):
         frame = pd.DataFrame({name: pd.Series(dtype=object) for name in names})
     table = RawTable(
