@@ -289,36 +289,124 @@ def parse_numbers(
     >>> why.tolist()[4]
     'not a number'
     """
-    out = pd.Series(np.nan, index=values.index, dtype=float)
-    problem = pd.Series("", index=values.index, dtype=object)
-    kind = _cell_kinds(values)
-    is_num = pd.Series(kind == _NUM, index=values.index)
+    x, at, reasons = _numbers(values, decimal_comma=decimal_comma, whole=whole)
+    problem = np.full(len(values), "", dtype=object)
+    problem[at] = reasons
+    return pd.Series(x, index=values.index), pd.Series(problem, index=values.index, dtype=object)
+
+
+def _numbers(
+    values: pd.Series, *, decimal_comma: bool, whole: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`parse_numbers` as ``(floats, positions of rejected cells, their reasons)``."""
+    n = len(values)
+    if isinstance(values.dtype, np.dtype) and values.dtype.kind in "fiu":
+        # Numbers already (a frame built in Python): nothing to read.
+        x = values.to_numpy(dtype=float, copy=True)
+        bad = np.zeros(n, dtype=bool)
+        why = np.empty(n, dtype=object)
+    else:
+        cells = values.to_numpy(dtype=object)
+        distinct = _distinct_texts(cells)
+        if distinct is None:
+            x, bad, why = _numbers_by_kind(cells, decimal_comma=decimal_comma, whole=whole)
+        else:
+            codes, texts = distinct
+            text_x, text_why = _parse_texts(texts, decimal_comma=decimal_comma, whole=whole)
+            x = _take(text_x, codes, np.nan)
+            bad = _take(text_why != "", codes, False)
+            why = _take(text_why, codes, None)
+    with np.errstate(invalid="ignore"):
+        infinite = np.isinf(x)
+    why[infinite & ~bad] = "not a finite number"
+    bad |= infinite
+    x[infinite] = np.nan
+    at = np.flatnonzero(bad)
+    return x, at, why[at]
+
+
+def _distinct_texts(cells: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """``(codes, texts)`` of a column holding only text and None (code -1), else None.
+
+    Every column of a text file is such a column. Its cells are read once per distinct text
+    (portfolios repeat designs, choices and numbers), by a C-level hash of the column, and
+    mapped back by the codes.
+    """
+    try:
+        codes, texts = pd.factorize(cells)
+    except TypeError:  # an unhashable cell (a list in a frame built in Python)
+        return None
+    if len(texts) and pd.api.types.infer_dtype(texts, skipna=False) != "string":
+        return None
+    # factorize sets every missing-value marker aside; only None is an empty cell here.
+    if not all(v is None for v in cells[codes < 0]):
+        return None
+    return codes, texts.astype(object, copy=False)
+
+
+def _take(per_text: np.ndarray, codes: np.ndarray, empty: object) -> np.ndarray:
+    """Per-cell values from per-text values; ``empty`` where the code is -1 (no text)."""
+    return np.append(per_text, np.array([empty], dtype=per_text.dtype))[codes]
+
+
+def _numbers_by_kind(
+    cells: np.ndarray, *, decimal_comma: bool, whole: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Numbers of a column of mixed cells (a workbook's): by kind, text per distinct value.
+
+    Returns ``(floats, rejected, reasons)`` with one entry per cell (a reason counts where the
+    cell is rejected).
+    """
+    n = len(cells)
+    x = np.full(n, np.nan)
+    why = np.empty(n, dtype=object)
+    kind = _cell_kinds(cells)
+    is_num = kind == _NUM
     if is_num.any():
-        # Python ints of any size: beyond float range they become inf and are rejected below.
-        out[is_num] = [_as_float(v) for v in values[is_num]]
+        x[is_num] = _as_floats(cells[is_num])
     other_at = np.flatnonzero(kind == _OTHER)
-    uncached_np = np.zeros(len(values), dtype=bool)
-    uncached_np[other_at] = [values.iat[i] is UNCACHED for i in other_at]
-    uncached = pd.Series(uncached_np, index=values.index)
-    problem[uncached] = "formula without a saved value (open and save the file, or paste values)"
-    text_mask = pd.Series(kind == _TEXT, index=values.index)
-    if text_mask.any():
-        text = values[text_mask].astype(object)
-        # Empty cells (half of a wide sheet) are dropped at C speed; whitespace-only cells go to
-        # the careful path below, which reads them as blank too.
-        empty = text.to_numpy(dtype=object) == ""
-        text_mask[text.index[empty]] = False
-        text = text[~empty]
-        # Fast path for the common case, a plain number (C-speed parsing); everything else
-        # (percentages, separators, markers of missing values, junk) takes the careful path.
-        quick = pd.to_numeric(text, errors="coerce").astype(float)
-        plain = np.isfinite(quick.to_numpy())
-        if decimal_comma and plain.any():
-            plain &= ~text.str.contains(".", regex=False).to_numpy(dtype=bool, na_value=False)
-        out[quick.index[plain]] = quick[plain]
-        text_mask[quick.index[plain]] = False
-    if text_mask.any():
-        s = values[text_mask].astype(str).str.strip().str.replace("\u00a0", "", regex=False)
+    uncached = np.zeros(n, dtype=bool)
+    uncached[other_at] = [cells[i] is UNCACHED for i in other_at]
+    why[uncached] = "formula without a saved value (open and save the file, or paste values)"
+    boolean = kind == _BOOL
+    why[boolean] = "not a number (TRUE/FALSE)"
+    # Anything else a spreadsheet cell can hold (a date, a time, an error value's object) is not
+    # a number either; it must never pass as blank.
+    other = (kind == _OTHER) & ~uncached
+    why[other] = "not a number (a date or another kind of value)"
+    bad = uncached | boolean | other
+    text_at = np.flatnonzero(kind == _TEXT)
+    if len(text_at):
+        codes, texts = pd.factorize(cells[text_at])
+        text_x, text_why = _parse_texts(
+            texts.astype(object, copy=False), decimal_comma=decimal_comma, whole=whole
+        )
+        x[text_at] = text_x[codes]
+        why[text_at] = text_why[codes]
+        bad[text_at] = (text_why != "")[codes]
+    return x, bad, why
+
+
+def _parse_texts(
+    texts: np.ndarray, *, decimal_comma: bool, whole: bool
+) -> tuple[np.ndarray, np.ndarray]:
+    """Numbers (nan if none) and rejection reasons ("" if none) of distinct cell texts."""
+    index = pd.RangeIndex(len(texts))
+    out = pd.Series(np.nan, index=index, dtype=float)
+    problem = pd.Series("", index=index, dtype=object)
+    # Empty cells (half of a wide sheet) are blank; whitespace-only cells go to the careful
+    # path below, which reads them as blank too.
+    text = pd.Series(texts, index=index, dtype=object)
+    text = text[text.to_numpy() != ""]
+    # Fast path for the common case, a plain number (C-speed parsing); everything else
+    # (percentages, separators, markers of missing values, junk) takes the careful path.
+    quick = pd.to_numeric(text, errors="coerce").astype(float)
+    plain = np.isfinite(quick.to_numpy())
+    if decimal_comma and plain.any():
+        plain &= ~text.str.contains(".", regex=False).to_numpy(dtype=bool, na_value=False)
+    out[quick.index[plain]] = quick[plain]
+    if not plain.all():
+        s = text[~plain].astype(str).str.strip().str.replace("\u00a0", "", regex=False)
         # The typographic minus (U+2212) and dashes pasted from documents mean a minus sign.
         s = s.str.replace(" ", "", regex=False).str.replace(_MINUS_SIGNS, "-", regex=True)
         missing = s.str.lower().isin(MISSING_TOKENS)
@@ -360,17 +448,7 @@ def parse_numbers(
                     "separator of a decimal-comma file)"
                 )
             problem[reason.index] = reason
-    bool_mask = pd.Series(kind == _BOOL, index=values.index)
-    problem[bool_mask] = "not a number (TRUE/FALSE)"
-    # Anything else a spreadsheet cell can hold (a date, a time, an error value's object) is not
-    # a number either; it must never pass as blank.
-    other = pd.Series(kind == _OTHER, index=values.index) & ~uncached
-    problem[other] = "not a number (a date or another kind of value)"
-    with np.errstate(invalid="ignore"):
-        infinite = np.isinf(out.to_numpy(dtype=float))
-    problem[infinite & (problem == "").to_numpy()] = "not a finite number"
-    out[infinite] = np.nan
-    return out, problem
+    return out.to_numpy(dtype=float), problem.to_numpy(dtype=object)
 
 
 _NONE, _NUM, _TEXT, _BOOL, _OTHER = range(5)
@@ -386,18 +464,25 @@ _KINDS = {
 }
 
 
-def _cell_kinds(values: pd.Series) -> np.ndarray:
+def _cell_kinds(cells: np.ndarray) -> np.ndarray:
     """Kind of each cell (none, number, text, boolean, other), at C speed when the column is
-    uniform, as columns of a text file are."""
-    inferred = pd.api.types.infer_dtype(values, skipna=True)
-    present = values.notna().to_numpy()
+    uniform."""
+    inferred = pd.api.types.infer_dtype(cells, skipna=True)
+    present = pd.notna(cells)
     if inferred in ("string", "empty"):
         return np.where(present, _TEXT, _NONE).astype(np.int8)
     if inferred in ("floating", "integer", "mixed-integer-float"):
         return np.where(present, _NUM, _NONE).astype(np.int8)
     return np.fromiter(
-        (_KINDS.get(type(v), _OTHER) for v in values), dtype=np.int8, count=len(values)
+        (_KINDS.get(type(v), _OTHER) for v in cells), dtype=np.int8, count=len(cells)
     )
+
+
+def _as_floats(cells: np.ndarray) -> np.ndarray:
+    try:
+        return cells.astype(float)
+    except OverflowError:  # Python ints beyond float range: inf, rejected as not finite
+        return np.array([_as_float(v) for v in cells], dtype=float)
 
 
 def _as_float(value: object) -> float:
@@ -438,19 +523,22 @@ def validate(raw: RawTable) -> Validated:
     file_notes: list[str] = list(raw.notes)
 
     def fail(mask: np.ndarray, column: str, reason: str | np.ndarray) -> None:
+        """Failures where ``mask`` is set; ``reason``: one text, or one per row."""
         pos = np.flatnonzero(mask)
+        reasons = np.asarray(reason, dtype=object)
+        fail_at(pos, column, np.broadcast_to(reasons, (n,))[pos] if reasons.ndim else reason)
+
+    def fail_at(pos: np.ndarray, column: str, reason: str | np.ndarray) -> None:
+        """Failures at the positions ``pos``; ``reason``: one text, or one per position."""
         if len(pos):
             fail_pos.append(pos)
             fail_col.append(column)
-            reasons = np.asarray(reason, dtype=object)
             fail_reason.append(
-                np.broadcast_to(reasons, (n,))[pos] if reasons.ndim else np.full(len(pos), reason)
+                np.full(len(pos), reason) if isinstance(reason, str) else reason.astype(object)
             )
 
     for position, column, reason in raw.cell_problems:
-        mask = np.zeros(n, dtype=bool)
-        mask[position] = True
-        fail(mask, column, reason)
+        fail_at(np.array([position], dtype=np.intp), column, reason)
 
     data = _merge_duplicates(raw, fail, notes_pos, notes_text, file_notes)
 
@@ -479,12 +567,12 @@ def validate(raw: RawTable) -> Validated:
             continue
         if spec.name == "observed_p":
             cells = _p_value_bounds(cells, table, notes_pos, notes_text)
-        numbers, problem = parse_numbers(
+        x, at, reasons = _numbers(
             cells, decimal_comma=raw.decimal_comma, whole=spec.kind == "integer"
         )
-        bad = (problem != "").to_numpy()
-        fail(bad, spec.name, problem.to_numpy(dtype=object))
-        x = numbers.to_numpy(dtype=float)
+        fail_at(at, spec.name, reasons)
+        bad = np.zeros(n, dtype=bool)
+        bad[at] = True
         with np.errstate(invalid="ignore"):
             present = ~np.isnan(x)
             out_of_range = np.zeros(n, dtype=bool)
