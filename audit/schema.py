@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Literal
 
@@ -554,13 +554,16 @@ def validate(raw: RawTable) -> Validated:
             continue
         cells = data[spec.name].reset_index(drop=True)
         if spec.kind == "flag":
-            text = cells.map(lambda v: None if v is None else _fmt(v).strip().lower())
-            blank = text.isna() | text.isin(MISSING_TOKENS)
-            flag = text.map(lambda v: FLAG_VALUES.get(v, np.nan) if v is not None else np.nan)
-            bad = (~blank & flag.isna()).to_numpy()
-            fail(bad, spec.name, f"expected {spec.range_text()}")
+            codes, texts, uncached = _trimmed_texts(cells)
+            lowered = list(map(str.lower, texts))
+            # A formula without a saved value is not blank: it is rejected as no yes or no.
+            tokens = _flags(map(MISSING_TOKENS.__contains__, lowered), len(texts))
+            blank = _take(tokens, codes, True) & ~uncached
+            values = np.array([FLAG_VALUES.get(v, np.nan) for v in lowered], dtype=float)
+            flag = _take(values, codes, np.nan)
+            fail(~blank & np.isnan(flag), spec.name, f"expected {spec.range_text()}")
             # Blank stays nan: the run's default applies (see audit.pipeline).
-            table[spec.name] = flag.to_numpy(dtype=float)
+            table[spec.name] = flag
             continue
         if spec.kind in ("text", "design", "choice"):
             _text_column(spec, cells, table, fail)
@@ -622,14 +625,18 @@ def validate(raw: RawTable) -> Validated:
             ).to_numpy(dtype=object)
         )
 
-    sides = pd.to_numeric(table["sides"], errors="coerce").to_numpy(dtype=float)
-    table["sides"] = sides
+    # Per distinct value: the column holds a handful of texts.
+    codes, texts = pd.factorize(table["sides"].to_numpy(dtype=object), use_na_sentinel=False)
+    sides = pd.to_numeric(pd.Series(texts, dtype=object), errors="coerce").to_numpy(dtype=float)
+    table["sides"] = sides[codes]
 
     # Design-specific checks, on rows whose design is known.
+    codes, designs = pd.factorize(table["design"].to_numpy(dtype=object))
+    code_of = {d: k for k, d in enumerate(designs)}
     for name, design in DESIGNS.items():
-        mask = (table["design"] == name).to_numpy()
-        if not mask.any():
+        if name not in code_of:
             continue
+        mask = codes == code_of[name]
         sub = table.loc[mask]
         for bad, column, reason in design.check_rows(sub):
             full = np.zeros(n, dtype=bool)
@@ -701,37 +708,30 @@ def _p_value_bounds(
     simply 0.03. The cells returned keep only plain p-values for the number parser.
     """
     n = len(cells)
-    bound = np.full(n, np.nan)
+    values = cells.to_numpy(dtype=object)
+    distinct = _distinct_texts(values)
+    if distinct is not None:
+        codes, texts = distinct
+        at = np.flatnonzero(codes >= 0)
+        codes = codes[at]
+        numeric_zero = np.zeros(n, dtype=bool)
+    else:  # workbook cells: numbers and other values beside the texts
+        at = np.flatnonzero(np.fromiter((isinstance(v, str) for v in values), bool, count=n))
+        codes, texts = pd.factorize(values[at])
+        numeric_zero = np.array(
+            [isinstance(v, (int, float)) and not isinstance(v, bool) and v == 0 for v in values],
+            dtype=bool,
+        )
+    # Each distinct text read once.
+    read = [_p_text(t) for t in texts]
     relation = np.full(n, np.nan)
-    cleaned = cells.copy()
-    texts = [(i, v) for i, v in enumerate(cells.tolist()) if isinstance(v, str) and v.strip()]
-    for i, raw in texts:
-        text = raw.strip().replace("\u2212", "-")
-        if text.lower() in _NOT_SIGNIFICANT:
-            relation[i] = 1.0
-            cleaned.iat[i] = None
-            continue
-        equals = _P_EQUALS.match(text)
-        if equals:
-            cleaned.iat[i] = equals.group("num")
-            text = equals.group("num")
-        match = _P_BOUND.match(text)
-        if match:
-            number = float(match.group("num").replace(",", "."))
-            relation[i] = -1.0 if match.group("rel") in ("<", "<=", "\u2264") else 1.0
-            bound[i] = number
-            cleaned.iat[i] = None
-            continue
-        zero = re.fullmatch(r"0?[.,](0+)", text)
-        if zero or text == "0":
-            digits = len(zero.group(1)) if zero else 0
-            relation[i] = -1.0
-            bound[i] = 0.5 * 10.0 ** (-digits) if digits else 0.001
-            cleaned.iat[i] = None
-    numeric_zero = np.array(
-        [isinstance(v, (int, float)) and not isinstance(v, bool) and v == 0 for v in cells],
-        dtype=bool,
-    )
+    bound = np.full(n, np.nan)
+    relation[at] = np.array([r for r, _, _ in read], dtype=float)[codes]
+    bound[at] = np.array([b for _, b, _ in read], dtype=float)[codes]
+    cleaned = values.copy()
+    changed = np.array([c is not _AS_WRITTEN for _, _, c in read], dtype=bool)[codes]
+    replaced = _objects([c for _, _, c in read])[codes]
+    cleaned[at[changed]] = replaced[changed]
     relation[numeric_zero] = -1.0
     bound[numeric_zero] = 0.001
     cleaned[numeric_zero] = None
@@ -739,18 +739,66 @@ def _p_value_bounds(
     table["observed_p_relation"] = relation
     marked = np.flatnonzero(~np.isnan(relation))
     if len(marked):
+        note = np.empty(n, dtype=object)
+        note[at] = _objects([_p_note(t) for t in texts])[codes]
+        zero_at = np.flatnonzero(numeric_zero)
+        note[zero_at] = [_p_note(values[i]) for i in zero_at]
         notes_pos.append(marked)
-        notes_text.append(
-            np.array(
-                [
-                    f"observed_p '{cells.iat[i]}' read as a bound, not a p-value: it decides "
-                    "significance where no interval does, and nothing is derived from it"
-                    for i in marked
-                ],
-                dtype=object,
-            )
-        )
-    return cleaned
+        notes_text.append(note[marked])
+    return pd.Series(cleaned, index=cells.index, dtype=object, name=cells.name)
+
+
+#: :func:`_p_text` leaves the cell as written.
+_AS_WRITTEN = object()
+
+
+def _p_text(raw: str) -> tuple[float, float, object]:
+    """``(relation, bound, cell for the number parser)`` of one p-value text; nan where the
+    text is no bound, and ``_AS_WRITTEN`` where the cell goes to the parser unchanged."""
+    if not raw.strip():
+        return np.nan, np.nan, _AS_WRITTEN
+    text = raw.strip().replace("\u2212", "-")
+    if text.lower() in _NOT_SIGNIFICANT:
+        return 1.0, np.nan, None
+    cleaned: object = _AS_WRITTEN
+    equals = _P_EQUALS.match(text)
+    if equals:
+        cleaned = text = equals.group("num")
+    match = _P_BOUND.match(text)
+    if match:
+        number = float(match.group("num").replace(",", "."))
+        return (-1.0 if match.group("rel") in ("<", "<=", "\u2264") else 1.0), number, None
+    zero = re.fullmatch(r"0?[.,](0+)", text)
+    if zero or text == "0":
+        digits = len(zero.group(1)) if zero else 0
+        return -1.0, 0.5 * 10.0 ** (-digits) if digits else 0.001, None
+    return np.nan, np.nan, cleaned
+
+
+def _p_note(value: object) -> str:
+    return (
+        f"observed_p '{value}' read as a bound, not a p-value: it decides significance where no "
+        "interval does, and nothing is derived from it"
+    )
+
+
+def _trimmed_texts(cells: pd.Series) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Each cell's text as written, trimmed: ``(codes, texts, uncached)``.
+
+    A cell's text is ``texts[code]``; code -1 marks an empty cell or a formula without a saved
+    value (``uncached``). A text file's column is trimmed once per distinct value; a workbook's
+    cells (numbers, dates) are formatted one by one first.
+    """
+    values = cells.to_numpy(dtype=object)
+    distinct = _distinct_texts(values)
+    if distinct is not None:
+        codes, texts = distinct
+        trimmed = _objects(list(map(str.strip, texts)))
+        return codes, trimmed, np.zeros(len(values), dtype=bool)
+    uncached = np.fromiter((v is UNCACHED for v in values), dtype=bool, count=len(values))
+    text = [None if v is None or v is UNCACHED else _fmt(v).strip() for v in values]
+    codes, texts = pd.factorize(_objects(text))
+    return codes, texts.astype(object, copy=False), uncached
 
 
 def _text_column(
@@ -760,30 +808,23 @@ def _text_column(
     fail: Callable[[np.ndarray, str, str | np.ndarray], None],
 ) -> None:
     """Type a text, design or choice column into ``table`` (object array, None for blank)."""
-    uncached = np.fromiter((v is UNCACHED for v in cells), dtype=bool, count=len(cells))
+    codes, texts, uncached = _trimmed_texts(cells)
     fail(uncached, spec.name, "formula without a saved value (open and save the file)")
-    # Object arrays throughout: a pandas string column would turn None into nan.
-    text = np.array(
-        [None if v is None or v is UNCACHED else _fmt(v).strip() for v in cells], dtype=object
-    )
-    # Per distinct value, not per cell: portfolios repeat a handful of designs and choices.
-    distinct = {v for v in text if v is not None}
+    # Object arrays throughout: a pandas string column would turn None into nan. Everything
+    # below is worked out per distinct text and mapped to the cells by the codes.
     if spec.kind == "choice":
         # "2.0" typed as text means 2, as the number 2.0 in a spreadsheet cell does.
-        plain = {v: re.sub(r"^(\d+)\.0*$", r"\1", v) for v in distinct}
-        text = np.array([None if v is None else plain[v] for v in text], dtype=object)
-        distinct = set(plain.values())
+        texts = _objects([re.sub(r"^(\d+)\.0*$", r"\1", v) for v in texts])
     tokens = MISSING_TOKENS - {"-"}
-    is_token = {v: v.lower() in tokens for v in distinct}
-    blank = np.fromiter((v is None or is_token[v] for v in text), dtype=bool, count=len(text))
+    blank = _take(_flags(map(tokens.__contains__, map(str.lower, texts)), len(texts)), codes, True)
+    text = _take(texts, codes, None)
     if spec.kind == "text":
         table[spec.name] = pd.Series(np.where(blank, None, text), dtype=object)
         return
-    normal = {v: normalise_header(v) for v in distinct}
-    norm = np.array(
-        [None if b else normal[v] for v, b in zip(text, blank, strict=True)], dtype=object
-    )
-    known = np.isin(norm, np.asarray(spec.choices, dtype=object))
+    normal = _objects([normalise_header(v) for v in texts])
+    norm = np.where(blank, None, _take(normal, codes, None))
+    choices = set(spec.choices)
+    known = _take(_flags(map(choices.__contains__, normal), len(normal)), codes, False) & ~blank
     bad = ~known & ~blank
     if spec.kind == "choice":
         norm = np.where(blank, spec.default, norm)
@@ -792,6 +833,17 @@ def _text_column(
     fail(bad, spec.name, f"unknown {spec.name.replace('_', ' ')}; expected {spec.range_text()}")
     # A rejected value is kept as written so that outputs show what the row said.
     table[spec.name] = pd.Series(np.where(bad, text, norm), dtype=object)
+
+
+def _flags(items: Iterable[bool], count: int) -> np.ndarray:
+    return np.fromiter(items, dtype=bool, count=count)
+
+
+def _objects(items: list[object]) -> np.ndarray:
+    """A 1-d object array of ``items`` (never a 2-d array, even of equal-length sequences)."""
+    out = np.empty(len(items), dtype=object)
+    out[:] = items
+    return out
 
 
 def _missing_columns_message(raw: RawTable, missing: list[str]) -> str:
