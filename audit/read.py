@@ -370,11 +370,13 @@ def _parse_delimited(
         ) from failure
     # A line break plus the separator inside one cell is what an unbalanced quote mark
     # produces: the lines up to the next quote mark are swallowed into the cell. Each record
-    # takes one line unless a cell holds a line break, so equal counts clear the whole file.
-    if len(records) != _line_count(text):
-        for index, record in enumerate(records):
-            if "\n" in (joined := "".join(record)) or "\r" in joined:  # type: ignore[arg-type]
-                problems.extend(_swallowed(record, delimiter, index))  # type: ignore[arg-type]
+    # takes one line unless a cell holds a line break, so equal counts clear every record but
+    # the last (a quote left open to the end of the text takes in the last line break).
+    first = 0 if len(records) != _line_count(text) else max(len(records) - 1, 0)
+    for index in range(first, len(records)):
+        record = records[index]
+        if "\n" in (joined := "".join(record)) or "\r" in joined:  # type: ignore[arg-type]
+            problems.extend(_swallowed(record, delimiter, index))  # type: ignore[arg-type]
     return records, problems
 
 
