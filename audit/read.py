@@ -261,8 +261,10 @@ def _control_share(text: str) -> float:
     """Share of control characters other than tab, line feed, carriage return and form feed."""
     if not text:
         return 0.0
-    bad = sum(1 for ch in text if ord(ch) < 32 and ch not in "\t\n\r\f")
-    return bad / len(text)
+    return len(_CONTROL.findall(text)) / len(text)
+
+
+_CONTROL = re.compile(r"[\x00-\x08\x0b\x0e-\x1f]")
 
 
 def _decode(path: Path) -> tuple[str, str | None]:
@@ -279,8 +281,10 @@ def _decode(path: Path) -> tuple[str, str | None]:
         text, note = _try(data, "utf-16-le"), "read as UTF-16 text (no byte-order mark)"
     elif even and even.count(0) > 0.4 * len(even) and odd.count(0) < 0.1 * len(odd):
         text, note = _try(data, "utf-16-be"), "read as UTF-16 text (no byte-order mark)"
-    elif data.startswith(b"\xef\xbb\xbf") or _try(data, "utf-8") is not None:
+    elif data.startswith(b"\xef\xbb\xbf"):
         text = _try(data, "utf-8-sig")
+    elif (utf8 := _try(data, "utf-8")) is not None:
+        text = utf8
     else:
         for encoding, label in (("cp1252", "Windows-1252"), ("latin-1", "Latin-1")):
             text = _try(data, encoding)
@@ -308,7 +312,7 @@ def _try(data: bytes, encoding: str) -> str | None:
 
 
 def _sniff_delimiter(text: str) -> str:
-    lines = text.splitlines()
+    lines = _first_lines(text, 50)
     # The header line names study_id and design: its separator is the file's, whatever title
     # lines (with their own commas or colons) stand above it.
     for line in lines[:HEADER_SEARCH_ROWS]:
@@ -328,6 +332,18 @@ def _sniff_delimiter(text: str) -> str:
         return best if counts[best] else ","
 
 
+def _first_lines(text: str, count: int) -> list[str]:
+    """``text.splitlines()[:count]`` without splitting the whole text."""
+    size = 8192
+    while size < len(text):
+        lines = text[:size].splitlines()
+        # The last line of a prefix may be cut short; the ones before it are whole.
+        if len(lines) > count + 1:
+            return lines[:count]
+        size *= 4
+    return text.splitlines()[:count]
+
+
 def _parse_delimited(
     text: str, delimiter: str, source: object
 ) -> tuple[list[list[object]], list[tuple[int, int, str]]]:
@@ -336,14 +352,13 @@ def _parse_delimited(
     The csv module keeps quoted fields intact and, unlike pandas' default, keeps blank lines, so
     the record number is the row number a spreadsheet program shows for the same file.
     """
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
     quoted = '"' in text
     records: list[list[object]] = []
     problems: list[tuple[int, int, str]] = []
     failure: csv.Error | None = None
     try:
         # All records at C speed; extend keeps those read before a parse error.
-        records.extend(reader)
+        records.extend(csv.reader(io.StringIO(text, newline=""), delimiter=delimiter))
     except csv.Error as exc:
         failure = exc
     if not quoted:
