@@ -289,43 +289,107 @@ def parse_numbers(
     >>> why.tolist()[4]
     'not a number'
     """
-    x, at, reasons = _numbers(values, decimal_comma=decimal_comma, whole=whole)
+    x, at, reasons = _numbers(
+        values, _distinct_of(values), decimal_comma=decimal_comma, whole=whole
+    )
     problem = np.full(len(values), "", dtype=object)
     problem[at] = reasons
     return pd.Series(x, index=values.index), pd.Series(problem, index=values.index, dtype=object)
 
 
 def _numbers(
-    values: pd.Series, *, decimal_comma: bool, whole: bool
+    values: pd.Series, distinct: Distinct | None, *, decimal_comma: bool, whole: bool
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`parse_numbers` as ``(floats, positions of rejected cells, their reasons)``."""
-    n = len(values)
+    """:func:`parse_numbers` as ``(floats, positions of rejected cells, their reasons)``.
+
+    ``distinct`` is the column's :func:`_distinct_texts` (None unless it holds only text).
+    """
+    if distinct is not None:
+        # Each distinct text parsed and checked once, then mapped to its cells. (A text found
+        # in several blocks of rows is one text here.)
+        codes, texts = distinct
+        merged, texts = pd.factorize(texts)
+        codes = _take(merged, codes, -1)
+        text_x, text_why = _parse_texts(texts, decimal_comma=decimal_comma, whole=whole)
+        text_bad = text_why != ""
+        _reject_infinite(text_x, text_bad, text_why)
+        at = np.flatnonzero(_take(text_bad, codes, False))
+        return _take(text_x, codes, np.nan), at, text_why[codes[at]]
     if isinstance(values.dtype, np.dtype) and values.dtype.kind in "fiu":
         # Numbers already (a frame built in Python): nothing to read.
         x = values.to_numpy(dtype=float, copy=True)
-        bad = np.zeros(n, dtype=bool)
-        why = np.empty(n, dtype=object)
+        bad = np.zeros(len(x), dtype=bool)
+        why = np.empty(len(x), dtype=object)
     else:
         cells = values.to_numpy(dtype=object)
-        distinct = _distinct_texts(cells)
-        if distinct is None:
-            x, bad, why = _numbers_by_kind(cells, decimal_comma=decimal_comma, whole=whole)
-        else:
-            codes, texts = distinct
-            text_x, text_why = _parse_texts(texts, decimal_comma=decimal_comma, whole=whole)
-            x = _take(text_x, codes, np.nan)
-            bad = _take(text_why != "", codes, False)
-            why = _take(text_why, codes, None)
+        x, bad, why = _numbers_by_kind(cells, decimal_comma=decimal_comma, whole=whole)
+    _reject_infinite(x, bad, why)
+    at = np.flatnonzero(bad)
+    return x, at, why[at]
+
+
+def _reject_infinite(x: np.ndarray, bad: np.ndarray, why: np.ndarray) -> None:
+    """Reject infinite numbers not rejected already, and make them nan (in place)."""
     with np.errstate(invalid="ignore"):
         infinite = np.isinf(x)
     why[infinite & ~bad] = "not a finite number"
     bad |= infinite
     x[infinite] = np.nan
-    at = np.flatnonzero(bad)
-    return x, at, why[at]
 
 
-def _distinct_texts(cells: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+#: ``(codes, texts)``: the text of cell i is ``texts[codes[i]]``, or None where the code is -1.
+Distinct = tuple[np.ndarray, np.ndarray]
+
+#: Rows whose cells are hashed together. A file's text objects lie in memory in the order they
+#: were read, row by row: hashing a block of rows column by column stays within memory the
+#: processor has at hand, and takes half the time of going down each whole column in turn.
+_BLOCK_ROWS = 5000
+
+
+def _distinct_columns(data: pd.DataFrame, names: list[str]) -> dict[str, Distinct | None]:
+    """:func:`_distinct_texts` of the columns ``names`` of ``data``, by blocks of rows.
+
+    The texts of a column are distinct within a block; one text may recur in several blocks,
+    which only repeats the work on it.
+    """
+    cells = data.to_numpy(dtype=object)
+    where = {name: data.columns.get_loc(name) for name in names}
+    parts: dict[str, list[Distinct] | None] = {name: [] for name in names}
+    for start in range(0, len(cells), _BLOCK_ROWS):
+        block = cells[start : start + _BLOCK_ROWS]
+        for name, j in where.items():
+            found = parts[name]
+            if found is None:
+                continue  # not a column of text only
+            part = _distinct_texts(block[:, j])
+            if part is None:
+                parts[name] = None
+            else:
+                found.append(part)
+    out: dict[str, Distinct | None] = {}
+    for name, found in parts.items():
+        if found is None:
+            out[name] = None
+            continue
+        codes, offset = [], 0
+        for part_codes, part_texts in found:
+            codes.append(np.where(part_codes >= 0, part_codes + offset, -1))
+            offset += len(part_texts)
+        out[name] = (
+            np.concatenate(codes) if codes else np.zeros(0, dtype=np.intp),
+            np.concatenate([t for _, t in found]) if found else np.zeros(0, dtype=object),
+        )
+    return out
+
+
+def _distinct_of(values: pd.Series) -> Distinct | None:
+    """:func:`_distinct_texts` of a series (None for one of numbers)."""
+    if isinstance(values.dtype, np.dtype) and values.dtype.kind in "fiu":
+        return None
+    return _distinct_texts(values.to_numpy(dtype=object))
+
+
+def _distinct_texts(cells: np.ndarray) -> Distinct | None:
     """``(codes, texts)`` of a column holding only text and None (code -1), else None.
 
     Every column of a text file is such a column. Its cells are read once per distinct text
@@ -448,7 +512,7 @@ def _parse_texts(
                     "separator of a decimal-comma file)"
                 )
             problem[reason.index] = reason
-    return out.to_numpy(dtype=float), problem.to_numpy(dtype=object)
+    return np.array(out, dtype=float), np.array(problem, dtype=object)
 
 
 _NONE, _NUM, _TEXT, _BOOL, _OTHER = range(5)
@@ -513,8 +577,9 @@ def validate(raw: RawTable) -> Validated:
     if missing:
         raise InputError(_missing_columns_message(raw, missing))
     n = len(data)
-    table = pd.DataFrame(index=pd.RangeIndex(n))
-    table["_row"] = raw.rows
+    # The typed columns are collected first and made one frame at the end of the loop below:
+    # inserting them one by one into a frame costs more, and leaves it in many pieces.
+    columns: dict[str, np.ndarray | pd.Series] = {"_row": raw.rows}
     fail_pos: list[np.ndarray] = []
     fail_col: list[str] = []
     fail_reason: list[np.ndarray] = []
@@ -541,20 +606,21 @@ def validate(raw: RawTable) -> Validated:
         fail_at(np.array([position], dtype=np.intp), column, reason)
 
     data = _merge_duplicates(raw, fail, notes_pos, notes_text, file_notes)
+    distinct = _distinct_columns(data, [spec.name for spec in COLUMNS if spec.name in data])
 
     for spec in COLUMNS:
         if spec.name not in data.columns:
             if spec.kind in ("number", "integer", "flag"):
                 default = np.nan if spec.default is None else float(spec.default)
-                table[spec.name] = np.full(n, default)
+                columns[spec.name] = np.full(n, default)
             elif spec.kind == "choice":
-                table[spec.name] = pd.Series([spec.default] * n, dtype=object)
+                columns[spec.name] = pd.Series([spec.default] * n, dtype=object)
             else:
-                table[spec.name] = pd.Series([None] * n, dtype=object)
+                columns[spec.name] = pd.Series([None] * n, dtype=object)
             continue
         cells = data[spec.name].reset_index(drop=True)
         if spec.kind == "flag":
-            codes, texts, uncached = _trimmed_texts(cells)
+            codes, texts, uncached = _trimmed_texts(cells, distinct[spec.name])
             lowered = list(map(str.lower, texts))
             # A formula without a saved value is not blank: it is rejected as no yes or no.
             tokens = _flags(map(MISSING_TOKENS.__contains__, lowered), len(texts))
@@ -563,15 +629,16 @@ def validate(raw: RawTable) -> Validated:
             flag = _take(values, codes, np.nan)
             fail(~blank & np.isnan(flag), spec.name, f"expected {spec.range_text()}")
             # Blank stays nan: the run's default applies (see audit.pipeline).
-            table[spec.name] = flag
+            columns[spec.name] = flag
             continue
         if spec.kind in ("text", "design", "choice"):
-            _text_column(spec, cells, table, fail)
+            _text_column(spec, cells, distinct[spec.name], columns, fail)
             continue
+        found = distinct[spec.name]
         if spec.name == "observed_p":
-            cells = _p_value_bounds(cells, table, notes_pos, notes_text)
+            cells, found = _p_value_bounds(cells, found, columns, notes_pos, notes_text)
         x, at, reasons = _numbers(
-            cells, decimal_comma=raw.decimal_comma, whole=spec.kind == "integer"
+            cells, found, decimal_comma=raw.decimal_comma, whole=spec.kind == "integer"
         )
         fail_at(at, spec.name, reasons)
         bad = np.zeros(n, dtype=bool)
@@ -600,7 +667,13 @@ def validate(raw: RawTable) -> Validated:
         x = np.where(bad | out_of_range | not_whole, np.nan, x)
         if spec.default is not None:
             x = np.where(present | bad, x, float(spec.default))
-        table[spec.name] = x
+        columns[spec.name] = x
+    # Per distinct value: the column holds a handful of texts.
+    sides = pd.Series(columns["sides"], dtype=object).to_numpy()
+    codes, texts = pd.factorize(sides, use_na_sentinel=False)
+    numbers = pd.to_numeric(pd.Series(texts, dtype=object), errors="coerce").to_numpy(dtype=float)
+    columns["sides"] = numbers[codes]
+    table = pd.DataFrame(columns, index=pd.RangeIndex(n))
 
     # study_id must be given. Rows sharing one are all kept and all audited (which of them is
     # right cannot be known, and dropping one would lose a study); each gets a note naming the
@@ -624,11 +697,6 @@ def validate(raw: RawTable) -> Validated:
                 + "); every row is audited, check whether they are the same study"
             ).to_numpy(dtype=object)
         )
-
-    # Per distinct value: the column holds a handful of texts.
-    codes, texts = pd.factorize(table["sides"].to_numpy(dtype=object), use_na_sentinel=False)
-    sides = pd.to_numeric(pd.Series(texts, dtype=object), errors="coerce").to_numpy(dtype=float)
-    table["sides"] = sides[codes]
 
     # Design-specific checks, on rows whose design is known.
     codes, designs = pd.factorize(table["design"].to_numpy(dtype=object))
@@ -695,25 +763,26 @@ _NOT_SIGNIFICANT = frozenset({"ns", "n.s.", "n.s", "not significant"})
 
 def _p_value_bounds(
     cells: pd.Series,
-    table: pd.DataFrame,
+    distinct: Distinct | None,
+    columns: dict[str, np.ndarray | pd.Series],
     notes_pos: list[np.ndarray],
     notes_text: list[np.ndarray],
-) -> pd.Series:
+) -> tuple[pd.Series, Distinct | None]:
     """Read p-values as papers print them: ``p < 0.001``, ``< .05``, ``>0.1``, ``0.000``, ``n.s.``.
 
     A bound is not a p-value: it can decide whether the test was significant but no standard
     error can be derived from it. Bounds go to ``observed_p_bound`` with ``observed_p_relation``
     (-1 for "below", +1 for "above"); "n.s." is "above the study's alpha" (bound nan, relation
     +1); a p printed as zero (``0.000``) is below half its last printed digit. ``p = 0.03`` is
-    simply 0.03. The cells returned keep only plain p-values for the number parser.
+    simply 0.03. The cells returned keep only plain p-values for the number parser; they come
+    with their :func:`_distinct_texts` where ``distinct`` (that of ``cells``) is given.
     """
     n = len(cells)
     values = cells.to_numpy(dtype=object)
-    distinct = _distinct_texts(values)
     if distinct is not None:
-        codes, texts = distinct
-        at = np.flatnonzero(codes >= 0)
-        codes = codes[at]
+        cell_codes, texts = distinct
+        at = np.flatnonzero(cell_codes >= 0)
+        codes = cell_codes[at]
         numeric_zero = np.zeros(n, dtype=bool)
     else:  # workbook cells: numbers and other values beside the texts
         at = np.flatnonzero(np.fromiter((isinstance(v, str) for v in values), bool, count=n))
@@ -722,8 +791,11 @@ def _p_value_bounds(
             [isinstance(v, (int, float)) and not isinstance(v, bool) and v == 0 for v in values],
             dtype=bool,
         )
-    # Each distinct text read once.
-    read = [_p_text(t) for t in texts]
+    # Each distinct text read once. Most are plain p-values: a finite number other than zero
+    # matches none of the patterns of _p_text, so those texts skip it.
+    number = pd.to_numeric(pd.Series(texts, dtype=object), errors="coerce")
+    plain = np.isfinite(number.to_numpy(dtype=float)) & (number.to_numpy(dtype=float) != 0)
+    read = [_PLAIN_P if p else _p_text(t) for t, p in zip(texts, plain, strict=True)]
     relation = np.full(n, np.nan)
     bound = np.full(n, np.nan)
     relation[at] = np.array([r for r, _, _ in read], dtype=float)[codes]
@@ -735,8 +807,8 @@ def _p_value_bounds(
     relation[numeric_zero] = -1.0
     bound[numeric_zero] = 0.001
     cleaned[numeric_zero] = None
-    table["observed_p_bound"] = bound
-    table["observed_p_relation"] = relation
+    columns["observed_p_bound"] = bound
+    columns["observed_p_relation"] = relation
     marked = np.flatnonzero(~np.isnan(relation))
     if len(marked):
         note = np.empty(n, dtype=object)
@@ -745,11 +817,22 @@ def _p_value_bounds(
         note[zero_at] = [_p_note(values[i]) for i in zero_at]
         notes_pos.append(marked)
         notes_text.append(note[marked])
-    return pd.Series(cleaned, index=cells.index, dtype=object, name=cells.name)
+    cleaned_distinct = None
+    if distinct is not None:
+        # The texts cleaned; a cell cleaned to None gets code -1, and its text (referred to by
+        # no cell any more) becomes "", which the number parser passes over.
+        gone = _flags((c is None for _, _, c in read), len(read))
+        cleaned_texts = _objects(
+            [t if c is _AS_WRITTEN else c or "" for t, (_, _, c) in zip(texts, read, strict=True)]
+        )
+        cleaned_distinct = (np.where(_take(gone, cell_codes, True), -1, cell_codes), cleaned_texts)
+    return pd.Series(cleaned, index=cells.index, dtype=object, name=cells.name), cleaned_distinct
 
 
 #: :func:`_p_text` leaves the cell as written.
 _AS_WRITTEN = object()
+#: What :func:`_p_text` gives a plain p-value: no bound, the cell as written.
+_PLAIN_P = (np.nan, np.nan, _AS_WRITTEN)
 
 
 def _p_text(raw: str) -> tuple[float, float, object]:
@@ -782,15 +865,16 @@ def _p_note(value: object) -> str:
     )
 
 
-def _trimmed_texts(cells: pd.Series) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _trimmed_texts(
+    cells: pd.Series, distinct: Distinct | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Each cell's text as written, trimmed: ``(codes, texts, uncached)``.
 
     A cell's text is ``texts[code]``; code -1 marks an empty cell or a formula without a saved
-    value (``uncached``). A text file's column is trimmed once per distinct value; a workbook's
-    cells (numbers, dates) are formatted one by one first.
+    value (``uncached``). A text file's column (``distinct`` given) is trimmed once per
+    distinct value; a workbook's cells (numbers, dates) are formatted one by one first.
     """
     values = cells.to_numpy(dtype=object)
-    distinct = _distinct_texts(values)
     if distinct is not None:
         codes, texts = distinct
         trimmed = _objects(list(map(str.strip, texts)))
@@ -804,11 +888,12 @@ def _trimmed_texts(cells: pd.Series) -> tuple[np.ndarray, np.ndarray, np.ndarray
 def _text_column(
     spec: Column,
     cells: pd.Series,
-    table: pd.DataFrame,
+    distinct: Distinct | None,
+    columns: dict[str, np.ndarray | pd.Series],
     fail: Callable[[np.ndarray, str, str | np.ndarray], None],
 ) -> None:
-    """Type a text, design or choice column into ``table`` (object array, None for blank)."""
-    codes, texts, uncached = _trimmed_texts(cells)
+    """Type a text, design or choice column into ``columns`` (object Series, None for blank)."""
+    codes, texts, uncached = _trimmed_texts(cells, distinct)
     fail(uncached, spec.name, "formula without a saved value (open and save the file)")
     # Object arrays throughout: a pandas string column would turn None into nan. Everything
     # below is worked out per distinct text and mapped to the cells by the codes.
@@ -819,7 +904,7 @@ def _text_column(
     blank = _take(_flags(map(tokens.__contains__, map(str.lower, texts)), len(texts)), codes, True)
     text = _take(texts, codes, None)
     if spec.kind == "text":
-        table[spec.name] = pd.Series(np.where(blank, None, text), dtype=object)
+        columns[spec.name] = pd.Series(np.where(blank, None, text), dtype=object)
         return
     normal = _objects([normalise_header(v) for v in texts])
     norm = np.where(blank, None, _take(normal, codes, None))
@@ -832,7 +917,7 @@ def _text_column(
         fail(blank & ~uncached, spec.name, "blank: the design must be given")
     fail(bad, spec.name, f"unknown {spec.name.replace('_', ' ')}; expected {spec.range_text()}")
     # A rejected value is kept as written so that outputs show what the row said.
-    table[spec.name] = pd.Series(np.where(bad, text, norm), dtype=object)
+    columns[spec.name] = pd.Series(np.where(bad, text, norm), dtype=object)
 
 
 def _flags(items: Iterable[bool], count: int) -> np.ndarray:
