@@ -306,9 +306,9 @@ def _numbers(
     """
     if distinct is not None:
         # Each distinct text parsed and checked once, then mapped to its cells. (A text found
-        # in several blocks of rows is one text here.)
+        # in several blocks of rows is one text here; texts alone always factorize.)
         codes, texts = distinct
-        merged, texts = pd.factorize(texts)
+        merged, texts = _distinct_texts(texts) or pd.factorize(texts)
         codes = _take(merged, codes, -1)
         text_x, text_why = _parse_texts(texts, decimal_comma=decimal_comma, whole=whole)
         text_bad = text_why != ""
@@ -396,16 +396,31 @@ def _distinct_texts(cells: np.ndarray) -> Distinct | None:
     (portfolios repeat designs, choices and numbers), by a C-level hash of the column, and
     mapped back by the codes.
     """
-    try:
-        codes, texts = pd.factorize(cells)
-    except TypeError:  # an unhashable cell (a list in a frame built in Python)
-        return None
-    if len(texts) and pd.api.types.infer_dtype(texts, skipna=False) != "string":
-        return None
-    # factorize sets every missing-value marker aside; only None is an empty cell here.
+    if _StringHashTable is not None:
+        # The hash table pd.factorize uses for a column of strings, called directly: it skips
+        # pd.factorize's pass over the cells checking that all are strings, and gives any cell
+        # that is not one code -1 (looked at below).
+        table = _StringHashTable(len(cells))
+        texts, codes = table.factorize(cells, na_sentinel=-1, ignore_na=True)
+        codes = codes.astype(np.intp, copy=False)
+    else:
+        try:
+            codes, texts = pd.factorize(cells)
+        except TypeError:  # an unhashable cell (a list in a frame built in Python)
+            return None
+        if len(texts) and pd.api.types.infer_dtype(texts, skipna=False) != "string":
+            return None
+    # Every cell with code -1 must be an empty cell (None), not a number or a missing-value
+    # marker of another kind.
     if not all(v is None for v in cells[codes < 0]):
         return None
     return codes, texts.astype(object, copy=False)
+
+
+try:
+    from pandas._libs.hashtable import StringHashTable as _StringHashTable
+except ImportError:  # a pandas version that moved it: pd.factorize and a check of the texts
+    _StringHashTable = None
 
 
 def _take(per_text: np.ndarray, codes: np.ndarray, empty: object) -> np.ndarray:
@@ -679,8 +694,9 @@ def validate(raw: RawTable) -> Validated:
     # right cannot be known, and dropping one would lose a study); each gets a note naming the
     # other rows.
     sid = table["study_id"]
-    fail(sid.isna().to_numpy(), "study_id", "blank: every study needs an identifier")
-    dup = (sid.notna() & sid.duplicated(keep=False)).to_numpy()
+    no_id = sid.isna().to_numpy()
+    fail(no_id, "study_id", "blank: every study needs an identifier")
+    dup = ~no_id & sid.duplicated(keep=False).to_numpy()
     if dup.any():
         rows_of = (
             table.loc[dup]
