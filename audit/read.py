@@ -874,12 +874,19 @@ def _blank_mask(rows: list[list[object]]) -> np.ndarray:
     Text rows (every row of a delimited file) are joined and tested by C-level maps, with no
     Python code per row; ``str.isspace`` and ``str.strip`` agree on what whitespace is.
     """
-    try:
-        joined = list(map("".join, rows))  # type: ignore[arg-type]
-    except TypeError:  # numbers, None or other cell values from a workbook
-        return np.fromiter(map(_row_is_blank, rows), dtype=bool, count=len(rows))
-    empty = np.fromiter(map(len, joined), dtype=np.int64, count=len(rows)) == 0
-    return empty | np.fromiter(map(str.isspace, joined), dtype=bool, count=len(rows))
+    out = np.zeros(len(rows), dtype=bool)
+    # In slices of rows, so that the joined texts never take much memory at once.
+    for start in range(0, len(rows), 10_000):
+        part = rows[start : start + 10_000]
+        try:
+            joined = list(map("".join, part))  # type: ignore[arg-type]
+        except TypeError:  # numbers, None or other cell values from a workbook
+            return np.fromiter(map(_row_is_blank, rows), dtype=bool, count=len(rows))
+        empty = np.fromiter(map(len, joined), dtype=np.int64, count=len(part)) == 0
+        out[start : start + len(part)] = empty | np.fromiter(
+            map(str.isspace, joined), dtype=bool, count=len(part)
+        )
+    return out
 
 
 def _blank_numbers(numbers: list[int], blank_row: np.ndarray, last: int) -> list[int]:

@@ -346,14 +346,16 @@ Distinct = tuple[np.ndarray, np.ndarray]
 _BLOCK_ROWS = 5000
 
 
-def _distinct_columns(data: pd.DataFrame, names: list[str]) -> dict[str, Distinct | None]:
-    """:func:`_distinct_texts` of the columns ``names`` of ``data``, by blocks of rows.
+def _distinct_columns(data: pd.DataFrame, names: list[str]) -> dict[str, list[Distinct] | None]:
+    """:func:`_distinct_texts` of the columns ``names`` of ``data``, per block of rows.
 
-    The texts of a column are distinct within a block; one text may recur in several blocks,
-    which only repeats the work on it.
+    Each column gets its blocks' ``(codes, texts)`` (join them with :func:`_joined`), or None
+    when it does not hold only text. Block codes are kept small: all columns' codes exist at
+    once here.
     """
     cells = data.to_numpy(dtype=object)
     where = {name: data.columns.get_loc(name) for name in names}
+    small = np.min_scalar_type(-_BLOCK_ROWS)
     parts: dict[str, list[Distinct] | None] = {name: [] for name in names}
     for start in range(0, len(cells), _BLOCK_ROWS):
         block = cells[start : start + _BLOCK_ROWS]
@@ -365,21 +367,23 @@ def _distinct_columns(data: pd.DataFrame, names: list[str]) -> dict[str, Distinc
             if part is None:
                 parts[name] = None
             else:
-                found.append(part)
-    out: dict[str, Distinct | None] = {}
-    for name, found in parts.items():
-        if found is None:
-            out[name] = None
-            continue
-        codes, offset = [], 0
-        for part_codes, part_texts in found:
-            codes.append(np.where(part_codes >= 0, part_codes + offset, -1))
-            offset += len(part_texts)
-        out[name] = (
-            np.concatenate(codes) if codes else np.zeros(0, dtype=np.intp),
-            np.concatenate([t for _, t in found]) if found else np.zeros(0, dtype=object),
-        )
-    return out
+                found.append((part[0].astype(small), part[1]))
+    return parts
+
+
+def _joined(parts: list[Distinct] | None) -> Distinct | None:
+    """One column's ``(codes, texts)`` from those of its blocks of rows. A text may recur in
+    several blocks, which only repeats the work on it."""
+    if parts is None:
+        return None
+    codes, offset = [], 0
+    for part_codes, part_texts in parts:
+        codes.append(np.where(part_codes >= 0, part_codes.astype(np.intp) + offset, -1))
+        offset += len(part_texts)
+    return (
+        np.concatenate(codes) if codes else np.zeros(0, dtype=np.intp),
+        np.concatenate([t for _, t in parts]) if parts else np.zeros(0, dtype=object),
+    )
 
 
 def _distinct_of(values: pd.Series) -> Distinct | None:
@@ -621,7 +625,7 @@ def validate(raw: RawTable) -> Validated:
         fail_at(np.array([position], dtype=np.intp), column, reason)
 
     data = _merge_duplicates(raw, fail, notes_pos, notes_text, file_notes)
-    distinct = _distinct_columns(data, [spec.name for spec in COLUMNS if spec.name in data])
+    blocks = _distinct_columns(data, [spec.name for spec in COLUMNS if spec.name in data])
 
     for spec in COLUMNS:
         if spec.name not in data.columns:
@@ -634,8 +638,9 @@ def validate(raw: RawTable) -> Validated:
                 columns[spec.name] = pd.Series([None] * n, dtype=object)
             continue
         cells = data[spec.name].reset_index(drop=True)
+        found = _joined(blocks.pop(spec.name))
         if spec.kind == "flag":
-            codes, texts, uncached = _trimmed_texts(cells, distinct[spec.name])
+            codes, texts, uncached = _trimmed_texts(cells, found)
             lowered = list(map(str.lower, texts))
             # A formula without a saved value is not blank: it is rejected as no yes or no.
             tokens = _flags(map(MISSING_TOKENS.__contains__, lowered), len(texts))
@@ -647,9 +652,8 @@ def validate(raw: RawTable) -> Validated:
             columns[spec.name] = flag
             continue
         if spec.kind in ("text", "design", "choice"):
-            _text_column(spec, cells, distinct[spec.name], columns, fail)
+            _text_column(spec, cells, found, columns, fail)
             continue
-        found = distinct[spec.name]
         if spec.name == "observed_p":
             cells, found = _p_value_bounds(cells, found, columns, notes_pos, notes_text)
         x, at, reasons = _numbers(
@@ -689,6 +693,7 @@ def validate(raw: RawTable) -> Validated:
     numbers = pd.to_numeric(pd.Series(texts, dtype=object), errors="coerce").to_numpy(dtype=float)
     columns["sides"] = numbers[codes]
     table = pd.DataFrame(columns, index=pd.RangeIndex(n))
+    del columns  # copied into the frame
 
     # study_id must be given. Rows sharing one are all kept and all audited (which of them is
     # right cannot be known, and dropping one would lose a study); each gets a note naming the
