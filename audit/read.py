@@ -14,12 +14,16 @@ data (``RawTable.cell_problems``) for the validation to report as row errors.
 
 from __future__ import annotations
 
+import contextlib
 import csv
+import gc
 import io
+import itertools
 import re
 import warnings
 import zipfile
 import zlib
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -192,13 +196,15 @@ def read_table(path: str | Path, sheet: str | None = None) -> RawTable:
         raise InputError(f"{path}: --sheet applies to .xlsx workbooks, not to text files.")
     text, note = _decode(path)
     delimiter = "\t" if suffix == ".tsv" else _sniff_delimiter(text)
-    cells, problems = _parse_delimited(text, delimiter, path)
-    table = _to_raw(
-        _Sheet(cells, list(range(1, len(cells) + 1))),
-        str(path),
-        None,
-        decimal_comma=delimiter == ";",
-    )
+    with _collector_paused():
+        cells, problems = _parse_delimited(text, delimiter, path)
+        table = _to_raw(
+            _Sheet(cells, list(range(1, len(cells) + 1))),
+            str(path),
+            None,
+            decimal_comma=delimiter == ";",
+        )
+        del cells  # the records, freed while the collector is paused
     if suffix in (".xlsx", ".xlsm", ".xls", ".ods", ".xlsb"):
         table.notes.insert(
             0, f"the file is named '{suffix}' but is plain text; it was read as delimited text"
@@ -207,6 +213,23 @@ def read_table(path: str | Path, sheet: str | None = None) -> RawTable:
         table.notes.insert(0, note)
     table.cell_problems.extend(_map_problems(problems, table))
     return _require_rows(table)
+
+
+@contextlib.contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Pause Python's cycle collector while a file becomes a table.
+
+    Every record is a new list; at 100,000 records the collector would run hundreds of times
+    and walk all the records read so far each time it reaches the oldest generation, which
+    costs more than parsing them. Cycles made meanwhile are collected later, not missed.
+    """
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
 
 
 def _require_rows(table: RawTable) -> RawTable:
@@ -238,8 +261,10 @@ def _control_share(text: str) -> float:
     """Share of control characters other than tab, line feed, carriage return and form feed."""
     if not text:
         return 0.0
-    bad = sum(1 for ch in text if ord(ch) < 32 and ch not in "\t\n\r\f")
-    return bad / len(text)
+    return len(_CONTROL.findall(text)) / len(text)
+
+
+_CONTROL = re.compile(r"[\x00-\x08\x0b\x0e-\x1f]")
 
 
 def _decode(path: Path) -> tuple[str, str | None]:
@@ -256,8 +281,10 @@ def _decode(path: Path) -> tuple[str, str | None]:
         text, note = _try(data, "utf-16-le"), "read as UTF-16 text (no byte-order mark)"
     elif even and even.count(0) > 0.4 * len(even) and odd.count(0) < 0.1 * len(odd):
         text, note = _try(data, "utf-16-be"), "read as UTF-16 text (no byte-order mark)"
-    elif data.startswith(b"\xef\xbb\xbf") or _try(data, "utf-8") is not None:
+    elif data.startswith(b"\xef\xbb\xbf"):
         text = _try(data, "utf-8-sig")
+    elif (utf8 := _try(data, "utf-8")) is not None:
+        text = utf8
     else:
         for encoding, label in (("cp1252", "Windows-1252"), ("latin-1", "Latin-1")):
             text = _try(data, encoding)
@@ -285,7 +312,7 @@ def _try(data: bytes, encoding: str) -> str | None:
 
 
 def _sniff_delimiter(text: str) -> str:
-    lines = text.splitlines()
+    lines = _first_lines(text, 50)
     # The header line names study_id and design: its separator is the file's, whatever title
     # lines (with their own commas or colons) stand above it.
     for line in lines[:HEADER_SEARCH_ROWS]:
@@ -305,6 +332,18 @@ def _sniff_delimiter(text: str) -> str:
         return best if counts[best] else ","
 
 
+def _first_lines(text: str, count: int) -> list[str]:
+    """``text.splitlines()[:count]`` without splitting the whole text."""
+    size = 8192
+    while size < len(text):
+        lines = text[:size].splitlines()
+        # The last line of a prefix may be cut short; the ones before it are whole.
+        if len(lines) > count + 1:
+            return lines[:count]
+        size *= 4
+    return text.splitlines()[:count]
+
+
 def _parse_delimited(
     text: str, delimiter: str, source: object
 ) -> tuple[list[list[object]], list[tuple[int, int, str]]]:
@@ -313,47 +352,103 @@ def _parse_delimited(
     The csv module keeps quoted fields intact and, unlike pandas' default, keeps blank lines, so
     the record number is the row number a spreadsheet program shows for the same file.
     """
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
     quoted = '"' in text
     records: list[list[object]] = []
     problems: list[tuple[int, int, str]] = []
-    if not quoted:
-        # Without quote marks no cell can swallow lines: read everything at C speed, then check
-        # the limits on the whole.
+    failure: csv.Error | None = None
+    split = None if quoted else _split_lines(text, delimiter)
+    if split is not None:
+        records = split
+    else:
         try:
-            records = list(reader)
+            # All records at C speed; extend keeps those read before a parse error.
+            records.extend(csv.reader(io.StringIO(text, newline=""), delimiter=delimiter))
         except csv.Error as exc:
+            failure = exc
+    if not quoted:
+        # Without quote marks no cell can swallow lines: check the limits on the whole.
+        if failure is not None:
             raise InputError(
-                f"{source}: the file could not be read as delimited text ({exc})."
-            ) from exc
+                f"{source}: the file could not be read as delimited text ({failure})."
+            ) from failure
         if len(records) > MAX_ROWS + HEADER_SEARCH_ROWS:
             filled = sum(1 for r in records if any(r))
             if filled > MAX_ROWS + HEADER_SEARCH_ROWS:
                 raise InputError(_too_many_rows(source))
-        widest = max((len(r) for r in records), default=0)
+        widest = max(map(len, records), default=0)
         if widest > MAX_COLUMNS:
             for r in records:
                 if len(r) > MAX_COLUMNS and any(r[MAX_COLUMNS:]):
                     raise InputError(_too_many_columns(source, len(r)))
         return records, problems
-    try:
-        for record in reader:
-            if len(records) > MAX_ROWS + HEADER_SEARCH_ROWS and any(record):
-                raise InputError(_too_many_rows(source))
-            if len(record) > MAX_COLUMNS and any(record[MAX_COLUMNS:]):
-                raise InputError(_too_many_columns(source, len(record)))
-            # A line break plus the separator inside one cell is what an unbalanced quote mark
-            # produces: the lines up to the next quote mark are swallowed into the cell. (One
-            # test per record first: cells with line breaks are rare.)
-            if quoted and ("\n" in (joined := "".join(record)) or "\r" in joined):
-                problems.extend(_swallowed(record, delimiter, len(records)))
-            records.append(record)
-    except csv.Error as exc:
+    _check_limits_in_order(records, source)
+    if failure is not None:
         raise InputError(
             f"{source}: the file could not be read as delimited text near record "
-            f"{len(records) + 1} ({exc}); check quote marks there."
-        ) from exc
+            f"{len(records) + 1} ({failure}); check quote marks there."
+        ) from failure
+    # A line break plus the separator inside one cell is what an unbalanced quote mark
+    # produces: the lines up to the next quote mark are swallowed into the cell. Each record
+    # takes one line unless a cell holds a line break, so equal counts clear every record but
+    # the last (a quote left open to the end of the text takes in the last line break).
+    first = 0 if len(records) != _line_count(text) else max(len(records) - 1, 0)
+    for index in range(first, len(records)):
+        record = records[index]
+        if "\n" in (joined := "".join(record)) or "\r" in joined:  # type: ignore[arg-type]
+            problems.extend(_swallowed(record, delimiter, index))  # type: ignore[arg-type]
     return records, problems
+
+
+def _split_lines(text: str, delimiter: str) -> list[list[object]] | None:
+    """The records of text without quote marks, as the csv module reads them, or None where
+    only the csv module can say what it makes of the text.
+
+    Without quote marks a record is a line (ending at \\n, \\r or \\r\\n, as io.StringIO splits
+    them) cut at each separator, and an empty line is an empty record; str.split does that
+    in a third less time. The csv module is left what it may refuse: a line longer than its
+    field size limit (it stops at the first field over the limit), and NUL characters (which
+    it refused before Python 3.11).
+    """
+    if not text or "\x00" in text:
+        return None
+    if "\r" in text:
+        lines = text.replace("\r\n", "\n").replace("\r", "\n").split("\n")
+    else:
+        lines = text.split("\n")
+    if text.endswith(("\n", "\r")):
+        lines.pop()  # the empty piece after the last line break is no line
+    lengths = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
+    if lengths.max(initial=0) > csv.field_size_limit():
+        return None
+    records: list[list[object]] = list(map(str.split, lines, itertools.repeat(delimiter)))
+    for i in np.flatnonzero(lengths == 0):
+        records[i] = []
+    return records
+
+
+def _line_count(text: str) -> int:
+    """Lines as io.StringIO(newline="") splits them: at \\n, \\r and \\r\\n."""
+    breaks = text.count("\n") + text.count("\r") - text.count("\r\n")
+    return breaks + (not text.endswith(("\n", "\r")) if text else 0)
+
+
+def _check_limits_in_order(records: list[list[object]], source: object) -> None:
+    """Raise for the first record past the row limit or the column limit, whichever comes first
+    (a quoted file is checked record by record, as it would be read)."""
+    first_row = None
+    if len(records) > MAX_ROWS + HEADER_SEARCH_ROWS + 1:
+        start = MAX_ROWS + HEADER_SEARCH_ROWS + 1
+        first_row = next((i for i in range(start, len(records)) if any(records[i])), None)
+    first_column = None
+    if max(map(len, records), default=0) > MAX_COLUMNS:
+        first_column = next(
+            (i for i, r in enumerate(records) if len(r) > MAX_COLUMNS and any(r[MAX_COLUMNS:])),
+            None,
+        )
+    if first_row is not None and (first_column is None or first_row <= first_column):
+        raise InputError(_too_many_rows(source))
+    if first_column is not None:
+        raise InputError(_too_many_columns(source, len(records[first_column])))
 
 
 def _swallowed(record: list[str], delimiter: str, index: int) -> list[tuple[int, int, str]]:
@@ -773,6 +868,70 @@ def _row_is_blank(values: list[object]) -> bool:
         return all(_is_blank(v) for v in values)
 
 
+def _blank_mask(rows: list[list[object]]) -> np.ndarray:
+    """For each row, True when no cell holds anything.
+
+    Text rows (every row of a delimited file) are joined and tested by C-level maps, with no
+    Python code per row; ``str.isspace`` and ``str.strip`` agree on what whitespace is.
+    """
+    out = np.zeros(len(rows), dtype=bool)
+    # In slices of rows, so that the joined texts never take much memory at once.
+    for start in range(0, len(rows), 10_000):
+        part = rows[start : start + 10_000]
+        try:
+            joined = list(map("".join, part))  # type: ignore[arg-type]
+        except TypeError:  # numbers, None or other cell values from a workbook
+            return np.fromiter(map(_row_is_blank, rows), dtype=bool, count=len(rows))
+        empty = np.fromiter(map(len, joined), dtype=np.int64, count=len(part)) == 0
+        out[start : start + len(part)] = empty | np.fromiter(
+            map(str.isspace, joined), dtype=bool, count=len(part)
+        )
+    return out
+
+
+def _blank_numbers(numbers: list[int], blank_row: np.ndarray, last: int) -> list[int]:
+    """Spreadsheet numbers of the blank rows, in order: the rows found blank and the rows the
+    sheet does not store at all (a gap in an .xlsx), which are blank rows too."""
+    at = np.fromiter(numbers, dtype=np.int64, count=len(numbers))
+    before = np.concatenate(([last], at[:-1]))
+    # Only rows that are blank or follow a gap need a look (none, in most files).
+    out: list[int] = []
+    for i in np.flatnonzero(blank_row | (at - before > 1)):
+        out.extend(range(int(before[i]) + 1, numbers[i]))
+        if blank_row[i]:
+            out.append(numbers[i])
+    return out
+
+
+def _frame(rows: list[list[object]], width: int) -> pd.DataFrame:
+    """Rows as an object frame of ``width`` columns (0..width-1), short rows padded with None."""
+    try:
+        # The step DataFrame(rows) starts with (rows to one padded 2-D array), without the split
+        # into columns and re-stacking that follow it there: a third of the time.
+        from pandas._libs.lib import to_object_array
+    except ImportError:  # a pandas version that moved it: pad by hand for the constructor
+        lengths = np.fromiter(map(len, rows), dtype=np.int64, count=len(rows))
+        rows = list(rows)
+        for i in np.flatnonzero(lengths < width):
+            rows[i] = list(rows[i]) + [None] * (width - len(rows[i]))
+        return pd.DataFrame(rows or None, columns=range(width), dtype=object)
+    return pd.DataFrame(
+        to_object_array(rows, min_width=width), columns=range(width), dtype=object, copy=False
+    )
+
+
+def _has_data(values: np.ndarray) -> bool:
+    """True when any cell of a column is not blank; looked at per distinct value."""
+    try:
+        codes, uniques = pd.factorize(values)
+    except TypeError:  # an unhashable cell (a list in a DataFrame given from Python)
+        return not all(_is_blank(v) for v in values)
+    if not all(_is_blank(v) for v in uniques):
+        return True
+    # factorize sets every missing-value marker aside; only None is a blank cell.
+    return any(v is not None for v in values[codes < 0])
+
+
 def _is_blank(value: object) -> bool:
     return value is None or (isinstance(value, str) and not value.strip())
 
@@ -865,7 +1024,7 @@ def _to_raw(
         raise InputError(
             f"{source}{_sheet_text(sheet_name)}: the file is empty (no cell holds anything)."
         )
-    width = max((len(r) for r in cells[h:]), default=0)
+    width = max(map(len, cells[h:]), default=0)
     header, header_rows, notes = _header_texts(sheet, h, width)
     notes = list(sheet.notes) + notes
     header_number = sheet.numbers[h]
@@ -881,15 +1040,25 @@ def _to_raw(
         )
     body = cells[h + header_rows :]
     body_numbers = sheet.numbers[h + header_rows :]
+    blank_row = _blank_mask(body)
+    data_rows, numbers = body, body_numbers
+    if blank_row.any():
+        data_rows = list(itertools.compress(body, ~blank_row))
+        numbers = list(itertools.compress(body_numbers, ~blank_row))
+    blank = _blank_numbers(body_numbers, blank_row, header_number + header_rows - 1)
+    # One frame of every column, rows padded to the width with None; the columns kept are
+    # taken from it below.
+    full = _frame(data_rows, width)
     # Columns with neither header nor data (stray empty columns) are dropped; a column with data
-    # but no header gets a name from its letter so that nothing is lost.
+    # but no header gets a name from its letter so that nothing is lost. (Blank rows have no
+    # data, so the rows of the frame are all that need looking at.)
     names: list[str] = []
     written: list[str] = []
     keep: list[int] = []
     for j in range(width):
         text = header[j] if j < len(header) else None
         if _is_blank(text):
-            if all(j >= len(r) or _is_blank(r[j]) for r in body):
+            if not _has_data(full[j].to_numpy()):
                 continue
             text = f"column {_column_letter(j)}"
         keep.append(j)
@@ -909,30 +1078,10 @@ def _to_raw(
             duplicates.setdefault(name, []).append(names[k])
         else:
             seen[name] = k
-    data_rows: list[list[object]] = []
-    numbers: list[int] = []
-    blank: list[int] = []
-    last = header_number + header_rows - 1
-    every = keep == list(range(width))
-    for row, spreadsheet_row in zip(body, body_numbers, strict=True):
-        # Rows the sheet does not store at all (a gap in an .xlsx) are blank rows too.
-        blank.extend(range(last + 1, spreadsheet_row))
-        last = spreadsheet_row
-        if every:
-            # The common case (no dropped columns): the row as read, padded by the frame below.
-            values = row
-        else:
-            values = [row[j] if j < len(row) else None for j in keep]
-        if _row_is_blank(values):
-            blank.append(spreadsheet_row)
-            continue
-        data_rows.append(values)
-        numbers.append(spreadsheet_row)
     if len(data_rows) > MAX_ROWS:
         raise InputError(_too_many_rows(source))
-    if every and data_rows and any(len(r) != width for r in data_rows):
-        data_rows = [r + [None] * (width - len(r)) for r in data_rows]
-    frame = pd.DataFrame(data_rows, columns=names, dtype=object)
+    frame = full if keep == list(range(width)) else full.iloc[:, keep]
+    frame.columns = names
     if not len(data_rows):
         frame = pd.DataFrame({name: pd.Series(dtype=object) for name in names})
     table = RawTable(

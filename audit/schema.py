@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Literal
 
@@ -289,36 +289,207 @@ def parse_numbers(
     >>> why.tolist()[4]
     'not a number'
     """
-    out = pd.Series(np.nan, index=values.index, dtype=float)
-    problem = pd.Series("", index=values.index, dtype=object)
-    kind = _cell_kinds(values)
-    is_num = pd.Series(kind == _NUM, index=values.index)
+    x, at, reasons = _numbers(
+        values, _distinct_of(values), decimal_comma=decimal_comma, whole=whole
+    )
+    problem = np.full(len(values), "", dtype=object)
+    problem[at] = reasons
+    return pd.Series(x, index=values.index), pd.Series(problem, index=values.index, dtype=object)
+
+
+def _numbers(
+    values: pd.Series, distinct: Distinct | None, *, decimal_comma: bool, whole: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`parse_numbers` as ``(floats, positions of rejected cells, their reasons)``.
+
+    ``distinct`` is the column's :func:`_distinct_texts` (None unless it holds only text).
+    """
+    if distinct is not None:
+        # Each distinct text parsed and checked once, then mapped to its cells. (A text found
+        # in several blocks of rows is one text here; texts alone always factorize.)
+        codes, texts = distinct
+        merged, texts = _distinct_texts(texts) or pd.factorize(texts)
+        codes = _take(merged, codes, -1)
+        text_x, text_why = _parse_texts(texts, decimal_comma=decimal_comma, whole=whole)
+        text_bad = text_why != ""
+        _reject_infinite(text_x, text_bad, text_why)
+        at = np.flatnonzero(_take(text_bad, codes, False))
+        return _take(text_x, codes, np.nan), at, text_why[codes[at]]
+    if isinstance(values.dtype, np.dtype) and values.dtype.kind in "fiu":
+        # Numbers already (a frame built in Python): nothing to read.
+        x = values.to_numpy(dtype=float, copy=True)
+        bad = np.zeros(len(x), dtype=bool)
+        why = np.empty(len(x), dtype=object)
+    else:
+        cells = values.to_numpy(dtype=object)
+        x, bad, why = _numbers_by_kind(cells, decimal_comma=decimal_comma, whole=whole)
+    _reject_infinite(x, bad, why)
+    at = np.flatnonzero(bad)
+    return x, at, why[at]
+
+
+def _reject_infinite(x: np.ndarray, bad: np.ndarray, why: np.ndarray) -> None:
+    """Reject infinite numbers not rejected already, and make them nan (in place)."""
+    with np.errstate(invalid="ignore"):
+        infinite = np.isinf(x)
+    why[infinite & ~bad] = "not a finite number"
+    bad |= infinite
+    x[infinite] = np.nan
+
+
+#: ``(codes, texts)``: the text of cell i is ``texts[codes[i]]``, or None where the code is -1.
+Distinct = tuple[np.ndarray, np.ndarray]
+
+#: Rows whose cells are hashed together. A file's text objects lie in memory in the order they
+#: were read, row by row: hashing a block of rows column by column stays within memory the
+#: processor has at hand, and takes half the time of going down each whole column in turn.
+_BLOCK_ROWS = 5000
+
+
+def _distinct_columns(data: pd.DataFrame, names: list[str]) -> dict[str, list[Distinct] | None]:
+    """:func:`_distinct_texts` of the columns ``names`` of ``data``, per block of rows.
+
+    Each column gets its blocks' ``(codes, texts)`` (join them with :func:`_joined`), or None
+    when it does not hold only text. Block codes are kept small: all columns' codes exist at
+    once here.
+    """
+    cells = data.to_numpy(dtype=object)
+    where = {name: data.columns.get_loc(name) for name in names}
+    small = np.min_scalar_type(-_BLOCK_ROWS)
+    parts: dict[str, list[Distinct] | None] = {name: [] for name in names}
+    for start in range(0, len(cells), _BLOCK_ROWS):
+        block = cells[start : start + _BLOCK_ROWS]
+        for name, j in where.items():
+            found = parts[name]
+            if found is None:
+                continue  # not a column of text only
+            part = _distinct_texts(block[:, j])
+            if part is None:
+                parts[name] = None
+            else:
+                found.append((part[0].astype(small), part[1]))
+    return parts
+
+
+def _joined(parts: list[Distinct] | None) -> Distinct | None:
+    """One column's ``(codes, texts)`` from those of its blocks of rows. A text may recur in
+    several blocks, which only repeats the work on it."""
+    if parts is None:
+        return None
+    codes, offset = [], 0
+    for part_codes, part_texts in parts:
+        codes.append(np.where(part_codes >= 0, part_codes.astype(np.intp) + offset, -1))
+        offset += len(part_texts)
+    return (
+        np.concatenate(codes) if codes else np.zeros(0, dtype=np.intp),
+        np.concatenate([t for _, t in parts]) if parts else np.zeros(0, dtype=object),
+    )
+
+
+def _distinct_of(values: pd.Series) -> Distinct | None:
+    """:func:`_distinct_texts` of a series (None for one of numbers)."""
+    if isinstance(values.dtype, np.dtype) and values.dtype.kind in "fiu":
+        return None
+    return _distinct_texts(values.to_numpy(dtype=object))
+
+
+def _distinct_texts(cells: np.ndarray) -> Distinct | None:
+    """``(codes, texts)`` of a column holding only text and None (code -1), else None.
+
+    Every column of a text file is such a column. Its cells are read once per distinct text
+    (portfolios repeat designs, choices and numbers), by a C-level hash of the column, and
+    mapped back by the codes.
+    """
+    if _StringHashTable is not None:
+        # The hash table pd.factorize uses for a column of strings, called directly: it skips
+        # pd.factorize's pass over the cells checking that all are strings, and gives any cell
+        # that is not one code -1 (looked at below).
+        table = _StringHashTable(len(cells))
+        texts, codes = table.factorize(cells, na_sentinel=-1, ignore_na=True)
+        codes = codes.astype(np.intp, copy=False)
+    else:
+        try:
+            codes, texts = pd.factorize(cells)
+        except TypeError:  # an unhashable cell (a list in a frame built in Python)
+            return None
+        if len(texts) and pd.api.types.infer_dtype(texts, skipna=False) != "string":
+            return None
+    # Every cell with code -1 must be an empty cell (None), not a number or a missing-value
+    # marker of another kind.
+    if not all(v is None for v in cells[codes < 0]):
+        return None
+    return codes, texts.astype(object, copy=False)
+
+
+try:
+    from pandas._libs.hashtable import StringHashTable as _StringHashTable
+except ImportError:  # a pandas version that moved it: pd.factorize and a check of the texts
+    _StringHashTable = None
+
+
+def _take(per_text: np.ndarray, codes: np.ndarray, empty: object) -> np.ndarray:
+    """Per-cell values from per-text values; ``empty`` where the code is -1 (no text)."""
+    return np.append(per_text, np.array([empty], dtype=per_text.dtype))[codes]
+
+
+def _numbers_by_kind(
+    cells: np.ndarray, *, decimal_comma: bool, whole: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Numbers of a column of mixed cells (a workbook's): by kind, text per distinct value.
+
+    Returns ``(floats, rejected, reasons)`` with one entry per cell (a reason counts where the
+    cell is rejected).
+    """
+    n = len(cells)
+    x = np.full(n, np.nan)
+    why = np.empty(n, dtype=object)
+    kind = _cell_kinds(cells)
+    is_num = kind == _NUM
     if is_num.any():
-        # Python ints of any size: beyond float range they become inf and are rejected below.
-        out[is_num] = [_as_float(v) for v in values[is_num]]
+        x[is_num] = _as_floats(cells[is_num])
     other_at = np.flatnonzero(kind == _OTHER)
-    uncached_np = np.zeros(len(values), dtype=bool)
-    uncached_np[other_at] = [values.iat[i] is UNCACHED for i in other_at]
-    uncached = pd.Series(uncached_np, index=values.index)
-    problem[uncached] = "formula without a saved value (open and save the file, or paste values)"
-    text_mask = pd.Series(kind == _TEXT, index=values.index)
-    if text_mask.any():
-        text = values[text_mask].astype(object)
-        # Empty cells (half of a wide sheet) are dropped at C speed; whitespace-only cells go to
-        # the careful path below, which reads them as blank too.
-        empty = text.to_numpy(dtype=object) == ""
-        text_mask[text.index[empty]] = False
-        text = text[~empty]
-        # Fast path for the common case, a plain number (C-speed parsing); everything else
-        # (percentages, separators, markers of missing values, junk) takes the careful path.
-        quick = pd.to_numeric(text, errors="coerce").astype(float)
-        plain = np.isfinite(quick.to_numpy())
-        if decimal_comma and plain.any():
-            plain &= ~text.str.contains(".", regex=False).to_numpy(dtype=bool, na_value=False)
-        out[quick.index[plain]] = quick[plain]
-        text_mask[quick.index[plain]] = False
-    if text_mask.any():
-        s = values[text_mask].astype(str).str.strip().str.replace("\u00a0", "", regex=False)
+    uncached = np.zeros(n, dtype=bool)
+    uncached[other_at] = [cells[i] is UNCACHED for i in other_at]
+    why[uncached] = "formula without a saved value (open and save the file, or paste values)"
+    boolean = kind == _BOOL
+    why[boolean] = "not a number (TRUE/FALSE)"
+    # Anything else a spreadsheet cell can hold (a date, a time, an error value's object) is not
+    # a number either; it must never pass as blank.
+    other = (kind == _OTHER) & ~uncached
+    why[other] = "not a number (a date or another kind of value)"
+    bad = uncached | boolean | other
+    text_at = np.flatnonzero(kind == _TEXT)
+    if len(text_at):
+        codes, texts = pd.factorize(cells[text_at])
+        text_x, text_why = _parse_texts(
+            texts.astype(object, copy=False), decimal_comma=decimal_comma, whole=whole
+        )
+        x[text_at] = text_x[codes]
+        why[text_at] = text_why[codes]
+        bad[text_at] = (text_why != "")[codes]
+    return x, bad, why
+
+
+def _parse_texts(
+    texts: np.ndarray, *, decimal_comma: bool, whole: bool
+) -> tuple[np.ndarray, np.ndarray]:
+    """Numbers (nan if none) and rejection reasons ("" if none) of distinct cell texts."""
+    index = pd.RangeIndex(len(texts))
+    out = pd.Series(np.nan, index=index, dtype=float)
+    problem = pd.Series("", index=index, dtype=object)
+    # Empty cells (half of a wide sheet) are blank; whitespace-only cells go to the careful
+    # path below, which reads them as blank too.
+    text = pd.Series(texts, index=index, dtype=object)
+    text = text[text.to_numpy() != ""]
+    # Fast path for the common case, a plain number (C-speed parsing); everything else
+    # (percentages, separators, markers of missing values, junk) takes the careful path.
+    quick = pd.to_numeric(text, errors="coerce").astype(float)
+    plain = np.isfinite(quick.to_numpy())
+    if decimal_comma and plain.any():
+        plain &= ~text.str.contains(".", regex=False).to_numpy(dtype=bool, na_value=False)
+    out[quick.index[plain]] = quick[plain]
+    if not plain.all():
+        s = text[~plain].astype(str).str.strip().str.replace("\u00a0", "", regex=False)
         # The typographic minus (U+2212) and dashes pasted from documents mean a minus sign.
         s = s.str.replace(" ", "", regex=False).str.replace(_MINUS_SIGNS, "-", regex=True)
         missing = s.str.lower().isin(MISSING_TOKENS)
@@ -360,17 +531,7 @@ def parse_numbers(
                     "separator of a decimal-comma file)"
                 )
             problem[reason.index] = reason
-    bool_mask = pd.Series(kind == _BOOL, index=values.index)
-    problem[bool_mask] = "not a number (TRUE/FALSE)"
-    # Anything else a spreadsheet cell can hold (a date, a time, an error value's object) is not
-    # a number either; it must never pass as blank.
-    other = pd.Series(kind == _OTHER, index=values.index) & ~uncached
-    problem[other] = "not a number (a date or another kind of value)"
-    with np.errstate(invalid="ignore"):
-        infinite = np.isinf(out.to_numpy(dtype=float))
-    problem[infinite & (problem == "").to_numpy()] = "not a finite number"
-    out[infinite] = np.nan
-    return out, problem
+    return np.array(out, dtype=float), np.array(problem, dtype=object)
 
 
 _NONE, _NUM, _TEXT, _BOOL, _OTHER = range(5)
@@ -386,18 +547,25 @@ _KINDS = {
 }
 
 
-def _cell_kinds(values: pd.Series) -> np.ndarray:
+def _cell_kinds(cells: np.ndarray) -> np.ndarray:
     """Kind of each cell (none, number, text, boolean, other), at C speed when the column is
-    uniform, as columns of a text file are."""
-    inferred = pd.api.types.infer_dtype(values, skipna=True)
-    present = values.notna().to_numpy()
+    uniform."""
+    inferred = pd.api.types.infer_dtype(cells, skipna=True)
+    present = pd.notna(cells)
     if inferred in ("string", "empty"):
         return np.where(present, _TEXT, _NONE).astype(np.int8)
     if inferred in ("floating", "integer", "mixed-integer-float"):
         return np.where(present, _NUM, _NONE).astype(np.int8)
     return np.fromiter(
-        (_KINDS.get(type(v), _OTHER) for v in values), dtype=np.int8, count=len(values)
+        (_KINDS.get(type(v), _OTHER) for v in cells), dtype=np.int8, count=len(cells)
     )
+
+
+def _as_floats(cells: np.ndarray) -> np.ndarray:
+    try:
+        return cells.astype(float)
+    except OverflowError:  # Python ints beyond float range: inf, rejected as not finite
+        return np.array([_as_float(v) for v in cells], dtype=float)
 
 
 def _as_float(value: object) -> float:
@@ -428,8 +596,9 @@ def validate(raw: RawTable) -> Validated:
     if missing:
         raise InputError(_missing_columns_message(raw, missing))
     n = len(data)
-    table = pd.DataFrame(index=pd.RangeIndex(n))
-    table["_row"] = raw.rows
+    # The typed columns are collected first and made one frame at the end of the loop below:
+    # inserting them one by one into a frame costs more, and leaves it in many pieces.
+    columns: dict[str, np.ndarray | pd.Series] = {"_row": raw.rows}
     fail_pos: list[np.ndarray] = []
     fail_col: list[str] = []
     fail_reason: list[np.ndarray] = []
@@ -438,53 +607,61 @@ def validate(raw: RawTable) -> Validated:
     file_notes: list[str] = list(raw.notes)
 
     def fail(mask: np.ndarray, column: str, reason: str | np.ndarray) -> None:
+        """Failures where ``mask`` is set; ``reason``: one text, or one per row."""
         pos = np.flatnonzero(mask)
+        reasons = np.asarray(reason, dtype=object)
+        fail_at(pos, column, np.broadcast_to(reasons, (n,))[pos] if reasons.ndim else reason)
+
+    def fail_at(pos: np.ndarray, column: str, reason: str | np.ndarray) -> None:
+        """Failures at the positions ``pos``; ``reason``: one text, or one per position."""
         if len(pos):
             fail_pos.append(pos)
             fail_col.append(column)
-            reasons = np.asarray(reason, dtype=object)
             fail_reason.append(
-                np.broadcast_to(reasons, (n,))[pos] if reasons.ndim else np.full(len(pos), reason)
+                np.full(len(pos), reason) if isinstance(reason, str) else reason.astype(object)
             )
 
     for position, column, reason in raw.cell_problems:
-        mask = np.zeros(n, dtype=bool)
-        mask[position] = True
-        fail(mask, column, reason)
+        fail_at(np.array([position], dtype=np.intp), column, reason)
 
     data = _merge_duplicates(raw, fail, notes_pos, notes_text, file_notes)
+    blocks = _distinct_columns(data, [spec.name for spec in COLUMNS if spec.name in data])
 
     for spec in COLUMNS:
         if spec.name not in data.columns:
             if spec.kind in ("number", "integer", "flag"):
                 default = np.nan if spec.default is None else float(spec.default)
-                table[spec.name] = np.full(n, default)
+                columns[spec.name] = np.full(n, default)
             elif spec.kind == "choice":
-                table[spec.name] = pd.Series([spec.default] * n, dtype=object)
+                columns[spec.name] = pd.Series([spec.default] * n, dtype=object)
             else:
-                table[spec.name] = pd.Series([None] * n, dtype=object)
+                columns[spec.name] = pd.Series([None] * n, dtype=object)
             continue
         cells = data[spec.name].reset_index(drop=True)
+        found = _joined(blocks.pop(spec.name))
         if spec.kind == "flag":
-            text = cells.map(lambda v: None if v is None else _fmt(v).strip().lower())
-            blank = text.isna() | text.isin(MISSING_TOKENS)
-            flag = text.map(lambda v: FLAG_VALUES.get(v, np.nan) if v is not None else np.nan)
-            bad = (~blank & flag.isna()).to_numpy()
-            fail(bad, spec.name, f"expected {spec.range_text()}")
+            codes, texts, uncached = _trimmed_texts(cells, found)
+            lowered = list(map(str.lower, texts))
+            # A formula without a saved value is not blank: it is rejected as no yes or no.
+            tokens = _flags(map(MISSING_TOKENS.__contains__, lowered), len(texts))
+            blank = _take(tokens, codes, True) & ~uncached
+            values = np.array([FLAG_VALUES.get(v, np.nan) for v in lowered], dtype=float)
+            flag = _take(values, codes, np.nan)
+            fail(~blank & np.isnan(flag), spec.name, f"expected {spec.range_text()}")
             # Blank stays nan: the run's default applies (see audit.pipeline).
-            table[spec.name] = flag.to_numpy(dtype=float)
+            columns[spec.name] = flag
             continue
         if spec.kind in ("text", "design", "choice"):
-            _text_column(spec, cells, table, fail)
+            _text_column(spec, cells, found, columns, fail)
             continue
         if spec.name == "observed_p":
-            cells = _p_value_bounds(cells, table, notes_pos, notes_text)
-        numbers, problem = parse_numbers(
-            cells, decimal_comma=raw.decimal_comma, whole=spec.kind == "integer"
+            cells, found = _p_value_bounds(cells, found, columns, notes_pos, notes_text)
+        x, at, reasons = _numbers(
+            cells, found, decimal_comma=raw.decimal_comma, whole=spec.kind == "integer"
         )
-        bad = (problem != "").to_numpy()
-        fail(bad, spec.name, problem.to_numpy(dtype=object))
-        x = numbers.to_numpy(dtype=float)
+        fail_at(at, spec.name, reasons)
+        bad = np.zeros(n, dtype=bool)
+        bad[at] = True
         with np.errstate(invalid="ignore"):
             present = ~np.isnan(x)
             out_of_range = np.zeros(n, dtype=bool)
@@ -509,14 +686,22 @@ def validate(raw: RawTable) -> Validated:
         x = np.where(bad | out_of_range | not_whole, np.nan, x)
         if spec.default is not None:
             x = np.where(present | bad, x, float(spec.default))
-        table[spec.name] = x
+        columns[spec.name] = x
+    # Per distinct value: the column holds a handful of texts.
+    sides = pd.Series(columns["sides"], dtype=object).to_numpy()
+    codes, texts = pd.factorize(sides, use_na_sentinel=False)
+    numbers = pd.to_numeric(pd.Series(texts, dtype=object), errors="coerce").to_numpy(dtype=float)
+    columns["sides"] = numbers[codes]
+    table = pd.DataFrame(columns, index=pd.RangeIndex(n))
+    del columns  # copied into the frame
 
     # study_id must be given. Rows sharing one are all kept and all audited (which of them is
     # right cannot be known, and dropping one would lose a study); each gets a note naming the
     # other rows.
     sid = table["study_id"]
-    fail(sid.isna().to_numpy(), "study_id", "blank: every study needs an identifier")
-    dup = (sid.notna() & sid.duplicated(keep=False)).to_numpy()
+    no_id = sid.isna().to_numpy()
+    fail(no_id, "study_id", "blank: every study needs an identifier")
+    dup = ~no_id & sid.duplicated(keep=False).to_numpy()
     if dup.any():
         rows_of = (
             table.loc[dup]
@@ -534,14 +719,13 @@ def validate(raw: RawTable) -> Validated:
             ).to_numpy(dtype=object)
         )
 
-    sides = pd.to_numeric(table["sides"], errors="coerce").to_numpy(dtype=float)
-    table["sides"] = sides
-
     # Design-specific checks, on rows whose design is known.
+    codes, designs = pd.factorize(table["design"].to_numpy(dtype=object))
+    code_of = {d: k for k, d in enumerate(designs)}
     for name, design in DESIGNS.items():
-        mask = (table["design"] == name).to_numpy()
-        if not mask.any():
+        if name not in code_of:
             continue
+        mask = codes == code_of[name]
         sub = table.loc[mask]
         for bad, column, reason in design.check_rows(sub):
             full = np.zeros(n, dtype=bool)
@@ -600,102 +784,153 @@ _NOT_SIGNIFICANT = frozenset({"ns", "n.s.", "n.s", "not significant"})
 
 def _p_value_bounds(
     cells: pd.Series,
-    table: pd.DataFrame,
+    distinct: Distinct | None,
+    columns: dict[str, np.ndarray | pd.Series],
     notes_pos: list[np.ndarray],
     notes_text: list[np.ndarray],
-) -> pd.Series:
+) -> tuple[pd.Series, Distinct | None]:
     """Read p-values as papers print them: ``p < 0.001``, ``< .05``, ``>0.1``, ``0.000``, ``n.s.``.
 
     A bound is not a p-value: it can decide whether the test was significant but no standard
     error can be derived from it. Bounds go to ``observed_p_bound`` with ``observed_p_relation``
     (-1 for "below", +1 for "above"); "n.s." is "above the study's alpha" (bound nan, relation
     +1); a p printed as zero (``0.000``) is below half its last printed digit. ``p = 0.03`` is
-    simply 0.03. The cells returned keep only plain p-values for the number parser.
+    simply 0.03. The cells returned keep only plain p-values for the number parser; they come
+    with their :func:`_distinct_texts` where ``distinct`` (that of ``cells``) is given.
     """
     n = len(cells)
-    bound = np.full(n, np.nan)
+    values = cells.to_numpy(dtype=object)
+    if distinct is not None:
+        cell_codes, texts = distinct
+        at = np.flatnonzero(cell_codes >= 0)
+        codes = cell_codes[at]
+        numeric_zero = np.zeros(n, dtype=bool)
+    else:  # workbook cells: numbers and other values beside the texts
+        at = np.flatnonzero(np.fromiter((isinstance(v, str) for v in values), bool, count=n))
+        codes, texts = pd.factorize(values[at])
+        numeric_zero = np.array(
+            [isinstance(v, (int, float)) and not isinstance(v, bool) and v == 0 for v in values],
+            dtype=bool,
+        )
+    # Each distinct text read once. Most are plain p-values: a finite number other than zero
+    # matches none of the patterns of _p_text, so those texts skip it.
+    number = pd.to_numeric(pd.Series(texts, dtype=object), errors="coerce")
+    plain = np.isfinite(number.to_numpy(dtype=float)) & (number.to_numpy(dtype=float) != 0)
+    read = [_PLAIN_P if p else _p_text(t) for t, p in zip(texts, plain, strict=True)]
     relation = np.full(n, np.nan)
-    cleaned = cells.copy()
-    texts = [(i, v) for i, v in enumerate(cells.tolist()) if isinstance(v, str) and v.strip()]
-    for i, raw in texts:
-        text = raw.strip().replace("\u2212", "-")
-        if text.lower() in _NOT_SIGNIFICANT:
-            relation[i] = 1.0
-            cleaned.iat[i] = None
-            continue
-        equals = _P_EQUALS.match(text)
-        if equals:
-            cleaned.iat[i] = equals.group("num")
-            text = equals.group("num")
-        match = _P_BOUND.match(text)
-        if match:
-            number = float(match.group("num").replace(",", "."))
-            relation[i] = -1.0 if match.group("rel") in ("<", "<=", "\u2264") else 1.0
-            bound[i] = number
-            cleaned.iat[i] = None
-            continue
-        zero = re.fullmatch(r"0?[.,](0+)", text)
-        if zero or text == "0":
-            digits = len(zero.group(1)) if zero else 0
-            relation[i] = -1.0
-            bound[i] = 0.5 * 10.0 ** (-digits) if digits else 0.001
-            cleaned.iat[i] = None
-    numeric_zero = np.array(
-        [isinstance(v, (int, float)) and not isinstance(v, bool) and v == 0 for v in cells],
-        dtype=bool,
-    )
+    bound = np.full(n, np.nan)
+    relation[at] = np.array([r for r, _, _ in read], dtype=float)[codes]
+    bound[at] = np.array([b for _, b, _ in read], dtype=float)[codes]
+    cleaned = values.copy()
+    changed = np.array([c is not _AS_WRITTEN for _, _, c in read], dtype=bool)[codes]
+    replaced = _objects([c for _, _, c in read])[codes]
+    cleaned[at[changed]] = replaced[changed]
     relation[numeric_zero] = -1.0
     bound[numeric_zero] = 0.001
     cleaned[numeric_zero] = None
-    table["observed_p_bound"] = bound
-    table["observed_p_relation"] = relation
+    columns["observed_p_bound"] = bound
+    columns["observed_p_relation"] = relation
     marked = np.flatnonzero(~np.isnan(relation))
     if len(marked):
+        note = np.empty(n, dtype=object)
+        note[at] = _objects([_p_note(t) for t in texts])[codes]
+        zero_at = np.flatnonzero(numeric_zero)
+        note[zero_at] = [_p_note(values[i]) for i in zero_at]
         notes_pos.append(marked)
-        notes_text.append(
-            np.array(
-                [
-                    f"observed_p '{cells.iat[i]}' read as a bound, not a p-value: it decides "
-                    "significance where no interval does, and nothing is derived from it"
-                    for i in marked
-                ],
-                dtype=object,
-            )
+        notes_text.append(note[marked])
+    cleaned_distinct = None
+    if distinct is not None:
+        # The texts cleaned; a cell cleaned to None gets code -1, and its text (referred to by
+        # no cell any more) becomes "", which the number parser passes over.
+        gone = _flags((c is None for _, _, c in read), len(read))
+        cleaned_texts = _objects(
+            [t if c is _AS_WRITTEN else c or "" for t, (_, _, c) in zip(texts, read, strict=True)]
         )
-    return cleaned
+        cleaned_distinct = (np.where(_take(gone, cell_codes, True), -1, cell_codes), cleaned_texts)
+    return pd.Series(cleaned, index=cells.index, dtype=object, name=cells.name), cleaned_distinct
+
+
+#: :func:`_p_text` leaves the cell as written.
+_AS_WRITTEN = object()
+#: What :func:`_p_text` gives a plain p-value: no bound, the cell as written.
+_PLAIN_P = (np.nan, np.nan, _AS_WRITTEN)
+
+
+def _p_text(raw: str) -> tuple[float, float, object]:
+    """``(relation, bound, cell for the number parser)`` of one p-value text; nan where the
+    text is no bound, and ``_AS_WRITTEN`` where the cell goes to the parser unchanged."""
+    if not raw.strip():
+        return np.nan, np.nan, _AS_WRITTEN
+    text = raw.strip().replace("\u2212", "-")
+    if text.lower() in _NOT_SIGNIFICANT:
+        return 1.0, np.nan, None
+    cleaned: object = _AS_WRITTEN
+    equals = _P_EQUALS.match(text)
+    if equals:
+        cleaned = text = equals.group("num")
+    match = _P_BOUND.match(text)
+    if match:
+        number = float(match.group("num").replace(",", "."))
+        return (-1.0 if match.group("rel") in ("<", "<=", "\u2264") else 1.0), number, None
+    zero = re.fullmatch(r"0?[.,](0+)", text)
+    if zero or text == "0":
+        digits = len(zero.group(1)) if zero else 0
+        return -1.0, 0.5 * 10.0 ** (-digits) if digits else 0.001, None
+    return np.nan, np.nan, cleaned
+
+
+def _p_note(value: object) -> str:
+    return (
+        f"observed_p '{value}' read as a bound, not a p-value: it decides significance where no "
+        "interval does, and nothing is derived from it"
+    )
+
+
+def _trimmed_texts(
+    cells: pd.Series, distinct: Distinct | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Each cell's text as written, trimmed: ``(codes, texts, uncached)``.
+
+    A cell's text is ``texts[code]``; code -1 marks an empty cell or a formula without a saved
+    value (``uncached``). A text file's column (``distinct`` given) is trimmed once per
+    distinct value; a workbook's cells (numbers, dates) are formatted one by one first.
+    """
+    values = cells.to_numpy(dtype=object)
+    if distinct is not None:
+        codes, texts = distinct
+        trimmed = _objects(list(map(str.strip, texts)))
+        return codes, trimmed, np.zeros(len(values), dtype=bool)
+    uncached = np.fromiter((v is UNCACHED for v in values), dtype=bool, count=len(values))
+    text = [None if v is None or v is UNCACHED else _fmt(v).strip() for v in values]
+    codes, texts = pd.factorize(_objects(text))
+    return codes, texts.astype(object, copy=False), uncached
 
 
 def _text_column(
     spec: Column,
     cells: pd.Series,
-    table: pd.DataFrame,
+    distinct: Distinct | None,
+    columns: dict[str, np.ndarray | pd.Series],
     fail: Callable[[np.ndarray, str, str | np.ndarray], None],
 ) -> None:
-    """Type a text, design or choice column into ``table`` (object array, None for blank)."""
-    uncached = np.fromiter((v is UNCACHED for v in cells), dtype=bool, count=len(cells))
+    """Type a text, design or choice column into ``columns`` (object Series, None for blank)."""
+    codes, texts, uncached = _trimmed_texts(cells, distinct)
     fail(uncached, spec.name, "formula without a saved value (open and save the file)")
-    # Object arrays throughout: a pandas string column would turn None into nan.
-    text = np.array(
-        [None if v is None or v is UNCACHED else _fmt(v).strip() for v in cells], dtype=object
-    )
-    # Per distinct value, not per cell: portfolios repeat a handful of designs and choices.
-    distinct = {v for v in text if v is not None}
+    # Object arrays throughout: a pandas string column would turn None into nan. Everything
+    # below is worked out per distinct text and mapped to the cells by the codes.
     if spec.kind == "choice":
         # "2.0" typed as text means 2, as the number 2.0 in a spreadsheet cell does.
-        plain = {v: re.sub(r"^(\d+)\.0*$", r"\1", v) for v in distinct}
-        text = np.array([None if v is None else plain[v] for v in text], dtype=object)
-        distinct = set(plain.values())
+        texts = _objects([re.sub(r"^(\d+)\.0*$", r"\1", v) for v in texts])
     tokens = MISSING_TOKENS - {"-"}
-    is_token = {v: v.lower() in tokens for v in distinct}
-    blank = np.fromiter((v is None or is_token[v] for v in text), dtype=bool, count=len(text))
+    blank = _take(_flags(map(tokens.__contains__, map(str.lower, texts)), len(texts)), codes, True)
+    text = _take(texts, codes, None)
     if spec.kind == "text":
-        table[spec.name] = pd.Series(np.where(blank, None, text), dtype=object)
+        columns[spec.name] = pd.Series(np.where(blank, None, text), dtype=object)
         return
-    normal = {v: normalise_header(v) for v in distinct}
-    norm = np.array(
-        [None if b else normal[v] for v, b in zip(text, blank, strict=True)], dtype=object
-    )
-    known = np.isin(norm, np.asarray(spec.choices, dtype=object))
+    normal = _objects([normalise_header(v) for v in texts])
+    norm = np.where(blank, None, _take(normal, codes, None))
+    choices = set(spec.choices)
+    known = _take(_flags(map(choices.__contains__, normal), len(normal)), codes, False) & ~blank
     bad = ~known & ~blank
     if spec.kind == "choice":
         norm = np.where(blank, spec.default, norm)
@@ -703,7 +938,18 @@ def _text_column(
         fail(blank & ~uncached, spec.name, "blank: the design must be given")
     fail(bad, spec.name, f"unknown {spec.name.replace('_', ' ')}; expected {spec.range_text()}")
     # A rejected value is kept as written so that outputs show what the row said.
-    table[spec.name] = pd.Series(np.where(bad, text, norm), dtype=object)
+    columns[spec.name] = pd.Series(np.where(bad, text, norm), dtype=object)
+
+
+def _flags(items: Iterable[bool], count: int) -> np.ndarray:
+    return np.fromiter(items, dtype=bool, count=count)
+
+
+def _objects(items: list[object]) -> np.ndarray:
+    """A 1-d object array of ``items`` (never a 2-d array, even of equal-length sequences)."""
+    out = np.empty(len(items), dtype=object)
+    out[:] = items
+    return out
 
 
 def _missing_columns_message(raw: RawTable, missing: list[str]) -> str:
