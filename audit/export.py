@@ -13,7 +13,7 @@ import os
 import re
 import sys
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import IO, TYPE_CHECKING
 
@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 
 from audit.errors import OutputError
+from audit.parallel import ChildTask, can_fork
 from audit.studyjson import INTEGER_METRICS
 
 if TYPE_CHECKING:
@@ -139,8 +140,8 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     compact and streamed: studies are encoded a chunk at a time while a second thread writes the
     previous chunk (file writes release the interpreter lock), so memory stays bounded and the
     disk works while the next chunk is encoded. From :data:`PARALLEL_JSON_MIN` studies, where
-    the platform can fork, a child process encodes the second half meanwhile (see
-    :class:`_ForkedHalf`).
+    the platform can fork, a child process encodes the second half meanwhile
+    (:class:`audit.parallel.ChildTask`).
     """
     refuse_input(result, path)
     n = len(result.table)
@@ -152,100 +153,58 @@ def write_json(result: AuditResult, path: str | Path) -> None:
         return
     head = json_bytes(result.document_head(), indent=False)
     tail = json_bytes(result.document_tail(), indent=False)
-    half = n // 2 if n >= PARALLEL_JSON_MIN else n
+    # The child takes the larger share: this process also writes the file and appends the
+    # child's part to it.
+    half = int(n * PARENT_SHARE) if n >= PARALLEL_JSON_MIN and can_fork() else n
+
+    def second_half() -> Iterator[bytes]:
+        for i, part in enumerate(result.study_json(start=half)):
+            yield b"," + part if i else part
+
     folder = None if str(path) == "-" else Path(path).resolve().parent
     with atomic_output(path, "wb") as handle:
-        # Forked before the writer thread starts: a child has only the thread that forked.
-        with _ForkedHalf(result, half, n, folder) as second, _BackgroundWriter(handle) as writer:
+        # The child starts before the writer thread: a forked child has only the forking thread.
+        with (
+            ChildTask(lambda out: out.writelines(second_half()), folder)
+            if half < n
+            else contextlib.nullcontext() as child,
+            _BackgroundWriter(handle) as writer,
+        ):
             writer.write(head[:-1] + b',"studies":[')
             for i, part in enumerate(result.study_json(stop=half)):
                 writer.write((b"," if i else b"") + part)
             if half < n:
                 writer.write(b",")
-                for part in second.parts():
-                    writer.write(part)
+                done = child.result()
+                if done is not None:
+                    writer.write(lambda handle: _append_file(handle, done))
+                else:  # no child, or it failed: encode the second half here
+                    for part in second_half():
+                        writer.write(part)
             writer.write(b"]," + tail[1:] + b"\n")
 
 
-#: From this many studies the JSON encoding is split over two processes (where fork exists).
+#: From this many studies the JSON encoding is split over two processes (see audit.parallel).
 PARALLEL_JSON_MIN = 20_000
+#: The share of the studies this process encodes when a child encodes the rest.
+PARENT_SHARE = 0.4
 
 
-class _ForkedHalf:
-    """Studies ``start`` to ``stop`` encoded by a forked child into an unlinked temporary file.
-
-    The encoding is pure Python work, so a second core helps only as a second process; fork
-    shares the audit's tables without copying or pickling them. The child writes its JSON text
-    (comma-separated studies) and leaves with ``os._exit``, so it never flushes or closes
-    anything of the parent's. :meth:`parts` yields the child's text when it succeeded, and
-    otherwise encodes the studies in this process: a failed child costs time, never output.
-    Only on Linux (fork is unsafe with some system libraries on macOS, and absent on Windows);
-    elsewhere, or for ``start == stop``, the studies are simply encoded here.
-    """
-
-    def __init__(self, result: AuditResult, start: int, stop: int, folder: Path | None) -> None:
-        self._result, self._start, self._stop, self._folder = result, start, stop, folder
-        self._pid = 0
-        self._file: IO[bytes] | None = None
-
-    def __enter__(self) -> _ForkedHalf:
-        if self._start >= self._stop or not sys.platform.startswith("linux"):
-            return self
-        import warnings
-
-        try:
-            self._file = tempfile.TemporaryFile(dir=self._folder)
-            with warnings.catch_warnings():
-                # Python 3.12+ warns about forking a process with threads (a progress bar's
-                # refresh thread): the child only encodes and writes to its own file, and
-                # takes no lock such a thread could hold.
-                warnings.simplefilter("ignore", DeprecationWarning)
-                self._pid = os.fork()
-        except OSError:
-            self._pid = 0
-            return self
-        if self._pid == 0:
-            self._child()
-        return self
-
-    def _child(self) -> None:
-        status = 1
-        try:
-            assert self._file is not None
-            fd = self._file.fileno()
-            for i, part in enumerate(self._result.study_json(start=self._start, stop=self._stop)):
-                view = memoryview(b"," + part if i else part)
-                while view:
-                    view = view[os.write(fd, view) :]
-            status = 0
-        finally:
-            os._exit(status)
-
-    def parts(self) -> Iterator[bytes]:
-        """The JSON text of the studies, from the child if it succeeded, else encoded here."""
-        if self._pid and self._wait() == 0 and self._file is not None:
-            self._file.seek(0)
-            while block := self._file.read(16 * 2**20):
-                yield block
-            return
-        for i, part in enumerate(self._result.study_json(start=self._start, stop=self._stop)):
-            yield b"," + part if i else part
-
-    def _wait(self) -> int:
-        pid, self._pid = self._pid, 0
-        _, status = os.waitpid(pid, 0)
-        return os.waitstatus_to_exitcode(status)
-
-    def __exit__(self, *exc: object) -> None:
-        if self._pid:  # the parent failed before collecting the child: stop it
-            import signal
-
-            with contextlib.suppress(OSError):
-                os.kill(self._pid, signal.SIGKILL)
-            with contextlib.suppress(OSError):
-                self._wait()
-        if self._file is not None:
-            self._file.close()
+def _append_file(handle: IO[bytes], source: IO[bytes]) -> None:
+    """Append all of ``source`` (a regular file) to ``handle``: copied by the kernel where it
+    can (sendfile), else read and written."""
+    handle.flush()
+    size = os.fstat(source.fileno()).st_size
+    offset = 0
+    with contextlib.suppress(OSError, AttributeError, ValueError):
+        while offset < size:
+            sent = os.sendfile(handle.fileno(), source.fileno(), offset, size - offset)
+            if not sent:
+                break
+            offset += sent
+    source.seek(offset)
+    while block := source.read(16 * 2**20):
+        handle.write(block)
 
 
 class _BackgroundWriter:
@@ -256,7 +215,7 @@ class _BackgroundWriter:
         import threading
 
         self._handle = handle
-        self._queue: queue.Queue[bytes | None] = queue.Queue(maxsize=2)
+        self._queue: queue.Queue[bytes | Callable[[IO], None] | None] = queue.Queue(maxsize=2)
         self._error: BaseException | None = None
         self._thread = threading.Thread(target=self._run, daemon=True)
 
@@ -264,7 +223,10 @@ class _BackgroundWriter:
         while (data := self._queue.get()) is not None:
             if self._error is None:
                 try:
-                    self._handle.write(data)
+                    if callable(data):
+                        data(self._handle)
+                    else:
+                        self._handle.write(data)
                 except BaseException as exc:  # reported by the main thread on exit
                     self._error = exc
 
@@ -272,7 +234,8 @@ class _BackgroundWriter:
         self._thread.start()
         return self
 
-    def write(self, data: bytes) -> None:
+    def write(self, data: bytes | Callable[[IO], None]) -> None:
+        """Queue bytes to write, or a function to call with the file (in order)."""
         if self._error is not None:
             raise self._error
         self._queue.put(data)

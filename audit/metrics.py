@@ -7,12 +7,14 @@ left blank, or the condition that makes it undefined. Rows are processed one *de
 
 from __future__ import annotations
 
+import pickle
 from dataclasses import dataclass
+from typing import IO
 
 import numpy as np
 import pandas as pd
 
-from audit import retro
+from audit import parallel, retro
 from audit.designs import DESIGNS, Design, Scenario, TestSpec
 
 __all__ = ["METRICS", "compute_metrics", "test_settings"]
@@ -221,19 +223,27 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
         name: np.full(n, None, dtype=object) if name in TEXT_METRICS else np.full(n, np.nan)
         for name in METRICS
     }
-    notes = _Notes()
     design_col = table["design"].to_numpy(dtype=object)
-    for name, design in DESIGNS.items():
-        mask = valid & (design_col == name)
-        if not mask.any():
-            continue
-        positions = np.flatnonzero(mask)
-        rows = table.iloc[positions]
-        computed = _design_metrics(design, rows, positions, notes)
+    groups = [
+        (design, np.flatnonzero(valid & (design_col == name))) for name, design in DESIGNS.items()
+    ]
+    groups = [(design, positions) for design, positions in groups if len(positions)]
+    notes = _Notes()
+    for (_, positions), (computed, group_notes) in zip(
+        groups, _group_metrics(table, groups), strict=True
+    ):
+        notes.pos.extend(group_notes.pos)
+        notes.text.extend(group_notes.text)
         for metric, arr in computed.items():
             if metric not in columns:
                 columns[metric] = np.full(n, np.nan)
             columns[metric][positions] = arr
+    notes_frame = notes.frame()
+    # Notes in row order (a row's own notes keep the order they were made in), whichever
+    # process computed which rows.
+    notes_frame = notes_frame.iloc[
+        np.argsort(notes_frame["pos"].to_numpy(), kind="stable")
+    ].reset_index(drop=True)
     values = pd.DataFrame(
         {
             # Text metrics stay object columns with None for "not computed" (a str column
@@ -243,7 +253,54 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
         },
         index=table.index,
     )
-    return MetricTable(values, notes.frame())
+    return MetricTable(values, notes_frame)
+
+
+#: From this many rows the metrics are computed by two processes (audit.parallel).
+PARALLEL_METRICS_MIN = 20_000
+
+
+def _group_metrics(
+    table: pd.DataFrame, groups: list[tuple[Design, np.ndarray]]
+) -> list[tuple[dict[str, np.ndarray], _Notes]]:
+    """Metrics and notes of each group of rows (rows of one design), in the order given.
+
+    For a large portfolio every group is cut in two: a forked child computes the second parts
+    while this process computes the first ones (so both do about half of every design's work),
+    and the child sends its results back pickled; if it fails, its parts are computed here.
+    """
+
+    def compute(parts: list[tuple[Design, np.ndarray]]) -> list[tuple[dict, _Notes]]:
+        out = []
+        for design, positions in parts:
+            notes = _Notes()
+            out.append((_design_metrics(design, table.iloc[positions], positions, notes), notes))
+        return out
+
+    if sum(len(p) for _, p in groups) < PARALLEL_METRICS_MIN or not parallel.can_fork():
+        return compute(groups)
+    first = [(design, positions[: len(positions) // 2]) for design, positions in groups]
+    second = [(design, positions[len(positions) // 2 :]) for design, positions in groups]
+
+    def child(out: IO[bytes]) -> None:
+        pickle.dump(compute(second), out, protocol=pickle.HIGHEST_PROTOCOL)
+
+    with parallel.ChildTask(child) as task:
+        mine = compute(first)
+        found = task.result()
+        theirs = pickle.load(found) if found is not None else compute(second)
+    merged = []
+    for (_, positions), (a, notes_a), (b, notes_b) in zip(groups, mine, theirs, strict=True):
+        cut = len(positions) // 2
+        computed = {}
+        for metric in a:
+            column = np.empty(len(positions), dtype=np.result_type(a[metric], b[metric]))
+            column[:cut], column[cut:] = a[metric], b[metric]
+            computed[metric] = column
+        notes = _Notes()
+        notes.pos, notes.text = notes_a.pos + notes_b.pos, notes_a.text + notes_b.text
+        merged.append((computed, notes))
+    return merged
 
 
 def _design_metrics(

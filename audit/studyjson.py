@@ -154,29 +154,40 @@ def study_chunks(
     findings = within(result.findings)
     flag_pos = findings["pos"].to_numpy(dtype=np.int64)
     flags = _encode_records(findings, ("rule", "severity", "message"))
-    metrics = result.metrics
-    names = list(metrics.columns)
+    names = list(result.metrics.columns)
+    # Columns as plain arrays once (texts as objects, None where not computed), sliced per chunk.
+    columns = {
+        name: (
+            result.metrics[name].to_numpy(dtype=float)
+            if pd.api.types.is_numeric_dtype(result.metrics[name].dtype)
+            else np.array(
+                [v if isinstance(v, str) else None for v in result.metrics[name].tolist()],
+                dtype=object,
+            )
+        )
+        for name in names
+    }
+    ids = table["study_id"].to_numpy(dtype=object)
+    designs = table["design"].to_numpy(dtype=object)
+    rows = table["_row"].to_numpy(dtype=float)
     status = np.asarray(result.status, dtype=object)
     for start in range(first, last, chunk):
         stop = min(last, start + chunk)
-        part = table.iloc[start:stop]
         pieces = [
-            (_key("study_id", True), encode_objects(part["study_id"].to_numpy(dtype=object))),
-            (_key("row", False), encode_numbers(part["_row"].to_numpy(dtype=float), integer=True)),
-            (_key("design", False), encode_objects(part["design"].to_numpy(dtype=object))),
+            (_key("study_id", True), encode_objects(ids[start:stop])),
+            (_key("row", False), encode_numbers(rows[start:stop], integer=True)),
+            (_key("design", False), encode_objects(designs[start:stop])),
             (_key("status", False), encode_objects(status[start:stop])),
             (_key("errors", False), encode_lists(error_pos, error_texts, n, start, stop)),
             (_key("error_details", False), encode_lists(error_pos, error_details, n, start, stop)),
             (_key("notes", False), encode_lists(note_pos, note_texts, n, start, stop)),
         ]
         for j, name in enumerate(names):
-            column = metrics[name].iloc[start:stop]
-            if not pd.api.types.is_numeric_dtype(column.dtype):  # texts (object or str)
-                texts = encode_objects([v if isinstance(v, str) else None for v in column])
+            column = columns[name][start:stop]
+            if column.dtype == object:
+                texts = encode_objects(column)
             else:
-                texts = encode_numbers(
-                    column.to_numpy(dtype=float), integer=name in INTEGER_METRICS
-                )
+                texts = encode_numbers(column, integer=name in INTEGER_METRICS)
             prefix = _key(name, j == 0)
             pieces.append((b',"metrics":' + prefix if j == 0 else prefix, texts))
         flags_key = (b"}" if names else b',"metrics":{}') + _key("flags", False)

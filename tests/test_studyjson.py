@@ -16,7 +16,7 @@ import pandas as pd
 import pytest
 
 import audit
-from audit import export
+from audit import export, parallel
 from audit.resources import bundled_dir
 from audit.studyjson import INTEGER_METRICS, encode_numbers, study_chunks
 
@@ -153,7 +153,7 @@ def test_json_split_over_two_processes_is_the_same_document(tmp_path, monkeypatc
     monkeypatch.setattr(export, "PARALLEL_JSON_MIN", 4)
     if child_fails:
         # A child that dies without output: the parent encodes that half itself.
-        monkeypatch.setattr(export._ForkedHalf, "_child", lambda self: os._exit(1))
+        monkeypatch.setattr(parallel.ChildTask, "_run_child", lambda self: os._exit(1))
     split = tmp_path / "split.json"
     export.write_json(result, split)
     assert json.loads(split.read_text("utf-8")) == json.loads(small.read_text("utf-8"))

@@ -1,0 +1,82 @@
+"""Work shared with a forked child gives the same results as work done in one process."""
+
+from __future__ import annotations
+
+import os
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import audit
+from audit import metrics, parallel
+from audit.resources import bundled_dir
+
+DEMO = bundled_dir("demo_data") / "demo_portfolio.csv"
+
+pytestmark = pytest.mark.skipif(
+    not parallel.can_fork(), reason="needs fork (Linux) and more than one core"
+)
+
+
+def _assert_close(a: object, b: object, where: str = "") -> None:
+    """Equal documents, numbers to a relative 1e-11."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        assert a.keys() == b.keys(), where
+        for key in a:
+            _assert_close(a[key], b[key], f"{where}/{key}")
+    elif isinstance(a, list) and isinstance(b, list):
+        assert len(a) == len(b), where
+        for i, (x, y) in enumerate(zip(a, b, strict=True)):
+            _assert_close(x, y, f"{where}/{i}")
+    elif isinstance(a, float) and isinstance(b, float):
+        assert a == pytest.approx(b, rel=1e-11, nan_ok=True), where
+    else:
+        assert a == b, where
+
+
+def _audit(monkeypatch, *, enabled: bool) -> audit.AuditResult:
+    monkeypatch.setattr(parallel, "ENABLED", enabled)
+    monkeypatch.setattr(metrics, "PARALLEL_METRICS_MIN", 2)  # the demo's 37 studies suffice
+    return audit.audit_file(DEMO)
+
+
+@pytest.mark.parametrize("child_fails", [False, True])
+def test_metrics_from_two_processes_equal_one(monkeypatch, child_fails):
+    alone = _audit(monkeypatch, enabled=False)
+    if child_fails:
+        # The parent computes the child's share itself.
+        monkeypatch.setattr(parallel.ChildTask, "_run_child", lambda self: os._exit(1))
+    shared = _audit(monkeypatch, enabled=True)
+    # Equal to the last bits or nearly: a setting shared by few rows is solved directly rather
+    # than read off an interpolant (agreeing to about 1e-11), and halving a group can tip that
+    # choice.
+    pd.testing.assert_frame_equal(shared.metrics, alone.metrics, check_exact=False, rtol=1e-11)
+    pd.testing.assert_frame_equal(shared.notes, alone.notes)
+    pd.testing.assert_frame_equal(shared.findings, alone.findings)
+    _assert_close(shared.to_dict(), alone.to_dict())
+
+
+def test_the_child_really_computes(monkeypatch):
+    # A child that returns wrong numbers must show in the result: the split is in use.
+    real = metrics._design_metrics
+    parent = os.getpid()
+
+    def wrong_in_child(design, rows, positions, notes):
+        out = real(design, rows, positions, notes)
+        if os.getpid() != parent:
+            out["mde"] = np.full(len(rows), -1.0)
+        return out
+
+    monkeypatch.setattr(metrics, "_design_metrics", wrong_in_child)
+    result = _audit(monkeypatch, enabled=True)
+    assert (result.metrics["mde"] == -1.0).any()
+    assert (result.metrics["mde"] != -1.0).any()
+
+
+def test_no_child_without_fork(monkeypatch):
+    monkeypatch.setattr(sys, "platform", "win32")
+    assert not parallel.can_fork()
+    with parallel.ChildTask(lambda out: out.write(b"x")) as task:
+        assert task.result() is None
