@@ -130,7 +130,8 @@ RESULT_COLUMNS = (
 
 @dataclass
 class MetricTable:
-    """Metric columns aligned with the validated table, and notes about null values."""
+    """Metric columns aligned with the validated table, and notes about null values (each
+    row's notes in the order they were made; rows not in order)."""
 
     values: pd.DataFrame
     notes: pd.DataFrame  # columns pos, text
@@ -238,12 +239,6 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
             if metric not in columns:
                 columns[metric] = np.full(n, np.nan)
             columns[metric][positions] = arr
-    notes_frame = notes.frame()
-    # Notes in row order (a row's own notes keep the order they were made in), whichever
-    # process computed which rows.
-    notes_frame = notes_frame.iloc[
-        np.argsort(notes_frame["pos"].to_numpy(), kind="stable")
-    ].reset_index(drop=True)
     values = pd.DataFrame(
         {
             # Text metrics stay object columns with None for "not computed" (a str column
@@ -253,7 +248,7 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
         },
         index=table.index,
     )
-    return MetricTable(values, notes_frame)
+    return MetricTable(values, notes.frame())
 
 
 #: From this many rows the metrics are computed by two processes (audit.parallel).

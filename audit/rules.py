@@ -945,5 +945,8 @@ def evaluate_rules(
         findings = findings.sort_values(["pos", "_order"], kind="stable")
         findings["pos"] = findings["pos"].astype(int)
     findings = findings.drop(columns="_order").reset_index(drop=True)
+    # Text columns as objects, however pandas inferred the parts (an empty part, a part of
+    # one message), so that evaluations of parts of a table concatenate to that of the whole.
+    findings = findings.astype({c: object for c in ("rule", "severity", "message")})
     problem_frame = pd.DataFrame(problems, columns=["rule", "severity", "problem"])
     return Evaluation(findings, problem_frame, waiting)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import copy
 import os
 import sys
 
@@ -10,8 +11,9 @@ import pandas as pd
 import pytest
 
 import audit
-from audit import metrics, parallel
+from audit import metrics, parallel, pipeline
 from audit.resources import bundled_dir
+from audit.rules import Condition, RuleSet, load_rules
 
 DEMO = bundled_dir("demo_data") / "demo_portfolio.csv"
 
@@ -36,10 +38,12 @@ def _assert_close(a: object, b: object, where: str = "") -> None:
         assert a == b, where
 
 
-def _audit(monkeypatch, *, enabled: bool) -> audit.AuditResult:
+def _audit(monkeypatch, *, enabled: bool, rules: RuleSet | None = None) -> audit.AuditResult:
     monkeypatch.setattr(parallel, "ENABLED", enabled)
-    monkeypatch.setattr(metrics, "PARALLEL_METRICS_MIN", 2)  # the demo's 37 studies suffice
-    return audit.audit_file(DEMO)
+    # The demo's 37 studies suffice to exercise the split.
+    monkeypatch.setattr(metrics, "PARALLEL_METRICS_MIN", 2)
+    monkeypatch.setattr(pipeline, "PARALLEL_RULES_MIN", 2)
+    return audit.audit_file(DEMO, rules=rules)
 
 
 @pytest.mark.parametrize("child_fails", [False, True])
@@ -73,6 +77,33 @@ def test_the_child_really_computes(monkeypatch):
     result = _audit(monkeypatch, enabled=True)
     assert (result.metrics["mde"] == -1.0).any()
     assert (result.metrics["mde"] != -1.0).any()
+
+
+class _FailsOnLateRows(Condition):
+    """A rule condition that breaks on an odd number of rows: on the demo's 37, and on one of
+    its halves (18 and 19 rows) only."""
+
+    def evaluate(self, data, params):
+        n = len(data.raw("mde"))
+        if n % 2:
+            raise ZeroDivisionError("boom")
+        return np.ones(n, dtype=bool), np.zeros(n, dtype=bool)
+
+    def names(self):
+        return {"mde"}
+
+
+def test_a_rule_failing_in_one_half_fails_as_a_whole(monkeypatch):
+    rules = load_rules()
+    broken = copy.copy(rules.rules["mde-exceeds-sesoi"])
+    object.__setattr__(broken, "when", _FailsOnLateRows())
+    rules.rules["mde-exceeds-sesoi"] = broken
+    result = _audit(monkeypatch, enabled=True, rules=rules)
+    # In one pass the rule sees all 37 rows and fails; split, it fails on one half only, and
+    # must still report once and flag nothing.
+    assert result.rule_problems["rule"].tolist() == ["mde-exceeds-sesoi"]
+    assert "mde-exceeds-sesoi" not in set(result.findings["rule"])
+    assert len(result.findings)
 
 
 def test_no_child_without_fork(monkeypatch):
