@@ -73,28 +73,30 @@ def encode_numbers(values: np.ndarray, *, integer: bool = False) -> np.ndarray:
     return out
 
 
-def encode_lists(
-    positions: np.ndarray, items: np.ndarray, n: int, start: int = 0, stop: int | None = None
-) -> np.ndarray:
-    """JSON arrays per row ``start..stop`` from a long table: ``items[k]`` (encoded) belongs to
-    row ``positions[k]``; the order of items within a row is kept."""
-    stop = n if stop is None else stop
-    out = np.full(stop - start, _EMPTY_LIST, dtype=object)
-    if not len(positions):
+class RowLists:
+    """JSON arrays per row from a long table: ``items[k]`` (encoded) belongs to row
+    ``positions[k]``. Sorted by row once (stably: the order of a row's items is kept), then
+    cut for any range of rows."""
+
+    def __init__(self, positions: np.ndarray, items: np.ndarray) -> None:
+        order = np.argsort(positions, kind="stable")
+        self._pos = positions[order]
+        self._items = items[order]
+
+    def lists(self, start: int, stop: int) -> np.ndarray:
+        """``[...]`` for each row ``start`` to ``stop`` (``[]`` where a row has no items)."""
+        out = np.full(stop - start, _EMPTY_LIST, dtype=object)
+        lo, hi = np.searchsorted(self._pos, [start, stop])
+        if lo == hi:
+            return out
+        pos, values = self._pos[lo:hi], self._items[lo:hi].tolist()
+        # Rows with items: where each row's run begins and ends in the sorted table.
+        rows, first = np.unique(pos, return_index=True)
+        ends = np.append(first[1:], len(pos)).tolist()
+        out[rows - start] = [
+            b"[" + b",".join(values[a:b]) + b"]" for a, b in zip(first.tolist(), ends, strict=True)
+        ]
         return out
-    order = np.argsort(positions, kind="stable")
-    pos = positions[order]
-    lo, hi = np.searchsorted(pos, [start, stop])
-    if lo == hi:
-        return out
-    pos, values = pos[lo:hi], items[order[lo:hi]].tolist()
-    # Rows with items: where each row's run begins and ends in the sorted table.
-    rows, first = np.unique(pos, return_index=True)
-    ends = np.append(first[1:], len(pos)).tolist()
-    out[rows - start] = [
-        b"[" + b",".join(values[a:b]) + b"]" for a, b in zip(first.tolist(), ends, strict=True)
-    ]
-    return out
 
 
 def _key(name: str, first: bool) -> bytes:
@@ -146,14 +148,17 @@ def study_chunks(
 
     errors = within(result.errors)
     error_pos = errors["pos"].to_numpy(dtype=np.int64)
-    error_texts = encode_objects(_error_sentences(errors))
-    error_details = _encode_records(errors, ("column", "value", "reason"))
+    error_texts = RowLists(error_pos, encode_objects(_error_sentences(errors)))
+    error_details = RowLists(error_pos, _encode_records(errors, ("column", "value", "reason")))
     notes = within(result.notes)
-    note_pos = notes["pos"].to_numpy(dtype=np.int64)
-    note_texts = encode_objects(notes["text"].to_numpy(dtype=object))
+    note_texts = RowLists(
+        notes["pos"].to_numpy(dtype=np.int64), encode_objects(notes["text"].to_numpy(dtype=object))
+    )
     findings = within(result.findings)
-    flag_pos = findings["pos"].to_numpy(dtype=np.int64)
-    flags = _encode_records(findings, ("rule", "severity", "message"))
+    flags = RowLists(
+        findings["pos"].to_numpy(dtype=np.int64),
+        _encode_records(findings, ("rule", "severity", "message")),
+    )
     names = list(result.metrics.columns)
     # Columns as plain arrays once (texts as objects, None where not computed), sliced per chunk.
     columns = {
@@ -178,9 +183,9 @@ def study_chunks(
             (_key("row", False), encode_numbers(rows[start:stop], integer=True)),
             (_key("design", False), encode_objects(designs[start:stop])),
             (_key("status", False), encode_objects(status[start:stop])),
-            (_key("errors", False), encode_lists(error_pos, error_texts, n, start, stop)),
-            (_key("error_details", False), encode_lists(error_pos, error_details, n, start, stop)),
-            (_key("notes", False), encode_lists(note_pos, note_texts, n, start, stop)),
+            (_key("errors", False), error_texts.lists(start, stop)),
+            (_key("error_details", False), error_details.lists(start, stop)),
+            (_key("notes", False), note_texts.lists(start, stop)),
         ]
         for j, name in enumerate(names):
             column = columns[name][start:stop]
@@ -191,7 +196,7 @@ def study_chunks(
             prefix = _key(name, j == 0)
             pieces.append((b',"metrics":' + prefix if j == 0 else prefix, texts))
         flags_key = (b"}" if names else b',"metrics":{}') + _key("flags", False)
-        pieces.append((flags_key, encode_lists(flag_pos, flags, n, start, stop)))
+        pieces.append((flags_key, flags.lists(start, stop)))
         yield b",".join(_join_rows(_grid(pieces, b"}")))
 
 
