@@ -60,18 +60,25 @@ def portfolio(rows: int, suffix: str) -> Path:
 
 
 def run_child(*args: str) -> tuple[float, float, str]:
-    """Run ``python *args`` in a child; returns (wall seconds, peak RSS in MB, stdout)."""
-    start = time.perf_counter()
-    proc = subprocess.Popen(
-        [sys.executable, *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
-    )
-    _, status, usage = os.wait4(proc.pid, 0)
-    wall = time.perf_counter() - start
-    out = proc.stdout.read() if proc.stdout else ""
-    err = proc.stderr.read() if proc.stderr else ""
-    code = os.waitstatus_to_exitcode(status)
-    if code not in (0, 1):
-        raise RuntimeError(f"child {' '.join(args)} failed with status {code}:\n{err}")
+    """Run ``python *args`` in a child; returns (wall seconds, peak RSS in MB, stdout).
+
+    The child's output goes to temporary files, not pipes: a report larger than a pipe's buffer
+    would otherwise block the child while this process waits for it to end.
+    """
+    import tempfile
+
+    with tempfile.TemporaryFile() as out_file, tempfile.TemporaryFile() as err_file:
+        start = time.perf_counter()
+        proc = subprocess.Popen([sys.executable, *args], stdout=out_file, stderr=err_file)
+        _, status, usage = os.wait4(proc.pid, 0)
+        wall = time.perf_counter() - start
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        out_file.seek(0)
+        err_file.seek(0)
+        out = out_file.read().decode("utf-8", "replace")
+        err = err_file.read().decode("utf-8", "replace")
+    if proc.returncode not in (0, 1):
+        raise RuntimeError(f"child {' '.join(args)} failed with status {proc.returncode}:\n{err}")
     # ru_maxrss is in kilobytes on Linux.
     return wall, usage.ru_maxrss / 1024.0, out
 
