@@ -241,7 +241,12 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
     stages = [*STAGES, *(stage for stage, target in exports if target)]
     with _progress(run.path, stages, show=not run.quiet) as progress:
         result = audit_file(
-            run.path, sheet=run.sheet, rules=ruleset, progress=progress, **run.analysis
+            run.path,
+            sheet=run.sheet,
+            rules=ruleset,
+            progress=progress,
+            prepare_json=bool(run.json_out),
+            **run.analysis,
         )
         positions: list[int] = []
         if run.study is not None:

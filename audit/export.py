@@ -140,12 +140,16 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     compact and streamed: studies are encoded a chunk at a time while a second thread writes the
     previous chunk (file writes release the interpreter lock), so memory stays bounded and the
     disk works while the next chunk is encoded. From :data:`PARALLEL_JSON_MIN` studies, where
-    the platform can fork, a child process encodes the second half meanwhile
-    (:class:`audit.parallel.ChildTask`).
+    the platform can fork, a child process encodes the last studies meanwhile
+    (:class:`audit.parallel.ChildTask`); ``audit_file(..., prepare_json=True)`` starts it
+    during the audit already.
     """
     refuse_input(result, path)
     n = len(result.table)
+    prepared, result.prepared_studies = result.prepared_studies, None
     if n <= JSON_INDENT_LIMIT:
+        if prepared is not None:
+            prepared.task.close()
         data = json_bytes(result.to_dict(), indent=True)
         with atomic_output(path, "wb") as handle:
             handle.write(data)
@@ -153,10 +157,13 @@ def write_json(result: AuditResult, path: str | Path) -> None:
         return
     head = json_bytes(result.document_head(), indent=False)
     tail = json_bytes(result.document_tail(), indent=False)
-    # The child takes a little more: this process also writes the file and appends the child's
-    # part to it (a forked child, on the other hand, runs some 25 % slower: its first writes to
-    # memory shared with this process copy pages).
-    half = int(n * PARENT_SHARE) if n >= PARALLEL_JSON_MIN and can_fork() else n
+    if prepared is not None:  # started by the audit (audit_file(..., prepare_json=True))
+        half = prepared.start
+    else:
+        # The child takes a little more: this process also writes the file and appends the
+        # child's part to it (a forked child, on the other hand, runs some 25 % slower: its
+        # first writes to memory shared with this process copy pages).
+        half = int(n * PARENT_SHARE) if n >= PARALLEL_JSON_MIN and can_fork() else n
 
     def second_half() -> Iterator[bytes]:
         for i, part in enumerate(result.study_json(start=half)):
@@ -165,12 +172,13 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     folder = None if str(path) == "-" else Path(path).resolve().parent
     with atomic_output(path, "wb") as handle:
         # The child starts before the writer thread: a forked child has only the forking thread.
-        with (
-            ChildTask(lambda out: out.writelines(second_half()), folder)
-            if half < n
-            else contextlib.nullcontext() as child,
-            _BackgroundWriter(handle) as writer,
-        ):
+        if prepared is not None:
+            started: contextlib.AbstractContextManager = contextlib.closing(prepared.task)
+        elif half < n:
+            started = ChildTask(lambda out: out.writelines(second_half()), folder)
+        else:
+            started = contextlib.nullcontext()
+        with started as child, _BackgroundWriter(handle) as writer:
             writer.write(head[:-1] + b',"studies":[')
             for i, part in enumerate(result.study_json(stop=half)):
                 writer.write((b"," if i else b"") + part)

@@ -63,6 +63,10 @@ class ChildTask:
         self._file: IO[bytes] | None = None
 
     def __enter__(self) -> ChildTask:
+        return self.start()
+
+    def start(self) -> ChildTask:
+        """Fork the child (where possible); :meth:`close` must follow, as ``with`` does."""
         if not can_fork():
             return self
         try:
@@ -109,6 +113,10 @@ class ChildTask:
         return self._file
 
     def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Stop a child still running, and close the file (again: a no-op)."""
         if self._pid:
             with contextlib.suppress(OSError):
                 os.kill(self._pid, signal.SIGKILL)

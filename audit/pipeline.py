@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 import pickle
+import weakref
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -78,6 +79,9 @@ class AuditResult:
         default_factory=lambda: pd.DataFrame(columns=["rule", "severity", "problem"])
     )
     caveats: list[dict[str, str]] = field(default_factory=list)
+    #: JSON text of the studies from ``start`` on, being encoded by a forked child for
+    #: :func:`audit.export.write_json` (set by ``audit_file(..., prepare_json=True)``).
+    prepared_studies: PreparedStudies | None = field(default=None, repr=False, compare=False)
 
     @property
     def valid(self) -> np.ndarray:
@@ -148,6 +152,57 @@ class AuditResult:
         return {**self.document_head(), "studies": studies, **self.document_tail()}
 
 
+@dataclass
+class PreparedStudies:
+    """The studies from ``start`` on, their rules applied and their JSON text encoded by a
+    forked child while this process applies the rules, summarises and encodes the others."""
+
+    start: int
+    task: parallel.ChildTask
+
+
+def _prepare_studies(
+    ruleset: RuleSet,
+    validated: Validated,
+    table: pd.DataFrame,
+    metrics: pd.DataFrame,
+    notes: pd.DataFrame,
+    status: np.ndarray,
+) -> PreparedStudies:
+    """Start a child on the JSON text of the last studies (a share of 1 - PARENT_SHARE).
+
+    The child applies the rules to its rows itself (rules look at one row at a time, so the
+    findings are those of the whole run), then encodes the studies. This process applies the
+    rules to all rows meanwhile, as the report and summary need them; the overlap costs less
+    than waiting. A rule that fails on the child's rows makes the child give up: the parent
+    then encodes those studies from its own findings.
+    """
+    from audit import export
+
+    start = int(len(table) * export.PARENT_SHARE)
+    valid = validated.valid
+
+    def child(out: IO[bytes]) -> None:
+        part = evaluate_rules(ruleset, table.iloc[start:], metrics.iloc[start:], valid[start:])
+        if len(part.problems):
+            raise RuntimeError("a rule failed on the child's rows")
+        view = AuditResult(
+            table=table,
+            metrics=metrics,
+            status=status,
+            errors=validated.failures,
+            notes=notes,
+            findings=part.findings.assign(pos=part.findings["pos"] + start),
+            portfolio={},
+            settings={},
+            raw=validated.raw,
+        )
+        for i, text in enumerate(view.study_json(start=start)):
+            out.write(b"," + text if i else text)
+
+    return PreparedStudies(start, parallel.ChildTask(child).start())
+
+
 #: From this many rows the rules are applied by two processes (see audit.parallel).
 PARALLEL_RULES_MIN = 20_000
 
@@ -212,8 +267,13 @@ def audit_validated(
     continuity_correction: bool = False,
     excess: ExcessSettings = EXCESS_DEFAULTS,
     progress: Progress | None = None,
+    prepare_json: bool = False,
 ) -> AuditResult:
-    """Audit an already validated table (see :func:`audit_table`)."""
+    """Audit an already validated table (see :func:`audit_table`).
+
+    ``prepare_json``: the result is about to be written as JSON (:func:`audit.export.write_json`);
+    for a large portfolio a forked child starts encoding part of it now.
+    """
     ruleset = resolve_rules(rules)
     table = validated.table.copy()
     # The run default applies where a row leaves continuity_correction blank.
@@ -226,10 +286,21 @@ def audit_validated(
     metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
     notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
     notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
-    _announce(progress, "applying rules")
-    evaluation = _evaluate_rules(ruleset, table, metrics, valid)
-    findings = evaluation.findings
     status = np.where(valid, "audited", "invalid").astype(object)
+    _announce(progress, "applying rules")
+    prepared = None
+    if prepare_json and len(table) >= _json_split_min() and parallel.can_fork():
+        prepared = _prepare_studies(ruleset, validated, table, metrics, notes, status)
+        # The child has the second core: the rules run here in one pass.
+        evaluation = evaluate_rules(ruleset, table, metrics, valid)
+        if len(evaluation.problems):
+            # A failing rule reports no findings at all, which the child, seeing only its
+            # rows, cannot know: write_json encodes every study here instead.
+            prepared.task.close()
+            prepared = None
+    else:
+        evaluation = _evaluate_rules(ruleset, table, metrics, valid)
+    findings = evaluation.findings
     _announce(progress, "summarising")
     portfolio = portfolio_summary(
         table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows), excess=excess
@@ -253,7 +324,7 @@ def audit_validated(
         # title rows, merged or repeated headers).
         "input_notes": list(validated.file_notes),
     }
-    return AuditResult(
+    result = AuditResult(
         table=table,
         metrics=metrics,
         status=status,
@@ -268,6 +339,17 @@ def audit_validated(
         rule_problems=evaluation.problems,
         caveats=caveats(metrics, portfolio),
     )
+    if prepared is not None:
+        result.prepared_studies = prepared
+        # Not written after all (an error, a library caller): stop the child with the result.
+        weakref.finalize(result, prepared.task.close)
+    return result
+
+
+def _json_split_min() -> int:
+    from audit import export
+
+    return export.PARALLEL_JSON_MIN
 
 
 def audit_table(
@@ -280,6 +362,7 @@ def audit_table(
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
     progress: Progress | None = None,
+    prepare_json: bool = False,
 ) -> AuditResult:
     """Audit a table of studies given as a DataFrame (one row per study, contract columns).
 
@@ -306,6 +389,9 @@ def audit_table(
         Fewest studies with a result and a power for the test to run (default 5).
     progress
         Called with each stage name of :data:`STAGES` as it starts.
+    prepare_json : bool
+        The result will be written with :func:`audit.export.write_json` straight away: a large
+        portfolio starts part of that work in a forked child (Linux, two or more cores).
 
     Raises
     ------
@@ -322,6 +408,7 @@ def audit_table(
         continuity_correction=continuity_correction,
         excess=excess,
         progress=progress,
+        prepare_json=prepare_json,
     )
 
 
@@ -336,6 +423,7 @@ def audit_file(
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
     progress: Progress | None = None,
+    prepare_json: bool = False,
 ) -> AuditResult:
     """Read and audit a spreadsheet or CSV file (keyword arguments as :func:`audit_table`)."""
     ruleset = resolve_rules(rules)
@@ -350,4 +438,5 @@ def audit_file(
         excess_pooling=excess_pooling,
         excess_min_studies=excess_min_studies,
         progress=progress,
+        prepare_json=prepare_json,
     )

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import json
 import os
 import sys
 
@@ -11,7 +12,7 @@ import pandas as pd
 import pytest
 
 import audit
-from audit import metrics, parallel, pipeline
+from audit import export, metrics, parallel, pipeline
 from audit.resources import bundled_dir
 from audit.rules import Condition, RuleSet, load_rules
 
@@ -111,3 +112,51 @@ def test_no_child_without_fork(monkeypatch):
     assert not parallel.can_fork()
     with parallel.ChildTask(lambda out: out.write(b"x")) as task:
         assert task.result() is None
+
+
+def _json_document(monkeypatch, tmp_path, name, **kwargs) -> dict:
+    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
+    monkeypatch.setattr(export, "PARALLEL_JSON_MIN", 4)
+    result = audit.audit_file(DEMO, **kwargs)
+    path = tmp_path / f"{name}.json"
+    export.write_json(result, path)
+    return json.loads(path.read_text("utf-8"))
+
+
+@pytest.mark.parametrize("trouble", [None, "child fails", "rule fails"])
+def test_json_prepared_during_the_audit_is_the_same_document(monkeypatch, tmp_path, trouble):
+    monkeypatch.setattr(parallel, "ENABLED", False)
+    alone = _json_document(monkeypatch, tmp_path, "alone")
+    monkeypatch.setattr(parallel, "ENABLED", True)
+    rules = None
+    if trouble == "child fails":
+        monkeypatch.setattr(parallel.ChildTask, "_run_child", lambda self: os._exit(1))
+    if trouble == "rule fails":
+        # Fails on the demo's 37 rows but not on the child's share: the child's findings would
+        # keep the rule's flags, so its text must not be used.
+        rules = load_rules()
+        broken = copy.copy(rules.rules["mde-exceeds-sesoi"])
+        object.__setattr__(broken, "when", _FailsOnLateRows())
+        rules.rules["mde-exceeds-sesoi"] = broken
+        alone = _json_document(monkeypatch, tmp_path, "alone-broken", rules=rules)
+    prepared = _json_document(monkeypatch, tmp_path, "prepared", rules=rules, prepare_json=True)
+    _assert_close(prepared, alone)
+
+
+def test_the_prepared_child_really_encodes(monkeypatch, tmp_path):
+    # Wrong text from the child must show: the prepared part is what gets written.
+    real = pipeline.AuditResult.study_json
+    parent = os.getpid()
+
+    def marked(self, chunk=10_000, start=0, stop=None):
+        for text in real(self, chunk, start, stop):
+            yield (
+                text.replace(b'"status":"audited"', b'"status":"from-child"')
+                if (os.getpid() != parent)
+                else text
+            )
+
+    monkeypatch.setattr(pipeline.AuditResult, "study_json", marked)
+    document = _json_document(monkeypatch, tmp_path, "marked", prepare_json=True)
+    statuses = {study["status"] for study in document["studies"]}
+    assert "from-child" in statuses and "audited" in statuses
