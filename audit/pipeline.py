@@ -109,20 +109,26 @@ class AuditResult:
         starts = [0, *ends[:-1]]
         return [values[a:b] for a, b in zip(starts, ends, strict=True)]
 
-    def error_texts(self) -> list[list[str]]:
-        """One sentence per failure: column, value as written, and the reason."""
-        if not len(self.errors):
-            return [[] for _ in range(len(self.table))]
+    def error_sentences(self) -> np.ndarray:
+        """One sentence per failure (row of ``errors``): column, value as written, reason."""
         e = self.errors
+        if not len(e):
+            return np.array([], dtype=object)
+        value = e["value"].astype(str)
         text = (
             e["column"].astype(str)
-            + np.where(
-                e["value"].astype(str) == "", " (blank)", " = '" + e["value"].astype(str) + "'"
-            )
+            + np.where(value == "", " (blank)", " = '" + value + "'")
             + ": "
             + e["reason"].astype(str)
         )
-        return self.by_row(pd.DataFrame({"pos": e["pos"], "text": text}), "text")
+        return text.to_numpy(dtype=object)
+
+    def error_texts(self) -> list[list[str]]:
+        """The failure sentences of each input row (empty for audited rows)."""
+        if not len(self.errors):
+            return [[] for _ in range(len(self.table))]
+        frame = pd.DataFrame({"pos": self.errors["pos"], "text": self.error_sentences()})
+        return self.by_row(frame, "text")
 
     def document_head(self) -> dict[str, Any]:
         """The keys of the JSON document that come before ``studies``."""

@@ -289,9 +289,17 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
     clean_ids = [_text(table["study_id"].iat[i]) for i in clean[:MAX_CLEAN_NAMED]]
 
     bad = np.flatnonzero(~valid)
-    errors = result.error_texts() if len(bad) else []
+    # Sentences for the listed rows only (grouping them for every row costs more at 100k).
+    listed = bad[:limit]
+    listed_errors: dict[int, list[str]] = {int(i): [] for i in listed}
+    if len(listed):
+        keep = result.errors["pos"].isin(listed).to_numpy()
+        sentences = result.error_sentences()[keep]
+        for pos, sentence in zip(result.errors["pos"].to_numpy()[keep], sentences, strict=True):
+            listed_errors[int(pos)].append(sentence)
     invalid_rows = [
-        (int(table["_row"].iat[i]), _text(table["study_id"].iat[i]), errors[i]) for i in bad[:limit]
+        (int(table["_row"].iat[i]), _text(table["study_id"].iat[i]), listed_errors[int(i)])
+        for i in listed
     ]
     return Overview(
         source=str(result.settings.get("source", "")),

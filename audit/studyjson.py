@@ -146,9 +146,10 @@ def study_chunks(
         pos = frame["pos"].to_numpy(dtype=np.int64)
         return frame[(pos >= first) & (pos < last)]
 
-    errors = within(result.errors)
+    in_range = within(result.errors.assign(_sentence=result.error_sentences()))
+    errors = in_range.drop(columns="_sentence")
     error_pos = errors["pos"].to_numpy(dtype=np.int64)
-    error_texts = RowLists(error_pos, encode_objects(_error_sentences(errors)))
+    error_texts = RowLists(error_pos, encode_objects(in_range["_sentence"].to_numpy(dtype=object)))
     error_details = RowLists(error_pos, _encode_records(errors, ("column", "value", "reason")))
     notes = within(result.notes)
     note_texts = RowLists(
@@ -198,20 +199,6 @@ def study_chunks(
         flags_key = (b"}" if names else b',"metrics":{}') + _key("flags", False)
         pieces.append((flags_key, flags.lists(start, stop)))
         yield b",".join(_join_rows(_grid(pieces, b"}")))
-
-
-def _error_sentences(errors: pd.DataFrame) -> np.ndarray:
-    """One sentence per failure: column, value as written, and the reason."""
-    if not len(errors):
-        return np.array([], dtype=object)
-    value = errors["value"].astype(str)
-    text = (
-        errors["column"].astype(str)
-        + np.where(value == "", " (blank)", " = '" + value + "'")
-        + ": "
-        + errors["reason"].astype(str)
-    )
-    return text.to_numpy(dtype=object)
 
 
 def _encode_records(frame: pd.DataFrame, keys: tuple[str, ...]) -> np.ndarray:
