@@ -8,6 +8,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import math
 import pickle
 import weakref
@@ -295,60 +296,64 @@ def audit_validated(
     status = np.where(valid, "audited", "invalid").astype(object)
     _announce(progress, "applying rules")
     prepared = None
-    if prepare_json and len(table) >= _json_split_min() and parallel.can_fork():
-        prepared = _prepare_studies(ruleset, validated, table, metrics, notes, status)
-        # The child has the second core: the rules run here in one pass.
-        evaluation = evaluate_rules(ruleset, table, metrics, valid)
-        if len(evaluation.problems):
-            # A failing rule reports no findings at all, which the child, seeing only its
-            # rows, cannot know: write_json encodes every study here instead.
-            prepared.task.close()
-            prepared = None
-    else:
-        evaluation = _evaluate_rules(ruleset, table, metrics, valid)
-    findings = evaluation.findings
-    _announce(progress, "summarising")
-    portfolio = portfolio_summary(
-        table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows), excess=excess
-    )
-    enabled = ruleset.enabled()
-    settings = {
-        "rules": [r.id for r in enabled],
-        "rules_disabled": [r.id for r in ruleset.rules.values() if not r.enabled],
-        "rules_waiting": evaluation.waiting,
-        "rule_parameters": {r.id: r.param_values() for r in enabled if r.parameters},
-        "rule_files": list(ruleset.files),
-        "rule_problems": evaluation.problems.to_dict("records"),
-        "target_power_default": 0.8,
-        "alpha_default": 0.05,
-        "continuity_correction_default": bool(continuity_correction),
-        "source": validated.raw.source,
-        "sheet": validated.raw.sheet,
-        "excess_significance": excess.as_dict(),
-        "header_row": validated.raw.header_row,
-        # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
-        # title rows, merged or repeated headers).
-        "input_notes": list(validated.file_notes),
-    }
-    result = AuditResult(
-        table=table,
-        metrics=metrics,
-        status=status,
-        errors=validated.failures,
-        notes=notes,
-        findings=findings,
-        portfolio=portfolio,
-        settings=settings,
-        raw=validated.raw,
-        rules=enabled,
-        rules_waiting=evaluation.waiting,
-        rule_problems=evaluation.problems,
-        caveats=caveats(metrics, portfolio),
-    )
-    if prepared is not None:
-        result.prepared_studies = prepared
-        # Not written after all (an error, a library caller): stop the child with the result.
-        weakref.finalize(result, prepared.task.close)
+    with contextlib.ExitStack() as cleanup:
+        if prepare_json and len(table) >= _json_split_min() and parallel.can_fork():
+            prepared = _prepare_studies(ruleset, validated, table, metrics, notes, status)
+            # Stopped if anything below fails (an interrupted run leaves no child behind).
+            cleanup.callback(prepared.task.close)
+            # The child has the second core: the rules run here in one pass.
+            evaluation = evaluate_rules(ruleset, table, metrics, valid)
+            if len(evaluation.problems):
+                # A failing rule reports no findings at all, which the child, seeing only its
+                # rows, cannot know: write_json encodes every study here instead.
+                prepared.task.close()
+                prepared = None
+        else:
+            evaluation = _evaluate_rules(ruleset, table, metrics, valid)
+        findings = evaluation.findings
+        _announce(progress, "summarising")
+        portfolio = portfolio_summary(
+            table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows), excess=excess
+        )
+        enabled = ruleset.enabled()
+        settings = {
+            "rules": [r.id for r in enabled],
+            "rules_disabled": [r.id for r in ruleset.rules.values() if not r.enabled],
+            "rules_waiting": evaluation.waiting,
+            "rule_parameters": {r.id: r.param_values() for r in enabled if r.parameters},
+            "rule_files": list(ruleset.files),
+            "rule_problems": evaluation.problems.to_dict("records"),
+            "target_power_default": 0.8,
+            "alpha_default": 0.05,
+            "continuity_correction_default": bool(continuity_correction),
+            "source": validated.raw.source,
+            "sheet": validated.raw.sheet,
+            "excess_significance": excess.as_dict(),
+            "header_row": validated.raw.header_row,
+            # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
+            # title rows, merged or repeated headers).
+            "input_notes": list(validated.file_notes),
+        }
+        result = AuditResult(
+            table=table,
+            metrics=metrics,
+            status=status,
+            errors=validated.failures,
+            notes=notes,
+            findings=findings,
+            portfolio=portfolio,
+            settings=settings,
+            raw=validated.raw,
+            rules=enabled,
+            rules_waiting=evaluation.waiting,
+            rule_problems=evaluation.problems,
+            caveats=caveats(metrics, portfolio),
+        )
+        if prepared is not None:
+            result.prepared_studies = prepared
+            # Not written after all (a library caller): stop the child with the result.
+            weakref.finalize(result, prepared.task.close)
+            cleanup.pop_all()
     return result
 
 

@@ -160,3 +160,24 @@ def test_the_prepared_child_really_encodes(monkeypatch, tmp_path):
     document = _json_document(monkeypatch, tmp_path, "marked", prepare_json=True)
     statuses = {study["status"] for study in document["studies"]}
     assert "from-child" in statuses and "audited" in statuses
+
+
+def test_an_audit_that_fails_stops_its_json_child(monkeypatch):
+    monkeypatch.setattr(export, "PARALLEL_JSON_MIN", 4)
+    closed = []
+    real_close = parallel.ChildTask.close
+
+    def close(self):
+        closed.append(self._pid)
+        real_close(self)
+
+    def broken_summary(*args, **kwargs):
+        raise RuntimeError("summary failed")
+
+    monkeypatch.setattr(parallel.ChildTask, "close", close)
+    monkeypatch.setattr(pipeline, "portfolio_summary", broken_summary)
+    with pytest.raises(RuntimeError, match="summary failed"):
+        audit.audit_file(DEMO, prepare_json=True)
+    assert closed and closed[0] > 0  # the child was running, and was stopped
+    with pytest.raises(ChildProcessError):
+        os.waitpid(-1, os.WNOHANG)  # and reaped: no child left
