@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import contextlib
 import math
-import pickle
 import weakref
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -26,7 +25,7 @@ from audit.errors import ConfigError
 from audit.metrics import METRICS, compute_metrics
 from audit.portfolio import EXCESS_DEFAULTS, ExcessSettings, portfolio_summary
 from audit.read import RawTable, raw_from_frame, read_table
-from audit.rules import Evaluation, Rule, RuleSet, evaluate_rules, resolve_rules
+from audit.rules import Rule, RuleSet, evaluate_rules, resolve_rules
 from audit.schema import Validated, validate
 
 __all__ = ["STAGES", "AuditResult", "audit_file", "audit_table"]
@@ -210,43 +209,6 @@ def _prepare_studies(
     return PreparedStudies(start, parallel.ChildTask(child).start())
 
 
-#: From this many rows the rules are applied by two processes (see audit.parallel).
-PARALLEL_RULES_MIN = 20_000
-
-
-def _evaluate_rules(
-    ruleset: RuleSet, table: pd.DataFrame, metrics: pd.DataFrame, valid: np.ndarray
-) -> Evaluation:
-    """:func:`audit.rules.evaluate_rules`, for a large portfolio in two halves of rows, the second
-    in a forked child (rules look at one row at a time, so the halves are independent)."""
-    n = len(table)
-    if n < PARALLEL_RULES_MIN or not parallel.can_fork():
-        return evaluate_rules(ruleset, table, metrics, valid)
-    half = n // 2
-
-    def rows(start: int, stop: int) -> Evaluation:
-        return evaluate_rules(
-            ruleset, table.iloc[start:stop], metrics.iloc[start:stop], valid[start:stop]
-        )
-
-    def child(out: IO[bytes]) -> None:
-        pickle.dump(rows(half, n), out, protocol=pickle.HIGHEST_PROTOCOL)
-
-    with parallel.ChildTask(child) as task:
-        first = rows(0, half)
-        found = task.result()
-        second = pickle.load(found) if found is not None else rows(half, n)
-    problems = pd.concat([first.problems, second.problems], ignore_index=True)
-    problems = problems.drop_duplicates("rule").reset_index(drop=True)
-    findings = pd.concat(
-        [first.findings, second.findings.assign(pos=second.findings["pos"] + half)],
-        ignore_index=True,
-    )
-    # A rule that failed on either half reports no findings at all, as in one pass.
-    findings = findings[~findings["rule"].isin(problems["rule"]).to_numpy()].reset_index(drop=True)
-    return Evaluation(findings, problems, {**second.waiting, **first.waiting})
-
-
 def _jsonable(value: Any) -> Any:
     if isinstance(value, dict):
         return {str(k): _jsonable(v) for k, v in value.items()}
@@ -301,7 +263,6 @@ def audit_validated(
             prepared = _prepare_studies(ruleset, validated, table, metrics, notes, status)
             # Stopped if anything below fails (an interrupted run leaves no child behind).
             cleanup.callback(prepared.task.close)
-            # The child has the second core: the rules run here in one pass.
             evaluation = evaluate_rules(ruleset, table, metrics, valid)
             if len(evaluation.problems):
                 # A failing rule reports no findings at all, which the child, seeing only its
@@ -309,7 +270,7 @@ def audit_validated(
                 prepared.task.close()
                 prepared = None
         else:
-            evaluation = _evaluate_rules(ruleset, table, metrics, valid)
+            evaluation = evaluate_rules(ruleset, table, metrics, valid)
         findings = evaluation.findings
         _announce(progress, "summarising")
         portfolio = portfolio_summary(
