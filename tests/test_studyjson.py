@@ -18,7 +18,7 @@ import pytest
 import audit
 from audit import export, parallel
 from audit.resources import bundled_dir
-from audit.studyjson import INTEGER_METRICS, encode_numbers, study_chunks
+from audit.studyjson import INTEGER_METRICS, encode_numbers, encode_objects, study_chunks
 
 DEMO = bundled_dir("demo_data") / "demo_portfolio.csv"
 
@@ -120,6 +120,29 @@ def test_numbers_keep_their_double_and_sizes_are_integers():
     assert sizes[7] == 1352 and isinstance(sizes[7], int)
     # Beyond the 64-bit range a size is the double it was computed as, in exponent form.
     assert sizes[8] == pytest.approx(2.0**70) and b"e" in encode_numbers(x, integer=True)[8]
+
+
+@pytest.mark.parametrize(
+    "values",
+    [
+        ["a", "b,c", "", "d\\", "\u00e9\u4e2d", "x\x00y", "line\nbreak", "a]", "[b"],  # no quote
+        ['say "hi"', 'a",', '","', '\\"', "plain"],  # quotes: each encoded on its own
+        ["a", None, "b", float("nan"), "a"],  # missing values: null
+        ["only"],
+        [""],
+        ["a", 3, "b"],  # not all texts
+        [],
+    ],
+)
+def test_encoded_texts_are_each_values_own_json(values):
+    # Reference: the standard library's json module, one value at a time (nan as null).
+    expected = [
+        "null" if v is None or (isinstance(v, float) and math.isnan(v)) else json.dumps(v)
+        for v in values
+    ]
+    got = encode_objects(np.array(values, dtype=object))
+    assert len(got) == len(values)
+    assert [json.loads(t) for t in got] == [json.loads(t) for t in expected]
 
 
 def test_an_astronomical_required_size_is_written(tmp_path):
