@@ -522,11 +522,8 @@ def _ole_message(path: Path) -> str:
     )
 
 
-def _check_archive(path: Path, archive: zipfile.ZipFile) -> dict[str, bool]:
-    """Refuse a workbook archive whose declared sizes or contents are hostile.
-
-    Returns, for each XML part, whether it holds a formula, a hidden row or a merged range
-    (see :func:`_fast_worksheet`), found in the same pass.
+def _check_sizes(path: Path, archive: zipfile.ZipFile) -> None:
+    """Refuse an archive whose declared sizes are hostile, or that is no .xlsx workbook.
 
     The sizes checked are those the zip directory declares. Python's zipfile never inflates a
     part beyond its declared size (a part that tries fails its CRC check), so a check of the
@@ -559,8 +556,13 @@ def _check_archive(path: Path, archive: zipfile.ZipFile) -> dict[str, bool]:
         raise InputError(
             f"{path}: {kind}, not an .xlsx workbook; save it as .xlsx or .csv and try again."
         )
+
+
+def _scan_archive(path: Path, archive: zipfile.ZipFile) -> dict[str, bool]:
+    """Refuse a part that declares a document type; per XML part, whether it is special (a
+    formula, a hidden row or a merged range)."""
     special: dict[str, bool] = {}
-    for info in infos:
+    for info in archive.infolist():
         if not info.filename.endswith((".xml", ".rels", ".vml")):
             continue
         dtd, special[info.filename] = _scan_part(archive, info)
@@ -593,9 +595,12 @@ def _scan_part(archive: zipfile.ZipFile, info: zipfile.ZipInfo) -> tuple[bool, b
 
 
 def _read_xlsx(path: Path, sheet: str | None) -> _Sheet:
-    """Cells of one worksheet, after the archive checks; see :func:`_check_archive`."""
-    from openpyxl import load_workbook
+    """Cells of one worksheet, after the checks of :func:`_check_sizes` and :func:`_scan_archive`.
 
+    A large worksheet is parsed by calamine in a thread (it releases the interpreter lock)
+    while this thread scans the archive's XML; the parse is used only if the scan passes and
+    finds the sheet plain (see :func:`_fast_worksheet`).
+    """
     with path.open("rb") as handle:
         try:
             archive = zipfile.ZipFile(handle)
@@ -605,8 +610,11 @@ def _read_xlsx(path: Path, sheet: str | None) -> _Sheet:
                 "spreadsheet program."
             ) from exc
         with archive:
+            early = _EarlyParse()
             try:
-                special = _check_archive(path, archive)
+                _check_sizes(path, archive)
+                with early.start(path, archive, sheet):
+                    special = _scan_archive(path, archive)
             except (
                 zipfile.BadZipFile,
                 zipfile.LargeZipFile,
@@ -620,9 +628,11 @@ def _read_xlsx(path: Path, sheet: str | None) -> _Sheet:
                 raise InputError(
                     f"{path}: the workbook is damaged or truncated ({exc}); save it again."
                 ) from exc
-            fast = _fast_worksheet(path, archive, sheet, special)
+            fast = _fast_worksheet(path, archive, sheet, special, early)
         if fast is not None:
             return fast
+        from openpyxl import load_workbook
+
         handle.seek(0)
         try:
             with warnings.catch_warnings():
@@ -791,8 +801,88 @@ def _sheet_parts(archive: zipfile.ZipFile) -> list[tuple[str, str, str]]:
     return out
 
 
+def _large_sheet(
+    path: Path, archive: zipfile.ZipFile, sheet: str | None
+) -> tuple[str, str, list[str]] | None:
+    """(name, part path, notes) of the worksheet to read if its XML is large enough for
+    calamine (:data:`FAST_READ_MIN_BYTES`), else None."""
+    parts = _sheet_parts(archive)
+    names = [name for name, _, _ in parts]
+    index, notes = _choose_sheet(path, names, [state for _, state, _ in parts], sheet)
+    name, _, part = parts[index]
+    if archive.getinfo(part).file_size < FAST_READ_MIN_BYTES:
+        return None
+    return name, part, notes
+
+
+def _calamine_rows(path: Path, name: str) -> list[list[object]]:
+    """All rows of the worksheet ``name``, as calamine reads them."""
+    import python_calamine
+
+    workbook = python_calamine.CalamineWorkbook.from_path(str(path))
+    try:
+        return workbook.get_sheet_by_name(name).to_python(skip_empty_area=False)
+    finally:
+        workbook.close()
+
+
+class _EarlyParse:
+    """calamine's parse of a large worksheet, run in a thread while the archive is scanned.
+
+    Started only after the declared sizes passed (:func:`_check_sizes`); calamine does not
+    expand XML entities, so a part the scan then refuses has done no harm. Anything unusual
+    (no calamine, a sheet that cannot be chosen) starts nothing, and :func:`_fast_worksheet`
+    decides again after the scan, as it would without this.
+    """
+
+    def __init__(self) -> None:
+        self.target: tuple[str, str, list[str]] | None = None
+        self.ready = False  # target is the answer of _large_sheet
+        self._rows: list[list[object]] | None = None
+        self._error: BaseException | None = None
+        self._thread: object = None
+
+    @contextlib.contextmanager
+    def start(self, path: Path, archive: zipfile.ZipFile, sheet: str | None) -> Iterator[None]:
+        """Start the parse (where it applies); wait for it on exit."""
+        import threading
+
+        try:
+            import python_calamine  # noqa: F401
+
+            self.target, self.ready = _large_sheet(path, archive, sheet), True
+        except Exception:  # decided again after the scan, with errors reported then
+            self.target, self.ready = None, False
+        thread = None
+        if self.target is not None:
+            thread = threading.Thread(target=self._parse, args=(path, self.target[0]), daemon=True)
+            thread.start()
+        try:
+            yield
+        finally:
+            if thread is not None:
+                thread.join()
+
+    def _parse(self, path: Path, name: str) -> None:
+        try:
+            self._rows = _calamine_rows(path, name)
+        except BaseException as exc:  # reported as "no fast read" (the careful path decides)
+            self._error = exc
+
+    def rows(self) -> list[list[object]]:
+        """The parsed rows; the parse's exception if it failed."""
+        if self._error is not None:
+            raise self._error
+        assert self._rows is not None
+        return self._rows
+
+
 def _fast_worksheet(
-    path: Path, archive: zipfile.ZipFile, sheet: str | None, special: dict[str, bool]
+    path: Path,
+    archive: zipfile.ZipFile,
+    sheet: str | None,
+    special: dict[str, bool],
+    early: _EarlyParse | None = None,
 ) -> _Sheet | None:
     """Rows of a large, plain worksheet read by calamine (a Rust reader), or None.
 
@@ -803,24 +893,20 @@ def _fast_worksheet(
     (checked on the XML first): those are what the openpyxl path reports on (a formula without
     a saved value, hidden rows, merges), so a sheet without them reads the same either way. The
     archive has passed the safety checks before (size, ratio, no DTD), and calamine does not
-    expand XML entities in any case. Anything unexpected falls back on the openpyxl path.
+    expand XML entities in any case. ``early``: the parse already started during the checks
+    (:class:`_EarlyParse`). Anything unexpected falls back on the openpyxl path.
     """
     try:
-        import python_calamine
+        import python_calamine  # noqa: F401
     except ImportError:  # an installation without it reads with openpyxl, only slower
         return None
     try:
-        parts = _sheet_parts(archive)
-        names = [name for name, _, _ in parts]
-        index, notes = _choose_sheet(path, names, [state for _, state, _ in parts], sheet)
-        part = parts[index][2]
-        if archive.getinfo(part).file_size < FAST_READ_MIN_BYTES or special.get(part, True):
+        started = early is not None and early.ready
+        target = early.target if started else _large_sheet(path, archive, sheet)
+        if target is None or special.get(target[1], True):
             return None
-        workbook = python_calamine.CalamineWorkbook.from_path(str(path))
-        try:
-            rows = workbook.get_sheet_by_name(names[index]).to_python(skip_empty_area=False)
-        finally:
-            workbook.close()
+        name, _, notes = target
+        rows = early.rows() if started else _calamine_rows(path, name)
     except InputError:
         raise
     except Exception:  # an unusual workbook: the careful path reads it or says why not
@@ -831,7 +917,7 @@ def _fast_worksheet(
         raise InputError(_too_many_columns(path, width))
     if len(rows) > MAX_ROWS + HEADER_SEARCH_ROWS:
         raise InputError(_too_many_rows(path))
-    return _Sheet(rows, list(range(1, len(rows) + 1)), notes=notes, name=names[index])
+    return _Sheet(rows, list(range(1, len(rows) + 1)), notes=notes, name=name)
 
 
 def _range_bounds(ref: str) -> tuple[int, int, int, int] | None:

@@ -118,10 +118,47 @@ def test_entities_refused_by_defusedxml_too(corpus, monkeypatch):
     import audit.read as read
 
     assert openpyxl.DEFUSEDXML is True
-    monkeypatch.setattr(read, "_check_archive", lambda path, archive: None)
+    monkeypatch.setattr(read, "_scan_archive", lambda path, archive: {})
     for name in ("entity_expansion.xlsx", "external_entity.xlsx"):
         with pytest.raises(InputError, match="XML entities or external references; refused"):
             read_table(corpus[name])
+
+
+def _read_outcome(path: Path) -> tuple:
+    """What reading ``path`` gives: the error sentence, or the typed table in plain text."""
+    from audit.schema import validate
+
+    try:
+        raw = read_table(path)
+        typed = validate(raw).table
+    except InputError as exc:
+        return ("refused", str(exc))
+    typed = typed.astype(object).where(lambda t: t.notna(), "")
+    return ("read", raw.sheet, list(raw.rows), list(raw.notes), typed.astype(str).values.tolist())
+
+
+def test_every_workbook_reads_the_same_when_calamine_may_read_it(corpus, monkeypatch):
+    # With the size threshold at zero, calamine parses every workbook in a thread while the
+    # archive is scanned; the outcome must not change: hostile files are still refused with
+    # the same sentence, and sheets with formulas, hidden rows or merges still take the
+    # careful path.
+    import audit.read as read
+
+    books = sorted(name for name in corpus if name.endswith(".xlsx"))
+    careful = {name: _read_outcome(corpus[name]) for name in books}
+    monkeypatch.setattr(read, "FAST_READ_MIN_BYTES", 0)
+    parsed = []
+    original = read._calamine_rows
+
+    def spy(path: Path, name: str) -> list:
+        parsed.append(path.name)
+        return original(path, name)
+
+    monkeypatch.setattr(read, "_calamine_rows", spy)
+    for name in books:
+        assert _read_outcome(corpus[name]) == careful[name], name
+    # calamine did parse, the hostile files among them (refused after the scan all the same).
+    assert {"stray_blanks.xlsx", "entity_expansion.xlsx", "hidden_rows.xlsx"} <= set(parsed)
 
 
 def test_sheet_option(corpus, tmp_path, capsys):
