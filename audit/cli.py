@@ -248,6 +248,10 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
             prepare_json=bool(run.json_out),
             **run.analysis,
         )
+        report_text = None
+        if not run.quiet and run.study is None and result.prepared_studies is not None:
+            # The report is rendered while a child still encodes JSON; shown after the exports.
+            report_text = _rendered_report(result, to_stdout, run.fail_on)
         positions: list[int] = []
         if run.study is not None:
             positions = result.positions_of(run.study)
@@ -291,11 +295,24 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
             render_report(result, plain, fail_on=run.fail_on)
     if not run.quiet:
         console = make_console(stderr=to_stdout)
-        if run.study is not None:
+        if report_text is not None:
+            console.file.write(report_text)
+            console.file.flush()
+        elif run.study is not None:
             render_study(result, console, positions)
         else:
             render_report(result, console, fail_on=run.fail_on)
     return exit_status(result, run.fail_on), result
+
+
+def _rendered_report(result: AuditResult, to_stdout: bool, fail_on: str | None) -> str:
+    """The terminal report as the console would print it (styles included), not yet shown."""
+    from audit.report import make_console, render_report
+
+    console = make_console(stderr=to_stdout)
+    with console.capture() as capture:
+        render_report(result, console, fail_on=fail_on)
+    return capture.get()
 
 
 class _NoProgress:

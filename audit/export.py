@@ -150,7 +150,7 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     prepared, result.prepared_studies = result.prepared_studies, None
     if n <= JSON_INDENT_LIMIT:
         if prepared is not None:
-            prepared.task.close()
+            prepared.close()
         data = json_bytes(result.to_dict(), indent=True)
         with atomic_output(path, "wb") as handle:
             handle.write(data)
@@ -173,16 +173,21 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     folder = None if str(path) == "-" else Path(path).resolve().parent
     with atomic_output(path, "wb") as handle:
         # The child starts before the writer thread: a forked child has only the forking thread.
+        own = None
         if prepared is not None:
-            started: contextlib.AbstractContextManager = contextlib.closing(prepared.task)
+            started: contextlib.AbstractContextManager = contextlib.closing(prepared)
+            child, own = prepared.task, prepared.own
         elif half < n:
-            started = ChildTask(lambda out: out.writelines(second_half()), folder)
+            started = child = ChildTask(lambda out: out.writelines(second_half()), folder)
         else:
             started = contextlib.nullcontext()
-        with started as child, _BackgroundWriter(handle) as writer:
+        with started, _BackgroundWriter(handle) as writer:
             writer.write(head[:-1] + b',"studies":[')
-            for i, part in enumerate(result.study_json(stop=half)):
-                writer.write((b"," if i else b"") + part)
+            if own is not None:  # encoded by the audit already
+                writer.write(lambda handle: _append_file(handle, own))
+            else:
+                for i, part in enumerate(result.study_json(stop=half)):
+                    writer.write((b"," if i else b"") + part)
             if half < n:
                 writer.write(b",")
                 done = child.result()

@@ -28,11 +28,11 @@ import signal
 import sys
 import tempfile
 import warnings
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import IO
 
-__all__ = ["ChildTask", "can_fork"]
+__all__ = ["ChildTask", "can_fork", "suspended"]
 
 #: Set to False to keep every stage in one process (tests use it to compare the two ways).
 ENABLED = True
@@ -54,13 +54,40 @@ class ChildTask:
     Use as a context manager: the child starts on entry; :meth:`result` waits for it and gives
     the file, rewound, or None if there was no child or it failed. On exit a child still running
     (the parent failed first) is stopped, and the file is closed.
+
+    With ``parts=2`` the child writes two results: ``work(first, second, handover)`` calls
+    ``handover()`` once ``first`` is complete, and :meth:`first` gives that file as soon as it is
+    (the child goes on with ``second``, which :meth:`result` gives at the end).
+
+    >>> def work(first, second, handover):
+    ...     first.write(b"early")
+    ...     handover()
+    ...     second.write(b"late")
+    >>> with ChildTask(work, parts=2) as task:
+    ...     early, late = task.first(), task.result()
+    ...     texts = (early.read(), late.read()) if early and late else (b"early", b"late")
+    >>> texts
+    (b'early', b'late')
     """
 
-    def __init__(self, work: Callable[[IO[bytes]], None], folder: str | Path | None = None):
+    def __init__(
+        self,
+        work: Callable[..., None],
+        folder: str | Path | None = None,
+        *,
+        parts: int = 1,
+    ):
+        if parts not in (1, 2):
+            raise ValueError("a child task has one or two parts")
         self._work = work
         self._folder = folder
+        self._parts = parts
         self._pid = 0
-        self._file: IO[bytes] | None = None
+        self._status: int | None = None  # the child's exit code, once waited for
+        self._files: list[IO[bytes]] = []
+        self._signal = -1  # read end of the pipe on which the child hands the first part over
+        self._handed = False
+        self._handover_end = -1  # the child's write end of that pipe
 
     def __enter__(self) -> ChildTask:
         return self.start()
@@ -69,8 +96,11 @@ class ChildTask:
         """Fork the child (where possible); :meth:`close` must follow, as ``with`` does."""
         if not can_fork():
             return self
+        write_end = -1
         try:
-            self._file = tempfile.TemporaryFile(dir=self._folder)
+            self._files = [tempfile.TemporaryFile(dir=self._folder) for _ in range(self._parts)]
+            if self._parts == 2:
+                self._signal, write_end = os.pipe()
             # The cycle collector writes to every object it examines, and each write copies a
             # shared page: the objects existing now are left out of its passes while the child
             # runs (gc.freeze), and the child, which lives for one task, does not collect.
@@ -84,39 +114,74 @@ class ChildTask:
         except OSError:
             self._pid = 0
             gc.unfreeze()
+            for end in (self._signal, write_end):
+                if end >= 0:
+                    os.close(end)
+            self._signal = -1
             return self
         if self._pid == 0:
             gc.disable()
+            self._handover_end = write_end
             self._run_child()
+        if write_end >= 0:
+            os.close(write_end)
         return self
 
     def _run_child(self) -> None:
         status = 1
         try:
-            assert self._file is not None
-            self._work(self._file)
-            self._file.flush()
+            if self._parts == 1:
+                self._work(self._files[0])
+            else:
+                os.close(self._signal)
+
+                def handover() -> None:
+                    self._files[0].flush()
+                    os.write(self._handover_end, b"1")
+
+                self._work(*self._files, handover)
+            for file in self._files:
+                file.flush()
             status = 0
         finally:
             os._exit(status)
 
+    def first(self) -> IO[bytes] | None:
+        """With ``parts=2``: the first file, rewound, once the child has handed it over (the
+        child may still be running); None if there was no child or it ended without."""
+        if self._parts != 2 or not self._files:
+            return None
+        if not self._handed and self._signal >= 0:
+            try:
+                self._handed = os.read(self._signal, 1) == b"1"  # b"": the child ended first
+            except OSError:
+                self._handed = False
+            os.close(self._signal)
+            self._signal = -1
+        if not self._handed:
+            return None
+        self._files[0].seek(0)
+        return self._files[0]
+
     def result(self) -> IO[bytes] | None:
-        """The child's file, rewound, if it finished successfully; else None."""
-        if not self._pid or self._file is None:
+        """The child's (last) file, rewound, if it finished successfully; else None."""
+        if not self._files:
             return None
-        pid, self._pid = self._pid, 0
-        _, status = os.waitpid(pid, 0)
-        gc.unfreeze()
-        if os.waitstatus_to_exitcode(status) != 0:
+        if self._pid:
+            pid, self._pid = self._pid, 0
+            _, status = os.waitpid(pid, 0)
+            gc.unfreeze()
+            self._status = os.waitstatus_to_exitcode(status)
+        if self._status != 0:
             return None
-        self._file.seek(0)
-        return self._file
+        self._files[-1].seek(0)
+        return self._files[-1]
 
     def __exit__(self, *exc: object) -> None:
         self.close()
 
     def close(self) -> None:
-        """Stop a child still running, and close the file (again: a no-op)."""
+        """Stop a child still running, and close the files (again: a no-op)."""
         if self._pid:
             with contextlib.suppress(OSError):
                 os.kill(self._pid, signal.SIGKILL)
@@ -124,5 +189,20 @@ class ChildTask:
                 os.waitpid(self._pid, 0)
             self._pid = 0
             gc.unfreeze()
-        if self._file is not None:
-            self._file.close()
+        if self._signal >= 0:
+            os.close(self._signal)
+            self._signal = -1
+        for file in self._files:
+            file.close()
+
+
+@contextlib.contextmanager
+def suspended() -> Iterator[None]:
+    """No new child within (a process already sharing the cores with one does all its work
+    itself)."""
+    global ENABLED
+    before, ENABLED = ENABLED, False
+    try:
+        yield
+    finally:
+        ENABLED = before

@@ -9,7 +9,10 @@
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import math
+import pickle
+import tempfile
 import weakref
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -25,8 +28,8 @@ from audit.errors import ConfigError
 from audit.metrics import METRICS, compute_metrics
 from audit.portfolio import EXCESS_DEFAULTS, ExcessSettings, portfolio_summary
 from audit.read import RawTable, raw_from_frame, read_table
-from audit.rules import Rule, RuleSet, evaluate_rules, resolve_rules
-from audit.schema import Validated, validate
+from audit.rules import Evaluation, Rule, RuleSet, evaluate_rules, resolve_rules
+from audit.schema import Validated, WholeTable, study_ids, validate
 
 __all__ = ["STAGES", "AuditResult", "audit_file", "audit_table"]
 
@@ -160,11 +163,19 @@ class AuditResult:
 
 @dataclass
 class PreparedStudies:
-    """The studies from ``start`` on, their rules applied and their JSON text encoded by a
-    forked child while this process applies the rules, summarises and encodes the others."""
+    """JSON text of studies encoded during the audit, for :func:`audit.export.write_json`: the
+    studies from ``start`` on by a forked child (``task.result()``; None if it failed), and,
+    where ``own`` is given, those before ``start``, encoded by this process into that file."""
 
     start: int
     task: parallel.ChildTask
+    own: IO[bytes] | None = None
+
+    def close(self) -> None:
+        """Stop the child if it still runs, and drop the text (again: a no-op)."""
+        self.task.close()
+        if self.own is not None:
+            self.own.close()
 
 
 def _prepare_studies(
@@ -244,18 +255,8 @@ def audit_validated(
     for a large portfolio a forked child starts encoding part of it now.
     """
     ruleset = resolve_rules(rules)
-    table = validated.table.copy()
-    # The run default applies where a row leaves continuity_correction blank.
-    table["continuity_correction"] = table["continuity_correction"].fillna(
-        1.0 if continuity_correction else 0.0
-    )
+    table, metrics, notes, status = _metrics_of(validated, continuity_correction, progress)
     valid = validated.valid
-    _announce(progress, "computing metrics")
-    computed = compute_metrics(table, valid)
-    metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
-    notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
-    notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
-    status = np.where(valid, "audited", "invalid").astype(object)
     _announce(progress, "applying rules")
     prepared = None
     with contextlib.ExitStack() as cleanup:
@@ -271,44 +272,17 @@ def audit_validated(
                 prepared = None
         else:
             evaluation = evaluate_rules(ruleset, table, metrics, valid)
-        findings = evaluation.findings
-        _announce(progress, "summarising")
-        portfolio = portfolio_summary(
-            table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows), excess=excess
-        )
-        enabled = ruleset.enabled()
-        settings = {
-            "rules": [r.id for r in enabled],
-            "rules_disabled": [r.id for r in ruleset.rules.values() if not r.enabled],
-            "rules_waiting": evaluation.waiting,
-            "rule_parameters": {r.id: r.param_values() for r in enabled if r.parameters},
-            "rule_files": list(ruleset.files),
-            "rule_problems": evaluation.problems.to_dict("records"),
-            "target_power_default": 0.8,
-            "alpha_default": 0.05,
-            "continuity_correction_default": bool(continuity_correction),
-            "source": validated.raw.source,
-            "sheet": validated.raw.sheet,
-            "excess_significance": excess.as_dict(),
-            "header_row": validated.raw.header_row,
-            # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
-            # title rows, merged or repeated headers).
-            "input_notes": list(validated.file_notes),
-        }
-        result = AuditResult(
-            table=table,
-            metrics=metrics,
-            status=status,
-            errors=validated.failures,
-            notes=notes,
-            findings=findings,
-            portfolio=portfolio,
-            settings=settings,
-            raw=validated.raw,
-            rules=enabled,
-            rules_waiting=evaluation.waiting,
-            rule_problems=evaluation.problems,
-            caveats=caveats(metrics, portfolio),
+        result = _summarised(
+            validated,
+            table,
+            metrics,
+            notes,
+            status,
+            evaluation,
+            ruleset,
+            continuity_correction=continuity_correction,
+            excess=excess,
+            progress=progress,
         )
         if prepared is not None:
             result.prepared_studies = prepared
@@ -316,6 +290,259 @@ def audit_validated(
             weakref.finalize(result, prepared.task.close)
             cleanup.pop_all()
     return result
+
+
+def _metrics_of(
+    validated: Validated, continuity_correction: bool, progress: Progress | None
+) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame, np.ndarray]:
+    """The audited table (run defaults applied), its metrics, all notes by row, and status."""
+    table = validated.table.copy()
+    # The run default applies where a row leaves continuity_correction blank.
+    table["continuity_correction"] = table["continuity_correction"].fillna(
+        1.0 if continuity_correction else 0.0
+    )
+    valid = validated.valid
+    _announce(progress, "computing metrics")
+    computed = compute_metrics(table, valid)
+    metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
+    notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
+    notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
+    status = np.where(valid, "audited", "invalid").astype(object)
+    return table, metrics, notes, status
+
+
+def _summarised(
+    validated: Validated,
+    table: pd.DataFrame,
+    metrics: pd.DataFrame,
+    notes: pd.DataFrame,
+    status: np.ndarray,
+    evaluation: Evaluation,
+    ruleset: RuleSet,
+    *,
+    continuity_correction: bool,
+    excess: ExcessSettings,
+    progress: Progress | None,
+) -> AuditResult:
+    """The result of an audit whose rows are done: the portfolio summary and the settings."""
+    valid = validated.valid
+    findings = evaluation.findings
+    _announce(progress, "summarising")
+    portfolio = portfolio_summary(
+        table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows), excess=excess
+    )
+    enabled = ruleset.enabled()
+    settings = {
+        "rules": [r.id for r in enabled],
+        "rules_disabled": [r.id for r in ruleset.rules.values() if not r.enabled],
+        "rules_waiting": evaluation.waiting,
+        "rule_parameters": {r.id: r.param_values() for r in enabled if r.parameters},
+        "rule_files": list(ruleset.files),
+        "rule_problems": evaluation.problems.to_dict("records"),
+        "target_power_default": 0.8,
+        "alpha_default": 0.05,
+        "continuity_correction_default": bool(continuity_correction),
+        "source": validated.raw.source,
+        "sheet": validated.raw.sheet,
+        "excess_significance": excess.as_dict(),
+        "header_row": validated.raw.header_row,
+        # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
+        # title rows, merged or repeated headers).
+        "input_notes": list(validated.file_notes),
+    }
+    return AuditResult(
+        table=table,
+        metrics=metrics,
+        status=status,
+        errors=validated.failures,
+        notes=notes,
+        findings=findings,
+        portfolio=portfolio,
+        settings=settings,
+        raw=validated.raw,
+        rules=enabled,
+        rules_waiting=evaluation.waiting,
+        rule_problems=evaluation.problems,
+        caveats=caveats(metrics, portfolio),
+    )
+
+
+#: From this many rows a table is audited by two processes, each taking a share of the rows
+#: (see :func:`_audit_in_shares`).
+SHARE_MIN = 20_000
+#: The share of the rows this process audits when a child audits the others. The child's share
+#: is the larger: this process also merges, summarises and writes the outputs.
+PARENT_SHARE = 0.42
+
+
+@dataclass
+class _Share:
+    """The row-by-row audit of some rows of a table (positions counted from its first row)."""
+
+    table: pd.DataFrame
+    metrics: pd.DataFrame
+    notes: pd.DataFrame
+    status: np.ndarray
+    failures: pd.DataFrame
+    valid: np.ndarray
+    evaluation: Evaluation
+    file_notes: list[str]
+    extra_columns: list[str]
+
+
+def _audit_share(
+    raw: RawTable,
+    start: int,
+    stop: int,
+    ids: pd.Series,
+    ruleset: RuleSet,
+    continuity_correction: bool,
+    progress: Progress | None,
+) -> _Share:
+    """Validate, compute and apply the rules to the rows ``start`` to ``stop`` of ``raw``."""
+    _announce(progress, "checking rows")
+    validated = validate(_rows_of(raw, start, stop), WholeTable(ids, raw.rows, start))
+    table, metrics, notes, status = _metrics_of(validated, continuity_correction, progress)
+    _announce(progress, "applying rules")
+    evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
+    return _Share(
+        table=table,
+        metrics=metrics,
+        notes=notes,
+        status=status,
+        failures=validated.failures,
+        valid=validated.valid,
+        evaluation=evaluation,
+        file_notes=validated.file_notes,
+        extra_columns=validated.extra_columns,
+    )
+
+
+def _rows_of(raw: RawTable, start: int, stop: int) -> RawTable:
+    """The rows ``start`` to ``stop`` of ``raw`` as a table of their own (positions from 0)."""
+    return dataclasses.replace(
+        raw,
+        data=raw.data.iloc[start:stop].reset_index(drop=True),
+        rows=raw.rows[start:stop],
+        row_notes=[(p - start, t) for p, t in raw.row_notes if start <= p < stop],
+        cell_problems=[(p - start, c, r) for p, c, r in raw.cell_problems if start <= p < stop],
+    )
+
+
+def _stacked(first: pd.DataFrame, second: pd.DataFrame, shift: int | None = None) -> pd.DataFrame:
+    """``first`` above ``second`` (its ``pos`` moved by ``shift``), renumbered. An empty part is
+    left out, as its column types may be those of an empty frame."""
+    if shift is not None and len(second):
+        second = second.assign(pos=second["pos"] + shift)
+    parts = [part for part in (first, second) if len(part)] or [first]
+    return pd.concat(parts, ignore_index=True)
+
+
+def _audit_in_shares(
+    raw: RawTable,
+    ruleset: RuleSet,
+    *,
+    continuity_correction: bool,
+    excess: ExcessSettings,
+    progress: Progress | None,
+    prepare_json: bool,
+) -> AuditResult:
+    """Audit a large table in two processes: a forked child audits the last rows (a share of
+    1 - :data:`PARENT_SHARE`) while this process audits the first ones, then hands its results
+    over pickled and, for ``prepare_json``, goes on to encode its studies' JSON text.
+
+    Rows are audited one at a time, except that a study_id used twice is looked for in the
+    whole table (both processes know all ids). The result equals that of one process; where
+    the child fails, its rows are audited here. A rule that fails on either share is applied
+    again to the whole table (it then reports no findings at all, as in one process) and the
+    child's JSON text is not used.
+    """
+    n = len(raw.data)
+    start = min(max(int(n * PARENT_SHARE), 1), n - 1)
+    ids = study_ids(raw)
+
+    def child(facts: IO[bytes], studies: IO[bytes], handover: Callable[[], None]) -> None:
+        parallel.ENABLED = False  # this process has its core; it starts no child of its own
+        share = _audit_share(raw, start, n, ids, ruleset, continuity_correction, None)
+        pickle.dump(share, facts, protocol=pickle.HIGHEST_PROTOCOL)
+        handover()
+        if prepare_json and not len(share.evaluation.problems):
+            _write_studies(share, raw, studies)
+
+    with contextlib.ExitStack() as cleanup:
+        task = parallel.ChildTask(child, parts=2).start()
+        cleanup.callback(task.close)
+        with parallel.suspended():
+            mine = _audit_share(raw, 0, start, ids, ruleset, continuity_correction, progress)
+            own = None
+            if prepare_json and not len(mine.evaluation.problems):
+                # Done while the child finishes its share (this share is the smaller one).
+                own = cleanup.enter_context(tempfile.TemporaryFile())
+                _write_studies(mine, raw, own)
+        facts = task.first()
+        theirs = pickle.load(facts) if facts is not None else None
+        child_json = prepare_json and theirs is not None
+        if theirs is None:  # no child, or it failed: its rows are audited here
+            theirs = _audit_share(raw, start, n, ids, ruleset, continuity_correction, None)
+        validated = Validated(
+            table=_stacked(mine.table, theirs.table),
+            failures=_stacked(mine.failures, theirs.failures, start),
+            notes=pd.DataFrame({"pos": np.zeros(0, dtype=int), "text": np.zeros(0, dtype=object)}),
+            valid=np.concatenate([mine.valid, theirs.valid]),
+            extra_columns=mine.extra_columns,
+            raw=raw,
+            file_notes=mine.file_notes,
+        )
+        table = validated.table
+        metrics = _stacked(mine.metrics, theirs.metrics)
+        notes = _stacked(mine.notes, theirs.notes, start)
+        status = np.concatenate([mine.status, theirs.status])
+        a, b = mine.evaluation, theirs.evaluation
+        if len(a.problems) or len(b.problems) or a.waiting != b.waiting:
+            # As one process would: the rule reports no findings at all.
+            evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
+            child_json = False
+        else:
+            evaluation = dataclasses.replace(a, findings=_stacked(a.findings, b.findings, start))
+        if list(mine.metrics.columns) != list(theirs.metrics.columns):
+            metrics = metrics[[*METRICS, *[c for c in metrics if c not in METRICS]]]
+            child_json = False  # the child's studies lack a metric the others have
+        result = _summarised(
+            validated,
+            table,
+            metrics,
+            notes,
+            status,
+            evaluation,
+            ruleset,
+            continuity_correction=continuity_correction,
+            excess=excess,
+            progress=progress,
+        )
+        if child_json:
+            prepared = PreparedStudies(start, task, own)
+            result.prepared_studies = prepared
+            # Not written after all (a library caller): stop the child with the result.
+            weakref.finalize(result, prepared.close)
+            cleanup.pop_all()
+    return result
+
+
+def _write_studies(share: _Share, raw: RawTable, out: IO[bytes]) -> None:
+    """The JSON text of a share's studies (as in ``studies``, comma-separated) into ``out``."""
+    view = AuditResult(
+        table=share.table,
+        metrics=share.metrics,
+        status=share.status,
+        errors=share.failures,
+        notes=share.notes,
+        findings=share.evaluation.findings,
+        portfolio={},
+        settings={},
+        raw=raw,
+    )
+    for i, text in enumerate(view.study_json()):
+        out.write(b"," + text if i else text)
 
 
 def _json_split_min() -> int:
@@ -373,6 +600,15 @@ def audit_table(
     ruleset = resolve_rules(rules)  # a bad rules file fails before any work is done
     excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
     raw = df if isinstance(df, RawTable) else raw_from_frame(df)
+    if _in_shares(raw):
+        return _audit_in_shares(
+            raw,
+            ruleset,
+            continuity_correction=continuity_correction,
+            excess=excess,
+            progress=progress,
+            prepare_json=prepare_json,
+        )
     _announce(progress, "checking rows")
     return audit_validated(
         validate(raw),
@@ -381,6 +617,18 @@ def audit_table(
         excess=excess,
         progress=progress,
         prepare_json=prepare_json,
+    )
+
+
+def _in_shares(raw: RawTable) -> bool:
+    """Whether :func:`_audit_in_shares` audits ``raw``: a large table with the columns every
+    study needs (validate reports their absence), where a child can be forked."""
+    columns = raw.data.columns
+    return (
+        len(raw.data) >= SHARE_MIN
+        and "study_id" in columns
+        and "design" in columns
+        and parallel.can_fork()
     )
 
 

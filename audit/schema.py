@@ -583,8 +583,34 @@ def _fmt(value: object) -> str:
     return str(value)
 
 
-def validate(raw: RawTable) -> Validated:
+@dataclass(frozen=True)
+class WholeTable:
+    """What :func:`validate` needs to know of a larger table when it checks a slice of it: the
+    typed ``study_id`` of every row of the whole (:func:`study_ids`), their spreadsheet rows,
+    and the position in the whole of the slice's first row."""
+
+    ids: pd.Series
+    rows: np.ndarray
+    start: int
+
+
+def study_ids(raw: RawTable) -> pd.Series:
+    """The ``study_id`` column of ``raw`` typed as :func:`validate` types it."""
+    data = raw.data
+    if "study_id" in raw.duplicates:
+        data = _merge_duplicates(raw, lambda *_: None, [], [], [])
+    columns: dict[str, np.ndarray | pd.Series] = {}
+    found = _joined(_distinct_columns(data, ["study_id"])["study_id"])
+    cells = data["study_id"].reset_index(drop=True)
+    _text_column(SPECS["study_id"], cells, found, columns, lambda *_: None)
+    return pd.Series(columns["study_id"], dtype=object)
+
+
+def validate(raw: RawTable, whole: WholeTable | None = None) -> Validated:
     """Type and check every cell of ``raw``; see the module docstring.
+
+    ``whole``: ``raw`` is a slice of a larger table (rows are checked one by one, except that a
+    study_id used twice is looked for in the whole table).
 
     Raises
     ------
@@ -701,23 +727,15 @@ def validate(raw: RawTable) -> Validated:
     sid = table["study_id"]
     no_id = sid.isna().to_numpy()
     fail(no_id, "study_id", "blank: every study needs an identifier")
-    dup = ~no_id & sid.duplicated(keep=False).to_numpy()
-    if dup.any():
-        rows_of = (
-            table.loc[dup]
-            .groupby("study_id")["_row"]
-            .transform(lambda r: ", ".join(str(v) for v in r))
-        )
-        notes_pos.append(np.flatnonzero(dup))
-        notes_text.append(
-            (
-                "study_id '"
-                + sid[dup].astype(str)
-                + "' is used by more than one row (rows "
-                + rows_of.astype(str)
-                + "); every row is audited, check whether they are the same study"
-            ).to_numpy(dtype=object)
-        )
+    if whole is None:
+        pos, text = _duplicate_ids(sid, table["_row"].to_numpy())
+    else:
+        pos, text = _duplicate_ids(whole.ids, whole.rows)
+        mine = (pos >= whole.start) & (pos < whole.start + n)
+        pos, text = pos[mine] - whole.start, text[mine]
+    if len(pos):
+        notes_pos.append(pos)
+        notes_text.append(text)
 
     # Design-specific checks, on rows whose design is known.
     codes, designs = pd.factorize(table["design"].to_numpy(dtype=object))
@@ -772,6 +790,24 @@ def validate(raw: RawTable) -> Validated:
         }
     )
     return Validated(table, failures, notes, valid, extra, raw, file_notes)
+
+
+def _duplicate_ids(ids: pd.Series, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Positions whose study_id another row uses too, and the note for each (naming the rows)."""
+    ids = ids.reset_index(drop=True)
+    dup = (ids.notna() & ids.duplicated(keep=False)).to_numpy()
+    if not dup.any():
+        return np.zeros(0, dtype=np.intp), np.zeros(0, dtype=object)
+    same = pd.DataFrame({"study_id": ids[dup], "_row": rows[dup]})
+    rows_of = same.groupby("study_id")["_row"].transform(lambda r: ", ".join(str(v) for v in r))
+    text = (
+        "study_id '"
+        + same["study_id"].astype(str)
+        + "' is used by more than one row (rows "
+        + rows_of.astype(str)
+        + "); every row is audited, check whether they are the same study"
+    )
+    return np.flatnonzero(dup), text.to_numpy(dtype=object)
 
 
 _P_BOUND = re.compile(

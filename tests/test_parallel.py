@@ -167,3 +167,176 @@ def test_an_audit_that_fails_stops_its_json_child(monkeypatch):
     assert closed and closed[0] > 0  # the child was running, and was stopped
     with pytest.raises(ChildProcessError):
         os.waitpid(-1, os.WNOHANG)  # and reaped: no child left
+
+
+# -- a table audited in two shares (pipeline._audit_in_shares) ------------------------------------
+
+
+def _frames_equal(a: audit.AuditResult, b: audit.AuditResult) -> None:
+    # Metrics as in test_metrics_from_two_processes_equal_one: a rarely shared setting may be
+    # solved directly in one run and read off the interpolant in the other (1e-11 apart).
+    pd.testing.assert_frame_equal(a.metrics, b.metrics, check_exact=False, rtol=1e-11)
+    for name in ("table", "errors", "notes", "findings", "rule_problems"):
+        pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name), obj=name)
+    assert list(a.status) == list(b.status)
+    _assert_close(a.to_dict(), b.to_dict())
+
+
+def _shared_and_alone(monkeypatch, source, **kwargs):
+    """The audit of ``source`` by one process, and by two (any table from 2 rows)."""
+    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
+    monkeypatch.setattr(parallel, "ENABLED", False)
+    alone = audit.audit_table(source, **kwargs)
+    monkeypatch.setattr(parallel, "ENABLED", True)
+    shared = audit.audit_table(source, **kwargs)
+    return shared, alone
+
+
+def _demo_with_repeats() -> pd.DataFrame:
+    """The demo portfolio with trouble across the cut: ids used in both shares, a blank id, a
+    bad value, and a row of a design no other row has."""
+    demo = pd.read_csv(DEMO, dtype=object, keep_default_na=False)
+    repeats = demo.iloc[[0, 1, 30]].copy()
+    repeats.loc[repeats.index[0], "study_id"] = ""
+    repeats.loc[repeats.index[1], "alpha"] = "five per cent"
+    return pd.concat([demo.iloc[:20], repeats, demo.iloc[20:]], ignore_index=True)
+
+
+@pytest.mark.parametrize("child_fails", [False, True])
+def test_a_table_audited_in_two_shares_equals_one_process(monkeypatch, child_fails):
+    spied = []
+    real = pipeline._audit_share
+
+    def spy(raw, start, stop, *args):
+        spied.append((start, stop, os.getpid()))
+        return real(raw, start, stop, *args)
+
+    monkeypatch.setattr(pipeline, "_audit_share", spy)
+    if child_fails:
+        # The parent then audits the child's share itself.
+        monkeypatch.setattr(parallel.ChildTask, "_run_child", lambda self: os._exit(1))
+    shared, alone = _shared_and_alone(monkeypatch, _demo_with_repeats())
+    _frames_equal(shared, alone)
+    # A study_id used on both sides of the cut is named, with all its rows, on each of them.
+    notes = shared.notes[shared.notes["text"].str.contains("is used by more than one row")]
+    assert len(notes) >= 4 and notes["pos"].min() < 16 < notes["pos"].max()
+    # This process audited the first 16 rows, and the others only where the child failed.
+    here = [(start, stop) for start, stop, _ in spied]
+    assert here == ([(0, 16), (16, 40)] if child_fails else [(0, 16)])
+
+
+def test_shares_keep_the_readers_row_notes_and_cell_problems(monkeypatch, tmp_path):
+    # Positions the reader attaches to rows (hidden rows, damaged cells) move with the cut.
+    from audit.read import read_table
+
+    raw = read_table(DEMO)
+    raw.row_notes = [(3, "row 5 was hidden"), (25, "row 27 was hidden")]
+    raw.cell_problems = [(2, "planned_sd", "damaged cell"), (30, "alpha", "damaged cell")]
+    shared, alone = _shared_and_alone(monkeypatch, raw)
+    _frames_equal(shared, alone)
+    assert set(shared.errors["pos"]) >= {2, 30}
+
+
+class _FailsOnSizes(Condition):
+    """A rule condition that breaks when applied to a given number of rows (40: the whole of
+    _demo_with_repeats(); 16 and 24: its two shares)."""
+
+    def __init__(self, sizes: set[int]) -> None:
+        self.sizes = sizes
+
+    def evaluate(self, data, params):
+        n = len(data.raw("mde"))
+        if n in self.sizes:
+            raise ZeroDivisionError("boom")
+        return np.ones(n, dtype=bool), np.zeros(n, dtype=bool)
+
+    def names(self):
+        return {"mde"}
+
+
+def _rules_failing_on(sizes: set[int]) -> RuleSet:
+    rules = load_rules()
+    broken = copy.copy(rules.rules["mde-exceeds-sesoi"])
+    object.__setattr__(broken, "when", _FailsOnSizes(sizes))
+    rules.rules["mde-exceeds-sesoi"] = broken
+    return rules
+
+
+@pytest.mark.parametrize(
+    ("sizes", "problems"),
+    [({24}, 0), ({16, 40}, 1)],
+    ids=["fails on the child's share only", "fails on the whole and a share"],
+)
+def test_a_rule_failing_on_a_share_reports_as_in_one_process(monkeypatch, sizes, problems):
+    # A failing share makes the rules run again on the whole table, as one process runs them.
+    rules = _rules_failing_on(sizes)
+    shared, alone = _shared_and_alone(monkeypatch, _demo_with_repeats(), rules=rules)
+    assert len(alone.rule_problems) == problems
+    _frames_equal(shared, alone)
+
+
+@pytest.mark.parametrize("trouble", [None, "rule fails"])
+def test_json_of_a_table_audited_in_shares_is_the_same_document(monkeypatch, tmp_path, trouble):
+    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
+    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
+    rules = _rules_failing_on({24}) if trouble == "rule fails" else None
+    table = _demo_with_repeats()
+    monkeypatch.setattr(parallel, "ENABLED", False)
+    export.write_json(audit.audit_table(table, rules=rules), tmp_path / "alone.json")
+    monkeypatch.setattr(parallel, "ENABLED", True)
+    result = audit.audit_table(table, rules=rules, prepare_json=True)
+    assert (result.prepared_studies is not None) == (trouble is None)
+    export.write_json(result, tmp_path / "shared.json")
+    _assert_close(
+        json.loads((tmp_path / "shared.json").read_bytes()),
+        json.loads((tmp_path / "alone.json").read_bytes()),
+    )
+
+
+def test_the_shares_json_text_is_what_gets_written(monkeypatch, tmp_path):
+    # Text encoded by the child and by the parent during the audit is what the file holds.
+    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
+    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
+    real = pipeline._write_studies
+    parent = os.getpid()
+
+    def marked(share, raw, out):
+        real(share, raw, out)
+        out.seek(0)
+        text = out.read().replace(
+            b'"status":"audited"',
+            b'"status":"%s"' % (b"by-parent" if os.getpid() == parent else b"by-child"),
+        )
+        out.seek(0)
+        out.truncate()
+        out.write(text)
+
+    monkeypatch.setattr(pipeline, "_write_studies", marked)
+    result = audit.audit_table(_demo_with_repeats(), prepare_json=True)
+    export.write_json(result, tmp_path / "marked.json")
+    document = json.loads((tmp_path / "marked.json").read_bytes())
+    statuses = [study["status"] for study in document["studies"]]
+    assert {"by-parent", "by-child"} <= set(statuses)
+    assert "audited" not in statuses
+    assert statuses.index("by-child") > max(i for i, s in enumerate(statuses) if s == "by-parent")
+
+
+def test_an_audit_in_shares_that_fails_stops_its_child(monkeypatch):
+    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
+    closed = []
+    real_close = parallel.ChildTask.close
+
+    def close(self):
+        closed.append(self._pid)
+        real_close(self)
+
+    def broken_summary(*args, **kwargs):
+        raise RuntimeError("summary failed")
+
+    monkeypatch.setattr(parallel.ChildTask, "close", close)
+    monkeypatch.setattr(pipeline, "portfolio_summary", broken_summary)
+    with pytest.raises(RuntimeError, match="summary failed"):
+        audit.audit_file(DEMO, prepare_json=True)
+    assert closed  # the child was stopped (or had ended) and its files closed
+    with pytest.raises(ChildProcessError):
+        os.waitpid(-1, os.WNOHANG)  # and reaped: no child left
