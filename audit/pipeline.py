@@ -372,7 +372,7 @@ def _summarised(
 SHARE_MIN = 20_000
 #: The share of the rows this process audits when a child audits the others. The child's share
 #: is the larger: this process also merges, summarises and writes the outputs.
-PARENT_SHARE = 0.42
+PARENT_SHARE = 0.44
 
 
 @dataclass
