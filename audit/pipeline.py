@@ -307,6 +307,8 @@ def _metrics_of(
     metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
     notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
     notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
+    # Texts as objects whatever the parts were (pandas infers a str type for some of them).
+    notes["text"] = notes["text"].astype(object)
     status = np.where(valid, "audited", "invalid").astype(object)
     return table, metrics, notes, status
 
