@@ -166,10 +166,18 @@ def test_an_audit_that_fails_stops_its_json_child(monkeypatch):
         audit.audit_file(DEMO, prepare_json=True)
     assert closed and closed[0] > 0  # the child was running, and was stopped
     with pytest.raises(ChildProcessError):
-        os.waitpid(-1, os.WNOHANG)  # and reaped: no child left
+        os.waitpid(closed[0], os.WNOHANG)  # and reaped
 
 
 # -- a table audited in two shares (pipeline._audit_in_shares) ------------------------------------
+
+
+@pytest.fixture
+def shares(monkeypatch):
+    """Any table from two rows is audited in shares; the parent takes the first 40 %: rows 0 to
+    15 of _demo_with_repeats() (40 rows), the child rows 16 to 39."""
+    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
+    monkeypatch.setattr(pipeline, "PARENT_SHARE", 0.4)
 
 
 def _frames_equal(a: audit.AuditResult, b: audit.AuditResult) -> None:
@@ -183,8 +191,7 @@ def _frames_equal(a: audit.AuditResult, b: audit.AuditResult) -> None:
 
 
 def _shared_and_alone(monkeypatch, source, **kwargs):
-    """The audit of ``source`` by one process, and by two (any table from 2 rows)."""
-    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
+    """The audit of ``source`` by one process, and by two (with the ``shares`` fixture)."""
     monkeypatch.setattr(parallel, "ENABLED", False)
     alone = audit.audit_table(source, **kwargs)
     monkeypatch.setattr(parallel, "ENABLED", True)
@@ -203,7 +210,7 @@ def _demo_with_repeats() -> pd.DataFrame:
 
 
 @pytest.mark.parametrize("child_fails", [False, True])
-def test_a_table_audited_in_two_shares_equals_one_process(monkeypatch, child_fails):
+def test_a_table_audited_in_two_shares_equals_one_process(shares, monkeypatch, child_fails):
     spied = []
     real = pipeline._audit_share
 
@@ -225,7 +232,7 @@ def test_a_table_audited_in_two_shares_equals_one_process(monkeypatch, child_fai
     assert here == ([(0, 16), (16, 40)] if child_fails else [(0, 16)])
 
 
-def test_shares_keep_the_readers_row_notes_and_cell_problems(monkeypatch, tmp_path):
+def test_shares_keep_the_readers_row_notes_and_cell_problems(shares, monkeypatch, tmp_path):
     # Positions the reader attaches to rows (hidden rows, damaged cells) move with the cut.
     from audit.read import read_table
 
@@ -267,7 +274,7 @@ def _rules_failing_on(sizes: set[int]) -> RuleSet:
     [({24}, 0), ({16, 40}, 1)],
     ids=["fails on the child's share only", "fails on the whole and a share"],
 )
-def test_a_rule_failing_on_a_share_reports_as_in_one_process(monkeypatch, sizes, problems):
+def test_a_rule_failing_on_a_share_reports_as_in_one_process(shares, monkeypatch, sizes, problems):
     # A failing share makes the rules run again on the whole table, as one process runs them.
     rules = _rules_failing_on(sizes)
     shared, alone = _shared_and_alone(monkeypatch, _demo_with_repeats(), rules=rules)
@@ -276,8 +283,9 @@ def test_a_rule_failing_on_a_share_reports_as_in_one_process(monkeypatch, sizes,
 
 
 @pytest.mark.parametrize("trouble", [None, "rule fails"])
-def test_json_of_a_table_audited_in_shares_is_the_same_document(monkeypatch, tmp_path, trouble):
-    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
+def test_json_of_a_table_audited_in_shares_is_the_same_document(
+    shares, monkeypatch, tmp_path, trouble
+):
     monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
     rules = _rules_failing_on({24}) if trouble == "rule fails" else None
     table = _demo_with_repeats()
@@ -293,9 +301,8 @@ def test_json_of_a_table_audited_in_shares_is_the_same_document(monkeypatch, tmp
     )
 
 
-def test_the_shares_json_text_is_what_gets_written(monkeypatch, tmp_path):
+def test_the_shares_json_text_is_what_gets_written(shares, monkeypatch, tmp_path):
     # Text encoded by the child and by the parent during the audit is what the file holds.
-    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
     monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
     real = pipeline._write_studies
     parent = os.getpid()
@@ -321,8 +328,7 @@ def test_the_shares_json_text_is_what_gets_written(monkeypatch, tmp_path):
     assert statuses.index("by-child") > max(i for i, s in enumerate(statuses) if s == "by-parent")
 
 
-def test_an_audit_in_shares_that_fails_stops_its_child(monkeypatch):
-    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
+def test_an_audit_in_shares_that_fails_stops_its_child(shares, monkeypatch):
     closed = []
     real_close = parallel.ChildTask.close
 
@@ -337,6 +343,6 @@ def test_an_audit_in_shares_that_fails_stops_its_child(monkeypatch):
     monkeypatch.setattr(pipeline, "portfolio_summary", broken_summary)
     with pytest.raises(RuntimeError, match="summary failed"):
         audit.audit_file(DEMO, prepare_json=True)
-    assert closed  # the child was stopped (or had ended) and its files closed
+    assert closed and closed[0] > 0  # the child was running, and was stopped
     with pytest.raises(ChildProcessError):
-        os.waitpid(-1, os.WNOHANG)  # and reaped: no child left
+        os.waitpid(closed[0], os.WNOHANG)  # and reaped
