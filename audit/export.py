@@ -142,8 +142,9 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     previous chunk (file writes release the interpreter lock), so memory stays bounded and the
     disk works while the next chunk is encoded. From :data:`PARALLEL_JSON_MIN` studies, where
     the platform can fork, a child process encodes the last studies meanwhile
-    (:class:`audit.parallel.ChildTask`); ``audit_file(..., prepare_json=True)`` starts it
-    during the audit already.
+    (:class:`audit.parallel.ChildTask`). A result of ``audit_file(..., prepare_json=True)``
+    comes with text encoded during the audit already (:class:`audit.pipeline.PreparedStudies`:
+    the child's studies and, from an audit in two shares, the parent's), which is used as is.
     """
     refuse_input(result, path)
     n = len(result.table)
