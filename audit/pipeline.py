@@ -479,8 +479,11 @@ def _audit_in_shares(
             own = None
             if prepare_json and not len(mine.evaluation.problems):
                 # Done while the child finishes its share (this share is the smaller one).
-                own = cleanup.enter_context(tempfile.TemporaryFile())
-                _write_studies(mine, raw, own)
+                try:
+                    own = cleanup.enter_context(tempfile.TemporaryFile())
+                    _write_studies(mine, raw, own)
+                except OSError:  # no room for it: write_json encodes these studies itself
+                    own = None
         facts = task.first()
         theirs = pickle.load(facts) if facts is not None else None
         child_json = prepare_json and theirs is not None

@@ -328,6 +328,30 @@ def test_the_shares_json_text_is_what_gets_written(shares, monkeypatch, tmp_path
     assert statuses.index("by-child") > max(i for i, s in enumerate(statuses) if s == "by-parent")
 
 
+def test_no_room_for_the_parents_json_text_costs_time_not_output(shares, monkeypatch, tmp_path):
+    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
+    table = _demo_with_repeats()
+    monkeypatch.setattr(parallel, "ENABLED", False)
+    export.write_json(audit.audit_table(table), tmp_path / "alone.json")
+    monkeypatch.setattr(parallel, "ENABLED", True)
+    real = pipeline._write_studies
+    parent = os.getpid()
+
+    def full_disk(share, raw, out):
+        if os.getpid() == parent:
+            raise OSError(28, "No space left on device")
+        real(share, raw, out)
+
+    monkeypatch.setattr(pipeline, "_write_studies", full_disk)
+    result = audit.audit_table(table, prepare_json=True)
+    assert result.prepared_studies is not None and result.prepared_studies.own is None
+    export.write_json(result, tmp_path / "shared.json")
+    _assert_close(
+        json.loads((tmp_path / "shared.json").read_bytes()),
+        json.loads((tmp_path / "alone.json").read_bytes()),
+    )
+
+
 def test_an_audit_in_shares_that_fails_stops_its_child(shares, monkeypatch):
     closed = []
     real_close = parallel.ChildTask.close
