@@ -457,7 +457,8 @@ def _audit_in_shares(
     whole table (both processes know all ids). The result equals that of one process; where
     the child fails, its rows are audited here. A rule that fails on either share is applied
     again to the whole table (it then reports no findings at all, as in one process) and the
-    child's JSON text is not used.
+    shares' JSON text is not used. Rules look at one row at a time (the rule language makes
+    them so): a rule failing on the whole table fails on a share too.
     """
     n = len(raw.data)
     start = min(max(int(n * PARENT_SHARE), 1), n - 1)
