@@ -285,11 +285,18 @@ def audit_validated(
             progress=progress,
         )
         if prepared is not None:
-            result.prepared_studies = prepared
-            # Not written after all (a library caller): stop the child with the result.
-            weakref.finalize(result, prepared.task.close)
-            cleanup.pop_all()
+            _hand_over(result, prepared, cleanup)
     return result
+
+
+def _hand_over(
+    result: AuditResult, prepared: PreparedStudies, cleanup: contextlib.ExitStack
+) -> None:
+    """Give ``result`` the studies' JSON text being encoded; their child and files then live
+    as long as the result (a library caller that never writes JSON stops the child with it)."""
+    result.prepared_studies = prepared
+    weakref.finalize(result, prepared.close)
+    cleanup.pop_all()
 
 
 def _metrics_of(
@@ -526,11 +533,7 @@ def _audit_in_shares(
             progress=progress,
         )
         if child_json:
-            prepared = PreparedStudies(start, task, own)
-            result.prepared_studies = prepared
-            # Not written after all (a library caller): stop the child with the result.
-            weakref.finalize(result, prepared.close)
-            cleanup.pop_all()
+            _hand_over(result, PreparedStudies(start, task, own), cleanup)
     return result
 
 

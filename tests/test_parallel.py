@@ -148,27 +148,6 @@ def test_the_prepared_child_really_encodes(monkeypatch, tmp_path):
     assert "from-child" in statuses and "audited" in statuses
 
 
-def test_an_audit_that_fails_stops_its_json_child(monkeypatch):
-    monkeypatch.setattr(export, "PARALLEL_JSON_MIN", 4)
-    closed = []
-    real_close = parallel.ChildTask.close
-
-    def close(self):
-        closed.append(self._pid)
-        real_close(self)
-
-    def broken_summary(*args, **kwargs):
-        raise RuntimeError("summary failed")
-
-    monkeypatch.setattr(parallel.ChildTask, "close", close)
-    monkeypatch.setattr(pipeline, "portfolio_summary", broken_summary)
-    with pytest.raises(RuntimeError, match="summary failed"):
-        audit.audit_file(DEMO, prepare_json=True)
-    assert closed and closed[0] > 0  # the child was running, and was stopped
-    with pytest.raises(ChildProcessError):
-        os.waitpid(closed[0], os.WNOHANG)  # and reaped
-
-
 # -- a table audited in two shares (pipeline._audit_in_shares) ------------------------------------
 
 
@@ -352,7 +331,13 @@ def test_no_room_for_the_parents_json_text_costs_time_not_output(shares, monkeyp
     )
 
 
-def test_an_audit_in_shares_that_fails_stops_its_child(shares, monkeypatch):
+@pytest.mark.parametrize("child", ["json child", "shares"])
+def test_an_audit_that_fails_stops_its_child(monkeypatch, child):
+    # The child of the JSON text (audit_validated) and the child of a share (audit_in_shares).
+    if child == "json child":
+        monkeypatch.setattr(export, "PARALLEL_JSON_MIN", 4)
+    else:
+        monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
     closed = []
     real_close = parallel.ChildTask.close
 
