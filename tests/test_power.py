@@ -235,3 +235,25 @@ def test_noncentrality_interpolant_matches_the_direct_search():
     interpolated = NcpLookup(power, alpha, sides).at(df)
     direct = _exact_ncp(power, df, alpha, sides)
     np.testing.assert_allclose(interpolated, direct, rtol=1e-9)
+
+
+def test_a_full_table_store_keeps_the_tables_a_lookup_reads(monkeypatch):
+    # Issue 13: a file with many distinct target powers filled the process-wide store; the
+    # clear then dropped keys the lookup read next (KeyError: (0.5, 0.05, 2.0)). With a store
+    # of 3 tables and 5 settings, the lookup must still answer, and answer what scipy's
+    # noncentral t says (reference: scipy.stats.nct at the returned noncentrality).
+    from audit.designs import _power
+
+    monkeypatch.setattr(_power, "_TABLES", {})
+    monkeypatch.setattr(_power, "_TABLES_MAX", 3)
+    first = _power.NcpLookup(np.array([0.5, 0.6]), np.array([0.05, 0.05]), np.array([2.0, 2.0]))
+    first.at(np.array([40.0, 40.0]))
+    power = np.array([0.5, 0.6, 0.7, 0.8, 0.9])
+    alpha = np.full(5, 0.05)
+    sides = np.full(5, 2.0)
+    df = np.full(5, 40.0)
+    ncp = _power.NcpLookup(power, alpha, sides).at(df)
+    c = stats.t.isf(0.025, 40)
+    achieved = stats.nct.sf(c, 40, ncp) + stats.nct.cdf(-c, 40, ncp)
+    np.testing.assert_allclose(achieved, power, rtol=1e-9)
+    assert len(_power._TABLES) <= 3

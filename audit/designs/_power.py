@@ -321,10 +321,11 @@ class NcpLookup:
 
     def _build(self, p: np.ndarray, a: np.ndarray, s: np.ndarray) -> None:
         keys = list(zip(p.tolist(), a.tolist(), s.tolist(), strict=True))
-        missing = [i for i, k in enumerate(keys) if k not in _TABLES]
+        # This lookup's tables are taken out of the process-wide store before anything is
+        # evicted from it: a full store is cleared, and the keys just read must survive that.
+        tables = {k: _TABLES[k] for k in keys if k in _TABLES}
+        missing = [i for i, k in enumerate(keys) if k not in tables]
         if missing:
-            if len(_TABLES) + len(missing) > _TABLES_MAX:
-                _TABLES.clear()
             m = np.asarray(missing)
             per_segment = []
             for seg in _SEGMENTS:
@@ -339,9 +340,12 @@ class NcpLookup:
                     values = np.log(values)
                 per_segment.append(values @ seg.inverse.T)
             for j, i in enumerate(m.tolist()):
-                _TABLES[keys[i]] = tuple(c[j] for c in per_segment)
+                tables[keys[i]] = tuple(c[j] for c in per_segment)
+            if len(_TABLES) + len(missing) > _TABLES_MAX:
+                _TABLES.clear()
+            _TABLES.update((keys[i], tables[keys[i]]) for i in m.tolist()[:_TABLES_MAX])
         self._coefficients = [
-            np.vstack([_TABLES[key][n] for key in keys]) for n in range(len(_SEGMENTS))
+            np.vstack([tables[key][n] for key in keys]) for n in range(len(_SEGMENTS))
         ]
 
     def at(self, df: np.ndarray) -> np.ndarray:
