@@ -15,12 +15,21 @@ import numpy as np
 import pandas as pd
 
 from audit import parallel, retro
+from audit._format import format_number
 from audit.designs import DESIGNS, Design, Scenario, TestSpec
+from audit.designs._base import _directions
 
 __all__ = ["METRICS", "compute_metrics", "test_settings"]
 
 #: Metric name -> meaning, in report order. Names are part of the output contract.
 METRICS: dict[str, str] = {
+    "direction_used": "the direction the audit used: increase or decrease (from the direction "
+    "column, else the planned effect's sign; for ratios below 1 is a decrease), or either (no "
+    "direction given: the SESOI is a band around no effect and MDEs are magnitudes)",
+    "planned_effect_used": "the planned effect in effect units as the audit used it "
+    "(planned_effect; p2 - p1 for two proportions)",
+    "sesoi_used": "the SESOI as the audit used it: pointed in the direction used, a magnitude "
+    "when either (a band from -sesoi to sesoi; for ratios 1/sesoi to sesoi)",
     "plan_power": "power of the planned design at the planned effect",
     "n_required_plan": "units needed at the planned parameters for the target power "
     "(sum over groups, each rounded up)",
@@ -28,10 +37,12 @@ METRICS: dict[str, str] = {
     "power_at_planned_effect": "design-based power of the realized design at the planned effect",
     "power_at_sesoi": "design-based power of the realized design at the SESOI",
     "mde": "minimal detectable effect at the target power with the realized design "
-    "(effect units, in the planned direction)",
+    "(effect units, signed in the direction used; a magnitude when either, taken on the harder "
+    "side where the two sides differ)",
     "mde_sesoi_ratio": "|MDE| / |SESOI| on the design's analysis scale (log for hazard ratios, "
     "Fisher z for correlations): above 1, effects that still matter could go undetected",
-    "mde_std": "the MDE standardized (d, d_z, h, r, f, f2 or log hazard ratio by design)",
+    "mde_std": "the MDE standardized (d, d_z, h, r, f, f2 or log hazard ratio by design), with "
+    "the MDE's sign",
     "se_plan": "expected standard error of the estimate under the plan",
     "se_realized": "expected standard error of the estimate as realized",
     "precision_ratio": "se_plan / se_realized (below 1: less precise than planned)",
@@ -87,7 +98,8 @@ METRICS: dict[str, str] = {
 }
 
 #: Metrics whose values are text (all others are numbers).
-TEXT_METRICS = frozenset({"ci_verdict"})
+TEXT_METRICS = frozenset({"ci_verdict", "direction_used"})
+
 
 #: Metrics about the reported result: they need one of observed_effect, observed_se, the CI or
 #: observed_p, and get one grouped note on rows that report none of them.
@@ -138,16 +150,35 @@ class MetricTable:
 
 
 def test_settings(rows: pd.DataFrame, design: Design) -> TestSpec:
-    """The per-row test settings: Bonferroni alpha, sides, target power, planned direction."""
+    """The per-row test settings: Bonferroni alpha, sides, target power and direction.
+
+    The direction is the ``direction`` column where given, else the sign of the planned effect
+    on the analysis scale; with neither the row has no direction (``either``), which validation
+    allows for two-sided tests only. Tests without a direction (F) look the one way they have.
+    """
     alpha = rows["alpha"].to_numpy(dtype=float) / rows["comparisons"].to_numpy(dtype=float)
-    effect = design.planned_effect(rows)
-    direction = design.direction(effect)
+    if design.has_direction:
+        given = _directions(rows)
+        direction = np.where(
+            np.isfinite(given), given, design.effect_sign(design.planned_effect(rows))
+        )
+    else:
+        direction = np.ones(len(rows))
+    either = direction == 0
     return TestSpec(
         alpha=alpha,
         sides=rows["sides"].to_numpy(dtype=float),
         power=rows["target_power"].to_numpy(dtype=float),
-        direction=direction,
+        direction=np.where(either, 1.0, direction),
+        either=either,
     )
+
+
+def direction_words(test: TestSpec) -> np.ndarray:
+    """``direction_used`` of each row: increase, decrease or either."""
+    words = np.where(test.direction < 0, "decrease", "increase").astype(object)
+    words[test.either] = "either"
+    return words
 
 
 class _Notes:
@@ -305,7 +336,7 @@ def _design_metrics(
     plan = design.scenario(rows, "planned")
     real = design.scenario(rows, "realized")
     effect = design.planned_effect(rows)
-    sesoi = design.orient(_col(rows, "sesoi"), test.direction)
+    sesoi = _sesoi_on_harder_side(design, real, _col(rows, "sesoi"), test)
     replan = design.replanned(plan, real)
 
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -316,8 +347,7 @@ def _design_metrics(
         out["plan_discrepancy"] = planned_total / out["n_required_plan"] - 1.0
         out["power_at_planned_effect"] = design.power(real, effect, test)
         out["power_at_sesoi"] = design.power(real, sesoi, test)
-        out["mde"] = design.mde(real, test)
-        out["mde_std"] = design.standardize(real, out["mde"])
+        out["mde"], out["mde_std"] = _mde(design, real, test)
         out["mde_sesoi_ratio"] = np.abs(design.to_analysis(out["mde"])) / np.abs(
             design.to_analysis(sesoi)
         )
@@ -336,9 +366,16 @@ def _design_metrics(
         out["power_cost_nuisance"] = out["plan_power"] - out["power_if_planned_size"]
         out["power_cost_attrition"] = out["power_if_planned_size"] - out["power_at_planned_effect"]
         out.update(design.extra_metrics(plan, real, effect, test))
+        out["direction_used"] = direction_words(test)
+        out["planned_effect_used"] = effect
+        out["sesoi_used"] = sesoi
 
     for metric, reason in design.not_applicable.items():
-        out[metric] = np.full(len(rows), np.nan)
+        out[metric] = (
+            np.full(len(rows), None, dtype=object)
+            if metric in TEXT_METRICS
+            else np.full(len(rows), np.nan)
+        )
         notes.add(positions, f"{metric}: not applicable, {reason}")
     # Metrics defined only for other designs (events for survival, ICC for cluster trials): one
     # note lists them rather than one note each.
@@ -347,10 +384,55 @@ def _design_metrics(
         notes.add(positions, f"not applicable to {design.name}: {', '.join(foreign)}")
 
     _note_nulls(design, rows, positions, notes, out, plan, real, effect, sesoi, test)
-    for mask, text in design.fallback_notes(rows):
+    # Texts: one for all masked rows, or one per masked row.
+    for mask, text in [*design.fallback_notes(rows), *design.ignored_notes(rows)]:
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
     out.update(_retro_metrics(design, rows, positions, notes, out, test, plan, real, effect, sesoi))
     return out
+
+
+def _sesoi_on_harder_side(
+    design: Design, real: Scenario, sesoi: np.ndarray, test: TestSpec
+) -> np.ndarray:
+    """The SESOI in effect units, pointed in the direction used.
+
+    A row with no direction has a SESOI band on both sides of no effect; where the design is
+    not symmetric (a risk difference from a control rate) the SESOI is pointed at the side on
+    which the realized design has the lower power, so that power at the SESOI and Type S/M at
+    it are not flattered by the easier side.
+    """
+    out = design.orient(sesoi, test.direction)
+    if design.symmetric or not test.either.any():
+        return out
+    flipped = test.with_direction(np.where(test.either, -test.direction, test.direction))
+    other = design.orient(sesoi, flipped.direction)
+    with np.errstate(invalid="ignore"):
+        harder = test.either & (design.power(real, other, flipped) < design.power(real, out, test))
+    return np.where(harder, other, out)
+
+
+def _mde(design: Design, real: Scenario, test: TestSpec) -> tuple[np.ndarray, np.ndarray]:
+    """The MDE and its standardized value, signed in the direction used.
+
+    Where a row has no direction the MDE is a magnitude: the larger of the two sides' MDEs on
+    the analysis scale (the side harder to detect; the same on both sides for a symmetric
+    design), written as a positive value (a ratio above 1).
+    """
+    mde = design.mde(real, test)
+    if not test.either.any():
+        return mde, design.standardize(real, mde)
+    if not design.symmetric:
+        flipped = test.with_direction(np.where(test.either, -test.direction, test.direction))
+        other = design.mde(real, flipped)
+        with np.errstate(invalid="ignore"):
+            larger = np.abs(design.to_analysis(other)) > np.abs(design.to_analysis(mde))
+        # A side on which no effect reaches the target leaves no MDE "either way".
+        harder = np.where(larger, other, mde)
+        mde = np.where(test.either, np.where(np.isnan(other), np.nan, harder), mde)
+    std = design.standardize(real, mde)
+    with np.errstate(invalid="ignore"):
+        magnitude = design.from_analysis(np.abs(design.to_analysis(mde)))
+    return np.where(test.either, magnitude, mde), np.where(test.either, np.abs(std), std)
 
 
 def _col(rows: pd.DataFrame, name: str) -> np.ndarray:
@@ -390,6 +472,8 @@ def _note_nulls(
     replan_src = {**plan_src, **{k: real_src[k] for k in design.nuisance_keys}}
     replan_needs = blank(replan, replan_src, no_sizes)
     specs: dict[str, tuple[list, list]] = {
+        "planned_effect_used": ([eff_missing], []),
+        "sesoi_used": ([sesoi_missing], []),
         "plan_power": ([*plan_all, eff_missing], []),
         "n_required_plan": (
             [*blank(plan, plan_src, no_sizes), eff_missing],
@@ -441,7 +525,8 @@ def _note_nulls(
         else:
             specs[metric] = (list(extra.inputs), list(extra.conditions))
     for metric, value in out.items():
-        if metric in design.not_applicable:
+        # direction_used is always known (where applicable).
+        if metric in design.not_applicable or metric == "direction_used":
             continue
         inputs, conditions = specs.get(metric, ([*plan_all, *real_all], []))
         _explain_nulls(notes, positions, metric, value, inputs, conditions)
@@ -573,11 +658,13 @@ def _retro_metrics(
         alpha=alpha,
         sides=sides,
         direction=d,
-        ci_level=reported["observed_ci_level"],
+        ci_level=_reported_level(reported["observed_ci_level"]),
     )
     sig = retro.significant(res.ci_low, res.ci_high, res.p, alpha=alpha, sides=sides, direction=d)
     sig = np.where(np.isnan(sig), _significance_by_bound(rows, alpha), sig)
-    verdict = retro.ci_verdicts(res.ci_low, res.ci_high, sig, effect_a, sesoi_a, direction=d)
+    verdict = retro.ci_verdicts(
+        res.ci_low, res.ci_high, sig, effect_a, sesoi_a, direction=d, either=test.either
+    )
     with np.errstate(all="ignore"):
         res_out["result_effect"] = np.where(
             np.isnan(reported["observed_effect"]),
@@ -621,6 +708,56 @@ def _retro_metrics(
         sig,
     )
     return res_out
+
+
+#: Level of a reported interval whose level is not given: what papers report.
+DEFAULT_CI_LEVEL = 0.95
+
+
+def _reported_level(level: np.ndarray) -> np.ndarray:
+    """The level of each reported interval: as given, else :data:`DEFAULT_CI_LEVEL`."""
+    return np.where(np.isnan(level), DEFAULT_CI_LEVEL, level)
+
+
+#: How far (a share of the half-width) a reported estimate may lie from the middle of its
+#: interval, on the analysis scale, before a note says so (rounding of printed numbers stays
+#: well within it; a ratio's interval read on the wrong scale, or a typo, does not).
+OFF_CENTRE_SHARE = 0.15
+
+
+def _note_off_centre(
+    design: Design, positions: np.ndarray, notes: _Notes, reported: dict[str, np.ndarray]
+) -> None:
+    """Note a reported estimate that lies far from the middle of its reported interval on the
+    analysis scale, where intervals are symmetric: the numbers may be on another scale."""
+    with np.errstate(all="ignore"):
+        e = design.to_analysis(reported["observed_effect"])
+        lo = design.to_analysis(reported["observed_ci_low"])
+        hi = design.to_analysis(reported["observed_ci_high"])
+        share = np.abs(e - (lo + hi) / 2.0) / ((hi - lo) / 2.0)
+    off = np.isfinite(share) & (share > OFF_CENTRE_SHARE)
+    if not off.any():
+        return
+    scale = {"survival": "log hazard ratio", "correlation": "Fisher z"}.get(design.name)
+    where = f"the {scale} scale" if scale else "the scale of the estimate"
+    hint = (
+        "an odds or risk ratio's interval is symmetric on the log scale, so give such results "
+        "on that scale (or with a design that reads ratios)"
+        if scale is None
+        else "check that the estimate and its limits are on the scale of the design"
+    )
+    texts = [
+        f"observed_effect {format_number(v)} lies far from the middle of its interval "
+        f"({format_number(a)} to {format_number(b)}) on {where}, where intervals are symmetric: "
+        f"{hint}; the interval gives the SE and the verdict, the estimate is used as reported"
+        for v, a, b in zip(
+            reported["observed_effect"][off],
+            reported["observed_ci_low"][off],
+            reported["observed_ci_high"][off],
+            strict=True,
+        )
+    ]
+    notes.add(positions[off], np.array(texts, dtype=object))
 
 
 def _significance_by_bound(rows: pd.DataFrame, alpha: np.ndarray) -> np.ndarray:
@@ -772,7 +909,12 @@ def _note_retro(
     if "ci_verdict" not in skip:
         verdict = res_out["ci_verdict"]
         null = some & pd.isna(verdict)
-        no_ref = null & np.isfinite(res.ci_low) & np.isnan(effect_a) & np.isnan(sesoi_a)
+        no_ref = (
+            null
+            & np.isfinite(res.ci_low)
+            & (np.isnan(effect_a) | ctx.test.either)
+            & np.isnan(sesoi_a)
+        )
         notes.add(
             positions[no_ref],
             "ci_verdict: not significant, and there is no planned_effect or sesoi to compare "
@@ -786,9 +928,7 @@ def _note_retro(
 
     # What was derived from what.
     scale = " on the analysis scale" if type(design).to_analysis is not Design.to_analysis else ""
-    level_in = np.where(
-        np.isnan(reported["observed_ci_level"]), res.ci_level, reported["observed_ci_level"]
-    )
+    level_in = _reported_level(reported["observed_ci_level"])
     mask = res.effect_from == retro.FROM_CI
     notes.add(
         positions[mask], f"observed_effect derived: midpoint of the confidence interval{scale}"
@@ -836,6 +976,7 @@ def _note_retro(
         positions[res.ci_unused],
         "only one confidence limit reported: the interval is not used",
     )
+    _note_off_centre(design, positions, notes, reported)
     # Consistency and direction of the verdict.
     with np.errstate(invalid="ignore"):
         by_p = reported["observed_p"] < alpha
@@ -853,9 +994,9 @@ def _note_retro(
     with np.errstate(invalid="ignore"):
         near = np.minimum(d * res.ci_low, d * res.ci_high)
         far = np.maximum(d * res.ci_low, d * res.ci_high)
-        opposite = detected & (far < 0)
+        opposite = detected & (far < 0) & ~ctx.test.either
         smaller = detected & (near > 0) & (np.abs(effect_a) > far)
-    notes.add(positions[opposite], "significant in the direction opposite to the planned effect")
+    notes.add(positions[opposite], "significant in the direction opposite to the one used")
     notes.add(
         positions[smaller],
         "significant, but the interval excludes the planned effect: the true effect is likely "

@@ -69,24 +69,30 @@ def power_curves(
         rows = table.iloc[pos]
         test = test_settings(rows, design)
         effect = design.planned_effect(rows)
-        anchors = [design.to_analysis(effect), design.to_analysis(metrics["mde"].to_numpy()[pos])]
-        if "sesoi" in rows:
-            anchors.append(
-                design.to_analysis(design.orient(rows["sesoi"].to_numpy(float), test.direction))
-            )
+        anchors = [
+            design.to_analysis(effect),
+            design.to_analysis(metrics["mde"].to_numpy()[pos]),
+            design.to_analysis(metrics["sesoi_used"].to_numpy()[pos]),
+        ]
         with np.errstate(invalid="ignore", divide="ignore"):
             reach = np.nanmax(np.abs(np.vstack(anchors)), axis=0) * 1.6
         reach = np.where(np.isfinite(reach) & (reach > 0), reach, 1.0)
         k = len(pos)
         frac = np.linspace(0.0, 1.0, grid)
-        analysis = test.direction[:, None] * reach[:, None] * frac[None, :]
+        # A row with no direction is drawn on both sides of no effect (its SESOI is a band).
+        span = np.where(test.either[:, None], 2.0 * frac[None, :] - 1.0, frac[None, :])
+        analysis = test.direction[:, None] * reach[:, None] * span
         effects = design.from_analysis(analysis).reshape(-1)
 
         def tile(a: np.ndarray) -> np.ndarray:
             return np.repeat(a, grid)
 
         big_test = type(test)(
-            tile(test.alpha), tile(test.sides), tile(test.power), tile(test.direction)
+            tile(test.alpha),
+            tile(test.sides),
+            tile(test.power),
+            tile(test.direction),
+            tile(test.either),
         )
         curves = {}
         for stage in ("planned", "realized"):
@@ -171,20 +177,16 @@ def write_plots(
                 "-",
             ),
             (metrics["mde"].iat[pos], "MDE (realized)", PALETTE["mde"], "--"),
+            (metrics["sesoi_used"].iat[pos], "SESOI", PALETTE["sesoi"], ":"),
         ]
-        if "sesoi" in row and np.isfinite(row["sesoi"]):
-            direction = design.direction(design.planned_effect(table.iloc[[pos]]))
-            marks.append(
-                (
-                    design.orient(np.array([row["sesoi"]]), direction)[0],
-                    "SESOI",
-                    PALETTE["sesoi"],
-                    ":",
-                )
-            )
+        either = metrics["direction_used"].iat[pos] == "either"
         for x, label, colour, ls in marks:
             if x is not None and np.isfinite(x):
                 ax.axvline(x, color=colour, lw=1.3, ls=ls, label=f"{label} = {x:.3g}")
+                if either and label != "planned effect":
+                    # Either way: the same magnitude on the other side of no effect.
+                    mirror = float(design.from_analysis(-design.to_analysis(np.array([x])))[0])
+                    ax.axvline(mirror, color=colour, lw=1.3, ls=ls)
         achieved = metrics["power_at_planned_effect"].iat[pos]
         if np.isfinite(achieved):
             ax.plot([marks[0][0]], [achieved], "o", color=PALETTE["realized"], ms=6, zorder=5)

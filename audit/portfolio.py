@@ -154,14 +154,12 @@ def _pooled_power(
         with np.errstate(all="ignore"):
             return design.to_analysis(metrics.loc[sub.index, "result_effect"].to_numpy(float))
 
-    def direction(design, sub):
-        return design.direction(design.planned_effect(sub))
-
     family = table["outcome_family"].to_numpy(dtype=object)
     se = metrics["result_se"].to_numpy(dtype=float)
     effect = _per_design(table, rows, analysis)
     usable = rows & pd.notna(family) & np.isfinite(effect) & np.isfinite(se) & (se > 0)
-    sign = _per_design(table, usable, direction)
+    # The direction the audit used (either way: two-sided, so the sign does not matter).
+    sign = np.where(metrics["direction_used"].to_numpy(dtype=object) == "decrease", -1.0, 1.0)
     alpha = (table["alpha"] / table["comparisons"]).to_numpy(dtype=float)
     sides = table["sides"].to_numpy(dtype=float)
     power = np.full(len(table), np.nan)

@@ -473,6 +473,7 @@ def ci_verdicts(
     sesoi: np.ndarray,
     *,
     direction: np.ndarray,
+    either: np.ndarray | None = None,
 ) -> np.ndarray:
     """What a result's confidence interval rules out, as one word per study.
 
@@ -487,6 +488,11 @@ def ci_verdicts(
         ``direction``; only their magnitudes are used.
     direction : array_like
         +1 or -1.
+    either : array_like of bool, optional
+        Studies with no direction (no ``direction`` given and no signed planned effect): the
+        SESOI is then a band ``(-sesoi, sesoi)`` and the interval excludes it only when it lies
+        wholly inside the band; the planned effect is not used; nothing depends on the sign of
+        the estimate.
 
     Returns
     -------
@@ -505,10 +511,18 @@ def ci_verdicts(
     ...             np.array([1.0, 0.0, 0.0, 0.0]), np.array([2.0, 2.0, 2.0, np.nan]),
     ...             np.array([1.0, 1.0, 1.0, np.nan]), direction=1.0).tolist()
     ['detected', 'excludes_planned_effect', 'inconclusive', None]
+
+    With no direction, (-0.3, 0.1) and its mirror image (-0.1, 0.3) get the same verdict
+    against a SESOI of 0.2, and (-0.15, 0.1) lies inside the band:
+
+    >>> ci_verdicts(np.array([-0.3, -0.1, -0.15]), np.array([0.1, 0.3, 0.1]), 0.0, np.nan,
+    ...             0.2, direction=1.0, either=True).tolist()
+    ['inconclusive', 'inconclusive', 'excludes_sesoi']
     """
     ci_low, ci_high, is_significant, planned_effect, sesoi, direction = _arrays(
         ci_low, ci_high, is_significant, planned_effect, sesoi, direction
     )
+    either = np.zeros(ci_low.shape, dtype=bool) if either is None else _arrays(either)[0] > 0
     far = np.maximum(direction * ci_low, direction * ci_high)
     plan = np.abs(planned_effect)
     small = np.abs(sesoi)
@@ -524,5 +538,12 @@ def ci_verdicts(
     out[undecided] = "inconclusive"
     out[excl_plan & ~(excl_sesoi & sesoi_first)] = "excludes_planned_effect"
     out[excl_sesoi & (sesoi_first | ~excl_plan)] = "excludes_sesoi"
+    # No direction: only the band (-sesoi, sesoi) is a reference, on both sides at once.
+    with np.errstate(invalid="ignore"):
+        inside = (np.abs(ci_low) < small) & (np.abs(ci_high) < small)
+    band = either & np.isfinite(ci_low) & np.isfinite(ci_high)
+    out[either] = None
+    out[band & np.isfinite(small)] = "inconclusive"
+    out[band & inside] = "excludes_sesoi"
     out[is_significant == 1.0] = "detected"
     return out

@@ -51,7 +51,7 @@ import pandas as pd
 
 from audit._format import format_number
 from audit.errors import ConfigError
-from audit.metrics import METRICS
+from audit.metrics import METRICS, TEXT_METRICS
 from audit.schema import COLUMNS
 
 __all__ = [
@@ -85,7 +85,8 @@ CONTRACT_METRICS: dict[str, str] = {
 
 #: Columns holding text: only ``is`` and ``blank`` apply to them.
 TEXT_COLUMNS = frozenset(
-    {c.name for c in COLUMNS if c.kind in ("text", "design")} | {"effect_scale", "ci_verdict"}
+    {c.name for c in COLUMNS if c.kind in ("text", "design", "choice") and c.name != "sides"}
+    | TEXT_METRICS
 )
 
 _ID = re.compile(r"^[a-z][a-z0-9]*(?:-[a-z0-9]+)+$")

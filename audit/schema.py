@@ -122,6 +122,15 @@ COLUMNS: tuple[Column, ...] = (
         default="raw",
         choices=("raw", "d"),
     ),
+    Column(
+        "direction",
+        "choice",
+        "effects",
+        "Which way the study hoped the effect goes: 'increase' or 'decrease' (for ratios: "
+        "above or below 1). Blank: the sign of the planned effect, or either way when there is "
+        "none (a one-sided test then needs it).",
+        choices=("increase", "decrease"),
+    ),
     Column("planned_effect", "number", "effects", "Effect the study was powered for."),
     _p("planned_p1", "effects", "Planned control-group proportion."),
     _p("planned_p2", "effects", "Planned intervention-group proportion."),
@@ -197,8 +206,7 @@ COLUMNS: tuple[Column, ...] = (
     _p(
         "observed_ci_level",
         "results",
-        "Level of the reported confidence interval (blank: the level matching the study's test, "
-        "1 - 2 alpha / (comparisons x sides), e.g. 0.95).",
+        "Level of the reported confidence interval (blank: 0.95, what papers report).",
     ),
     _p("observed_p", "results", "Reported p-value of the study's test.", high_open=False),
     _p(

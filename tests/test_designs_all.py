@@ -87,7 +87,17 @@ def _random_rows(rng: np.random.Generator, k: int) -> pd.DataFrame:
     df = pd.DataFrame(data).astype(object)
     blank = rng.uniform(size=df.shape) < 0.25
     blank[:, :2] = False  # study_id and design are always given
-    return df.mask(blank)
+    # Each row fills only what its design reads (other columns get notes or errors, tested in
+    # test_ignored_columns_*), and a one-sided test says which way it looks.
+    for j, column in enumerate(df.columns):
+        blank[:, j] |= ~np.isin(design, [n for n, d in DESIGNS.items() if column in d.inputs()])
+    df = df.mask(blank)
+    df["direction"] = np.where(
+        df["sides"] == 1, rng.choice(["increase", "decrease"], k), None
+    )
+    no_effect = df["planned_effect"].isna() & df["planned_p2"].isna()
+    df["direction"] = np.where(no_effect, df["direction"], None)
+    return df
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
@@ -102,6 +112,11 @@ def test_every_null_metric_has_a_note_on_random_rows(seed):
     assert len(audited) > 100
     for i in audited:
         row = result.metrics.iloc[i]
+        design = DESIGNS[result.table["design"].iat[i]]
+        # Echoes of an input are blank exactly where the input is.
+        assert pd.isna(row["sesoi_used"]) == pd.isna(result.table["sesoi"].iat[i])
+        planned = design.planned_effect(result.table.iloc[[i]])[0]
+        assert pd.isna(row["planned_effect_used"]) == np.isnan(planned)
         for metric in METRICS:
             if pd.isna(row[metric]):
                 assert _explained(metric, notes[i]), (

@@ -84,6 +84,8 @@ def test_bloom_multiplier_for_estimate_rows():
             "realized_se": [1.0, 1.0, 1.0],
             "sides": [2, 1, 2],
             "df": [None, None, 1e6],
+            # A one-sided test needs a direction (issue 13); blank for the two-sided rows.
+            "direction": [None, "increase", None],
         }
     )
     mde = audit.audit_table(df).metrics["mde"].to_numpy()

@@ -65,8 +65,11 @@ class TestSpec:
     alpha : significance level of one comparison (``alpha / comparisons``, Bonferroni).
     sides : 1.0 or 2.0.
     power : the target power.
-    direction : +1.0 or -1.0, the sign of the planned effect; one-sided tests look this way and
-        MDEs are reported with this sign.
+    direction : +1.0 or -1.0 on the analysis scale: the way the study hoped the effect goes
+        (the ``direction`` column, else the sign of the planned effect). One-sided tests look
+        this way and MDEs are reported with this sign. +1.0 where ``either`` is set.
+    either : True where the row says neither (no ``direction`` and no signed planned effect):
+        the test is two-sided, a SESOI is a band around zero and an MDE is a magnitude.
     """
 
     __test__ = False  # not a pytest test class, despite the name
@@ -75,9 +78,69 @@ class TestSpec:
     sides: np.ndarray
     power: np.ndarray
     direction: np.ndarray
+    either: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        if self.either is None:
+            object.__setattr__(self, "either", np.zeros(np.shape(self.direction), dtype=bool))
 
     def subset(self, mask: np.ndarray) -> TestSpec:
-        return TestSpec(self.alpha[mask], self.sides[mask], self.power[mask], self.direction[mask])
+        return TestSpec(
+            self.alpha[mask],
+            self.sides[mask],
+            self.power[mask],
+            self.direction[mask],
+            self.either[mask],
+        )
+
+    def with_power(self, power: np.ndarray) -> TestSpec:
+        """The same tests with another target power."""
+        return TestSpec(self.alpha, self.sides, power, self.direction, self.either)
+
+    def with_direction(self, direction: np.ndarray) -> TestSpec:
+        """The same tests looking the other way where ``direction`` says so."""
+        return TestSpec(self.alpha, self.sides, self.power, direction, self.either)
+
+
+#: Values of the ``direction`` column, as the sign they give on the analysis scale.
+DIRECTIONS = {"increase": 1.0, "decrease": -1.0}
+
+#: Input columns every design reads (the test, the reported result, identity).
+COMMON_INPUTS = frozenset(
+    {
+        "study_id",
+        "title",
+        "design",
+        "alpha",
+        "sides",
+        "target_power",
+        "comparisons",
+        "direction",
+        "sesoi",
+        "observed_effect",
+        "observed_se",
+        "observed_ci_low",
+        "observed_ci_high",
+        "observed_ci_level",
+        "observed_p",
+        "reported_power",
+        "outcome_family",
+    }
+)
+
+#: Columns that describe clustering: read only by cluster designs. Elsewhere ignoring them would
+#: give the power of an individually randomised trial, far too high (an error, not a note).
+CLUSTER_INPUTS = frozenset(
+    {
+        "planned_icc",
+        "realized_icc",
+        "planned_cluster_size",
+        "realized_cluster_size",
+        "cluster_size_cv",
+    }
+)
+#: Columns whose neglect would misstate the analysis (its residual variance or df).
+ADJUSTMENT_INPUTS = frozenset({"covariates", "covariate_r2"})
 
 
 def _column(rows: pd.DataFrame, name: str) -> np.ndarray:
@@ -85,6 +148,36 @@ def _column(rows: pd.DataFrame, name: str) -> np.ndarray:
     if name in rows.columns:
         return rows[name].to_numpy(dtype=float, na_value=np.nan)
     return np.full(len(rows), np.nan)
+
+
+def _directions(rows: pd.DataFrame) -> np.ndarray:
+    """The ``direction`` column as +1 / -1, nan where blank."""
+    if "direction" not in rows.columns:
+        return np.full(len(rows), np.nan)
+    text = rows["direction"].to_numpy(dtype=object)
+    return np.array([DIRECTIONS.get(v, np.nan) for v in text], dtype=float)
+
+
+def _filled(rows: pd.DataFrame, name: str) -> np.ndarray:
+    """Where a column holds a value that says something: given, and not its default."""
+    from audit.schema import SPECS  # the column table (a late import: it imports us)
+
+    if name not in rows.columns:
+        return np.zeros(len(rows), dtype=bool)
+    spec = SPECS.get(name)
+    values = rows[name]
+    if values.dtype.kind in "fiub":
+        x = values.to_numpy(dtype=float, na_value=np.nan)
+        if spec is not None and spec.kind == "flag":
+            return x == 1.0  # "no" asks nothing of a design that has no such option
+        given = np.isfinite(x)
+        if spec is not None and isinstance(spec.default, float):
+            given &= x != spec.default
+        return given
+    given = values.notna().to_numpy(dtype=bool)
+    if spec is not None and spec.default is not None:
+        given &= (values != spec.default).to_numpy(dtype=bool, na_value=False)
+    return given
 
 
 def allocation_ratio(sc: Scenario) -> np.ndarray:
@@ -129,6 +222,15 @@ class Design:
     not_applicable: ClassVar[dict[str, str]] = {}
     #: Effect columns of the input that hold values in this design's effect unit.
     effect_columns: ClassVar[tuple[str, ...]] = ("planned_effect", "sesoi")
+    #: Input columns the design reads beyond its scenario keys and effect columns.
+    extra_inputs: ClassVar[tuple[str, ...]] = ()
+    #: False for tests without a direction (F tests): effects are magnitudes.
+    has_direction: ClassVar[bool] = True
+    #: True when power and MDE depend only on the effect's magnitude on the analysis scale; a
+    #: row with no direction then needs no look at the other side (see audit.metrics).
+    symmetric: ClassVar[bool] = True
+    #: Columns whose sizes follow the one-group convention (total N in ``planned_n1``).
+    one_group: ClassVar[bool] = False
 
     # -- reading --------------------------------------------------------------------------------
 
@@ -151,9 +253,131 @@ class Design:
     def effect_sources(self) -> str:
         return "planned_effect"
 
-    def direction(self, effect: np.ndarray) -> np.ndarray:
-        """+1 or -1: the side a one-sided test looks at, from the planned effect (+1 if blank)."""
-        return np.where(effect < 0, -1.0, 1.0)
+    def effect_sign(self, effect: np.ndarray) -> np.ndarray:
+        """+1 or -1: the sign of a planned effect on the analysis scale; 0 where it is blank
+        or null (no effect), which says nothing about the hoped-for direction."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            a = self.to_analysis(np.asarray(effect, dtype=float))
+        return np.where(np.isfinite(a), np.sign(a), 0.0)
+
+    def inputs(self) -> frozenset[str]:
+        """Every input column this design reads (the rest it ignores, with a note)."""
+        staged = {f"{stage}_{k}" for k in self.stage_keys for stage in ("planned", "realized")}
+        own = staged | set(self.shared_keys) | set(self.effect_columns) | set(self.extra_inputs)
+        common = COMMON_INPUTS if self.has_direction else COMMON_INPUTS - {"direction"}
+        return common | own
+
+    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+        """Row checks: ``(bad_mask, column, reason)`` triples. The direction and the columns the
+        design would ignore to a wrong result, then the design's own :meth:`row_checks`."""
+        out = []
+        if self.has_direction and "direction" in rows.columns:
+            given = _directions(rows)
+            sign = self.effect_sign(self.planned_effect(rows))
+            word = np.where(sign > 0, "an increase", "a decrease")
+            opposite = np.isfinite(given) & (given * sign < 0)
+            if opposite.any():
+                reason = np.full(len(rows), "", dtype=object)
+                reason[opposite] = (
+                    f"contradicts the planned effect ({self.effect_sources()}), which is "
+                    + word[opposite].astype(object)
+                    + "; give one or make them agree"
+                )
+                out.append((opposite, "direction", reason))
+        if self.has_direction:
+            sides = _column(rows, "sides")
+            unknown = ~np.isfinite(_directions(rows)) & (
+                self.effect_sign(self.planned_effect(rows)) == 0
+            )
+            out.append(
+                (
+                    (sides == 1) & unknown,
+                    "sides",
+                    "a one-sided test needs a direction: fill direction (increase or decrease) "
+                    "or a signed planned effect",
+                )
+            )
+        out.extend(self._ignored_errors(rows))
+        out.extend(self.row_checks(rows))
+        return out
+
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+        """Design-specific row checks: ``(bad_mask, column, reason)`` triples."""
+        return []
+
+    def _ignored_errors(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+        """Filled columns the design cannot use and whose neglect would give a wrong result."""
+        used = self.inputs()
+        out = []
+        from audit.designs import DESIGNS  # the registry (a late import: it imports us)
+
+        cluster = ", ".join(n for n, d in DESIGNS.items() if CLUSTER_INPUTS <= d.inputs())
+        adjusting = ", ".join(n for n, d in DESIGNS.items() if "covariate_r2" in d.inputs())
+        for column in sorted((CLUSTER_INPUTS | ADJUSTMENT_INPUTS) - used):
+            filled = _filled(rows, column)
+            if column in CLUSTER_INPUTS:
+                why = (
+                    f"is filled, but {self.name} assumes individual randomisation and would "
+                    f"ignore the clustering (its power would be far too high): use a cluster "
+                    f"design ({cluster}) or leave the clustering columns blank"
+                )
+            else:
+                why = (
+                    f"is filled, but {self.name} cannot take covariate adjustment and would "
+                    f"ignore it: leave covariates and covariate_r2 blank (power then refers to "
+                    f"the unadjusted analysis), use a design that adjusts ({adjusting}), or "
+                    "give the adjusted standard error with the estimate design"
+                )
+            out.append((filled, column, why))
+        if self.one_group:
+            for column in ("planned_n2", "realized_n2"):
+                out.append(
+                    (
+                        _filled(rows, column),
+                        column,
+                        f"is filled, but {self.name} takes the whole sample in "
+                        f"{column.replace('n2', 'n1')} (N, not per group): put the total there "
+                        "and leave this column blank",
+                    )
+                )
+        if "effect_scale" not in used:
+            scale = rows["effect_scale"] if "effect_scale" in rows.columns else None
+            if scale is not None:
+                d = (scale == "d").to_numpy(dtype=bool, na_value=False)
+                out.append(
+                    (
+                        d,
+                        "effect_scale",
+                        f"is 'd', but {self.name} has no standardized-mean-difference scale: "
+                        f"give effects in its own unit ({self.effect_unit})",
+                    )
+                )
+        return out
+
+    def ignored_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, np.ndarray]]:
+        """``(mask, text)``: for each row, the filled columns this design does not read."""
+        from audit.schema import COLUMNS  # the column table (a late import: it imports us)
+
+        used = self.inputs() | CLUSTER_INPUTS | ADJUSTMENT_INPUTS | {"effect_scale"}
+        if self.one_group:
+            used |= {"planned_n2", "realized_n2"}
+        parts = [
+            (_filled(rows, c.name), c.name)
+            for c in COLUMNS
+            if c.name not in used and c.name in rows.columns
+        ]
+        if not parts:
+            return []
+        labels = np.full(len(rows), "", dtype=object)
+        for mask, name in parts:
+            if mask.any():
+                sep = np.where(labels[mask] == "", "", ", ")
+                labels[mask] = labels[mask] + sep + name
+        hit = labels != ""
+        text = (
+            f"filled but not used by {self.name}, which ignores them: " + labels[hit]
+        ).astype(object)
+        return [(hit, text)]
 
     def orient(self, value: np.ndarray, direction: np.ndarray) -> np.ndarray:
         """An effect given as a magnitude (the SESOI), pointed in the planned direction."""
@@ -174,10 +398,6 @@ class Design:
         reported confidence intervals and p-values; nan where the scenario leaves them unknown."""
         size = len(next(iter(sc.values()))) if sc else 0
         return np.full(size, np.inf)
-
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
-        """Design-specific row checks: ``(bad_mask, column, reason)`` triples."""
-        return []
 
     def fallback_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str]]:
         """Notes about values assumed where a row left a column blank: ``(mask, text)``."""

@@ -111,7 +111,7 @@ class ClusterTwoMeans(_TwoGroups):
             )
         return out
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         out = []
         for stage in ("planned", "realized"):
             n1 = _column(rows, f"{stage}_n1")

@@ -48,6 +48,7 @@ class Correlation(Design):
     standardized_as = "r"
     stage_keys = ("n1",)
     size_keys = ("n1",)
+    one_group = True
 
     def to_analysis(self, effect: np.ndarray) -> np.ndarray:
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -56,7 +57,7 @@ class Correlation(Design):
     def from_analysis(self, value: np.ndarray) -> np.ndarray:
         return np.tanh(np.asarray(value, dtype=float))
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         out = [
             (
                 np.abs(_column(rows, column)) >= 1,

@@ -33,6 +33,7 @@ class _MeanDesign(TDesign):
     """Shared reading of SDs and the effect scale."""
 
     stage_keys = ("n1", "sd")
+    extra_inputs = ("effect_scale",)
     ratio_keys: ClassVar[dict[str, tuple[str, str]]] = {"sd_ratio": ("planned_sd", "realized_sd")}
     nuisance_keys = ("sd",)
 
@@ -68,6 +69,7 @@ class _MeanDesign(TDesign):
 
 class _OneGroup(_MeanDesign):
     size_keys = ("n1",)
+    one_group = True
 
     def se(self, sc: Scenario, effect: np.ndarray | None = None) -> np.ndarray:
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -87,7 +89,7 @@ class _OneGroup(_MeanDesign):
     def rounded_total(self, sc: Scenario, n1: np.ndarray) -> np.ndarray:
         return np.ceil(n1)
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         out = []
         for stage in ("planned", "realized"):
             n = _column(rows, f"{stage}_n1")
@@ -196,7 +198,7 @@ class TwoMeans(_TwoGroups):
     def df_spent(self, sc: Scenario) -> np.ndarray:
         return 2.0 + sc["covariates"]
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         q = _column(rows, "covariates")
         q = np.where(np.isnan(q), np.where(np.isnan(_column(rows, "covariate_r2")), 0, 1), q)
         out = []

@@ -189,6 +189,10 @@ class TwoProportions(Design):
     standardized_as = "h"
     stage_keys = ("n1", "n2", "p1")
     nuisance_keys = ("p1",)
+    extra_inputs = ("planned_p2", "continuity_correction")
+    # The variance of a risk difference depends on where it lies: detecting a rise from p1 is
+    # not as hard as detecting a fall of the same size.
+    symmetric = False
 
     # -- reading --------------------------------------------------------------------------------
 
@@ -215,7 +219,7 @@ class TwoProportions(Design):
     def effect_sources(self) -> str:
         return "planned_p2 (or planned_effect)"
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         p1 = _column(rows, "planned_p1")
         p2 = _column(rows, "planned_p2")
         effect = _column(rows, "planned_effect")
@@ -353,8 +357,8 @@ class TwoProportions(Design):
         effect_blank = (np.isnan(effect), self.effect_sources())
         no_mde = (
             test.power > test.alpha,
-            "no risk difference in the planned direction reaches the target power from this "
-            "control rate",
+            "no risk difference in the direction used (with no direction: on one of the two "
+            "sides) reaches the target power from this control rate",
         )
         return {
             "power_at_planned_effect": NullReasons(conditions=((off_real, outside),)),

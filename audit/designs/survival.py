@@ -86,9 +86,6 @@ class Survival(Design):
         # (see null_explanations), so a blank allocation is not blamed for a null power.
         return {"events": f"{stage}_events"}
 
-    def direction(self, effect: np.ndarray) -> np.ndarray:
-        return np.where(np.asarray(effect) < 1.0, -1.0, 1.0)
-
     def orient(self, value: np.ndarray, direction: np.ndarray) -> np.ndarray:
         return self.from_analysis(direction * np.abs(self.to_analysis(value)))
 
@@ -99,7 +96,7 @@ class Survival(Design):
     def from_analysis(self, value: np.ndarray) -> np.ndarray:
         return np.exp(np.asarray(value, dtype=float))
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         out = [
             (_column(rows, c) <= 0, c, "a hazard ratio must be greater than 0")
             for c in self.effect_columns

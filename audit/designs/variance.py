@@ -44,7 +44,10 @@ class _FDesign(Design):
     """Shared maths: subclasses give ``f2`` (effect -> f²), ``dfn`` and ``spent`` (N − dfd)."""
 
     size_keys = ("n1",)
+    has_direction = False
+    one_group = True
     not_applicable: ClassVar[dict[str, str]] = {
+        "direction_used": "an F test has no direction (effects are magnitudes)",
         "se_plan": _NO_SE,
         "se_realized": _NO_SE,
         "precision_ratio": _NO_SE,
@@ -63,7 +66,7 @@ class _FDesign(Design):
         """Total size minus the denominator df (k for k means, u + q + 1 for regression)."""
         raise NotImplementedError
 
-    def direction(self, effect: np.ndarray) -> np.ndarray:
+    def effect_sign(self, effect: np.ndarray) -> np.ndarray:
         return np.ones(np.shape(effect))
 
     def fallback_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str]]:
@@ -74,7 +77,7 @@ class _FDesign(Design):
             )
         ]
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         out = [
             (_column(rows, c) < 0, c, f"must be >= 0 ({self.standardized_as} is a magnitude)")
             for c in self.effect_columns
@@ -184,9 +187,9 @@ class KMeans(_FDesign):
         k = sc["groups"]
         return k * np.ceil(total / k)
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         k = _column(rows, "groups")
-        out = super().check_rows(rows)
+        out = super().row_checks(rows)
         for stage in ("planned", "realized"):
             out.append(
                 (
@@ -213,6 +216,8 @@ class Regression(_FDesign):
     standardized_as = "f2"
     stage_keys = ("n1",)
     shared_keys = ("predictors", "covariates")
+    # Read only to say, in a note, that f² is already net of the covariates.
+    extra_inputs = ("covariate_r2",)
 
     def scenario(self, rows: pd.DataFrame, stage: str) -> Scenario:
         sc = super().scenario(rows, stage)
@@ -231,10 +236,10 @@ class Regression(_FDesign):
     def spent(self, sc: Scenario) -> np.ndarray:
         return sc["predictors"] + sc["covariates"] + 1.0
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+    def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         u = _column(rows, "predictors")
         q = np.nan_to_num(_column(rows, "covariates"))
-        out = super().check_rows(rows)
+        out = super().row_checks(rows)
         for stage in ("planned", "realized"):
             out.append(
                 (
