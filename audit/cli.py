@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from audit import __version__
-from audit.errors import AuditError, ConfigError
+from audit.errors import AuditError, ConfigError, OutputError
 
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
@@ -141,7 +141,12 @@ def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) ->
 def _add_check_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--sheet", help="worksheet to read (default: the first)")
     _add_rules_option(p)
-    p.add_argument("--study", metavar="ID", help="show one study in depth instead of the portfolio")
+    p.add_argument(
+        "--study",
+        metavar="ID",
+        action="append",
+        help="show this study in depth instead of the portfolio (repeat for several)",
+    )
     p.add_argument(
         "--fail-on",
         choices=SEVERITIES,
@@ -202,7 +207,7 @@ class CheckRun:
     path: Path
     sheet: str | None = None
     rule_files: Sequence[Path] = ()
-    study: str | None = None
+    study: list[str] | None = None
     fail_on: str | None = None
     json_out: str | None = None
     csv_out: str | None = None
@@ -253,13 +258,14 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
             # The report is rendered while a child still encodes JSON; shown after the exports.
             report_text = _rendered_report(result, to_stdout, run.fail_on)
         positions: list[int] = []
-        if run.study is not None:
-            positions = result.positions_of(run.study)
-            if not positions:
+        for study in run.study or ():
+            found = result.positions_of(study)
+            if not found:
                 raise ConfigError(
-                    f"no study with study_id '{run.study}' in {run.path} (ids look like: "
+                    f"no study with study_id '{study}' in {run.path} (ids look like: "
                     f"{study_ids_hint(result)})."
                 )
+            positions.extend(p for p in found if p not in positions)
         if run.json_out:
             progress("writing JSON")
             write_json(result, run.json_out)
@@ -393,7 +399,12 @@ def _demo(args: argparse.Namespace) -> int:
 
     source = bundled_dir("demo_data") / "demo_portfolio.csv"
     out: Path = args.out
-    out.mkdir(parents=True, exist_ok=True)
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"--out needs a folder for the demo's files, but {out} is a file.")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot make the folder {out}: {exc.strerror}.") from exc
     status, result = _run_check(
         CheckRun(
             path=source,

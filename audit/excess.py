@@ -29,6 +29,7 @@ from scipy import special
 
 __all__ = [
     "ExcessTest",
+    "deficit_p_value",
     "excess_significance_test",
     "poisson_binomial_pmf",
     "poisson_binomial_sf",
@@ -205,3 +206,26 @@ def excess_significance_test(
         p_value = float(special.bdtrc(observed - 1, n, pw[0]))
         return ExcessTest(observed, expected, n, p_value, "binomial")
     return ExcessTest(observed, expected, n, poisson_binomial_sf(observed, pw), "poisson-binomial")
+
+
+def deficit_p_value(significant: np.ndarray, power: np.ndarray) -> float:
+    """``P(X <= O)``: the probability of as few significant results as observed, or fewer.
+
+    The lower tail of the same Poisson-binomial as :func:`excess_significance_test` (binomial
+    when all powers are equal), computed as the upper tail of the number of *non*-significant
+    results, ``P(n - X >= n - O)`` with probabilities ``1 - power``, so that far lower tails
+    keep their relative accuracy too.
+
+    Examples
+    --------
+    Ten studies with 80 % power, only four significant:
+
+    >>> round(deficit_p_value([True] * 4 + [False] * 6, [0.8] * 10), 5)
+    0.00637
+    """
+    sig = np.asarray(significant, dtype=bool).ravel()
+    pw = np.clip(np.asarray(power, dtype=float).ravel(), 0.0, 1.0)
+    n, observed = len(pw), int(sig.sum())
+    if n and np.ptp(pw) <= 1e-12:
+        return float(special.bdtr(observed, n, pw[0]))
+    return poisson_binomial_sf(n - observed, 1.0 - pw)

@@ -363,8 +363,10 @@ def _design_metrics(
             out["n_required_plan"] if same else design.required_size(replan, effect, test)
         )
         out["power_if_planned_size"] = design.power(replan, effect, test)
-        out["power_cost_nuisance"] = out["plan_power"] - out["power_if_planned_size"]
-        out["power_cost_attrition"] = out["power_if_planned_size"] - out["power_at_planned_effect"]
+        out["power_cost_nuisance"] = _difference(out["plan_power"], out["power_if_planned_size"])
+        out["power_cost_attrition"] = _difference(
+            out["power_if_planned_size"], out["power_at_planned_effect"]
+        )
         out.update(design.extra_metrics(plan, real, effect, test))
         out["direction_used"] = direction_words(test)
         out["planned_effect_used"] = effect
@@ -389,6 +391,13 @@ def _design_metrics(
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
     out.update(_retro_metrics(design, rows, positions, notes, out, test, plan, real, effect, sesoi))
     return out
+
+
+def _difference(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a - b`` for two powers, with rounding noise (the same power reached along two paths of
+    arithmetic, 1e-17 apart) shown as the zero it is."""
+    d = a - b
+    return np.where(np.abs(d) < 1e-12, 0.0, d)
 
 
 def _sesoi_on_harder_side(

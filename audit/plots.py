@@ -14,12 +14,14 @@ from __future__ import annotations
 
 import re
 import textwrap
+from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
 
 from audit.designs import DESIGNS
+from audit.errors import OutputError
 from audit.metrics import test_settings
 
 if TYPE_CHECKING:
@@ -109,11 +111,14 @@ def power_curves(
     return out
 
 
-def _choose(result: AuditResult, max_studies: int, study: str | None) -> np.ndarray:
+def _choose(
+    result: AuditResult, max_studies: int, study: str | Sequence[str] | None
+) -> np.ndarray:
     audited = np.flatnonzero(result.valid)
     if study is not None:
+        wanted = [study] if isinstance(study, str) else list(study)
         ids = result.table["study_id"].to_numpy(dtype=object)
-        return audited[ids[audited] == study]
+        return audited[np.isin(ids[audited], wanted)]
     rank = np.full(len(result.table), 3)
     f = result.findings
     if len(f):
@@ -133,16 +138,29 @@ def write_plots(
     *,
     fmt: str = "png",
     max_studies: int = 60,
-    study: str | None = None,
+    study: str | Sequence[str] | None = None,
 ) -> list[Path]:
-    """Write the figures into ``folder``; returns the files written."""
+    """Write the figures into ``folder``; returns the files written.
+
+    ``study``: draw only these studies (an id or several) instead of the most flagged ones.
+
+    Raises
+    ------
+    OutputError
+        ``folder`` is an existing file, or cannot be made.
+    """
+    folder = Path(folder)
+    if folder.exists() and not folder.is_dir():
+        raise OutputError(f"--plots needs a folder, but {folder} is a file.")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot make the figures folder {folder}: {exc.strerror}.") from exc
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
     written: list[Path] = []
     positions = _choose(result, max_studies, study)
     curves = power_curves(result, positions)

@@ -11,7 +11,7 @@ import pandas as pd
 
 from audit.designs import DESIGNS
 from audit.designs._power import t_power
-from audit.excess import excess_significance_test
+from audit.excess import deficit_p_value, excess_significance_test
 
 __all__ = ["EXCESS_DEFAULTS", "ExcessSettings", "excess_significance", "portfolio_summary"]
 
@@ -78,6 +78,73 @@ def _median(x: pd.Series) -> float | None:
     return float(np.median(x)) if len(x) else None
 
 
+#: Bands of design-based power the portfolio summary counts studies in (the last includes 1).
+POWER_BANDS = ((0.0, 0.2), (0.2, 0.5), (0.5, 0.8), (0.8, 0.9), (0.9, 1.0))
+
+#: Severities from the most to the least severe (as audit.rules orders them).
+_WORST_FIRST = ("serious", "warning", "note")
+
+
+def _quartiles(x: np.ndarray) -> list[float] | None:
+    """First quartile, median and third quartile (numpy's linear interpolation), or None."""
+    if not len(x):
+        return None
+    return [float(v) for v in np.quantile(x, [0.25, 0.5, 0.75])]
+
+
+def power_distribution(power: np.ndarray, target: np.ndarray) -> dict[str, Any]:
+    """How the studies' design-based power at the planned effect is spread.
+
+    ``studies``: those with a power; ``quartiles``: [q1, median, q3]; ``at_target``: how many
+    reach their own target power; ``bands``: studies per :data:`POWER_BANDS` band, each
+    ``[low, high)`` (the last ``[0.9, 1]``).
+    """
+    known = np.isfinite(power)
+    p, t = power[known], target[known]
+    bands = []
+    for low, high in POWER_BANDS:
+        inside = (p >= low) & ((p < high) if high < 1.0 else (p <= high))
+        bands.append({"low": low, "high": high, "studies": int(inside.sum())})
+    return {
+        "studies": int(known.sum()),
+        "quartiles": _quartiles(p),
+        "at_target": int((p >= t - 1e-12).sum()),
+        "bands": bands,
+    }
+
+
+def mde_std_distribution(designs: np.ndarray, mde_std: np.ndarray) -> dict[str, Any]:
+    """Per design, the spread of the standardized MDE's magnitude (a sign only says which way a
+    study looked): ``unit``, ``studies``, ``median`` and ``quartiles`` ([q1, median, q3])."""
+    out: dict[str, Any] = {}
+    magnitude = np.abs(mde_std)
+    for name in sorted({d for d in designs if isinstance(d, str)}):
+        values = magnitude[(designs == name) & np.isfinite(magnitude)]
+        if len(values):
+            design = DESIGNS.get(name)
+            q = _quartiles(values)
+            out[name] = {
+                "unit": design.standardized_as if design is not None else None,
+                "studies": len(values),
+                "median": q[1],
+                "quartiles": q,
+            }
+    return out
+
+
+def worst_findings(findings: pd.DataFrame, valid: np.ndarray) -> dict[str, int]:
+    """Audited studies by their most severe finding (``none``: no finding)."""
+    n = len(valid)
+    rank = {s: i for i, s in enumerate(_WORST_FIRST)}
+    worst = np.full(n, len(_WORST_FIRST))
+    if len(findings):
+        ranks = findings["severity"].map(rank).to_numpy(dtype=int)
+        np.minimum.at(worst, findings["pos"].to_numpy(dtype=int), ranks)
+    out = {s: int(((worst == i) & valid).sum()) for i, s in enumerate(_WORST_FIRST)}
+    out["none"] = int(((worst == len(_WORST_FIRST)) & valid).sum())
+    return out
+
+
 def portfolio_summary(
     table: pd.DataFrame,
     metrics: pd.DataFrame,
@@ -89,20 +156,22 @@ def portfolio_summary(
     """The contract's portfolio block (DESIGN.md section 5).
 
     ``share_at_target_power`` is the share of studies with a computable power at the planned
-    effect whose power reaches that study's own target; ``median_mde_std`` is given per design
-    (standardized MDEs are comparable only within a design).
+    effect whose power reaches that study's own target; ``median_mde_std`` is the median of the
+    magnitudes of ``mde_std`` per design (standardized MDEs are comparable only within a
+    design, and their sign only says which way a study looked). The report and the figures
+    read these numbers; they compute none of their own.
     """
     audited = metrics.loc[valid]
     power = audited["power_at_planned_effect"]
-    target = table.loc[valid, "target_power"]
-    known = power.notna()
-    share = float((power[known] >= target[known] - 1e-12).mean()) if known.any() else None
-    by_design: dict[str, float | None] = {}
-    designs = table.loc[valid, "design"]
-    for name in sorted(designs.dropna().unique()):
-        value = _median(audited.loc[designs == name, "mde_std"])
-        if value is not None:
-            by_design[name] = value
+    spread = power_distribution(
+        power.to_numpy(dtype=float), table.loc[valid, "target_power"].to_numpy(dtype=float)
+    )
+    share = spread["at_target"] / spread["studies"] if spread["studies"] else None
+    mde_spread = mde_std_distribution(
+        table.loc[valid, "design"].to_numpy(dtype=object),
+        audited["mde_std"].to_numpy(dtype=float),
+    )
+    by_design = {name: d["median"] for name, d in mde_spread.items()}
     flag_counts = (
         {str(k): int(v) for k, v in findings["rule"].value_counts().sort_index().items()}
         if len(findings)
@@ -117,11 +186,14 @@ def portfolio_summary(
         "audited": int(valid.sum()),
         "invalid": int((~valid).sum()),
         "blank_rows_skipped": int(blank_rows),
-        "studies_with_power": int(known.sum()),
+        "studies_with_power": spread["studies"],
         "median_power_at_planned_effect": _median(power),
         "share_at_target_power": share,
         "median_mde_std": by_design,
+        "power_distribution": spread,
+        "mde_std_distribution": mde_spread,
         "flag_counts": flag_counts,
+        "studies_by_worst_finding": worst_findings(findings, valid),
         "ci_verdict_counts": verdict_counts,
         "median_exaggeration": _median(exaggeration),
         "excess_significance": excess_block,
@@ -232,6 +304,13 @@ def excess_significance(
             "needed"
         )
     result = excess_significance_test(sig[use] == 1.0, power[use], method=settings.method)
+    deficit = None
+    if result.observed < result.expected:
+        deficit = {
+            "observed": result.observed,
+            "expected": result.expected,
+            "p_value": deficit_p_value(sig[use] == 1.0, power[use]),
+        }
     method = {
         "binomial": "exact binomial (all powers equal)",
         "poisson-binomial": "exact Poisson-binomial over the studies' own powers",
@@ -245,6 +324,7 @@ def excess_significance(
         "method": method,
         "alternative": "more significant results than the powers predict (one-sided)",
         "studies": result.studies,
+        "deficit": deficit,
         **counts,
         "minimum_studies": int(settings.min_studies),
     }

@@ -71,7 +71,6 @@ MAX_LISTED = 50
 MAX_CLEAN_NAMED = 20
 
 #: Bands of design-based power for the portfolio's distribution, as [low, high).
-POWER_BANDS = ((0.0, 0.2), (0.2, 0.5), (0.5, 0.8), (0.8, 0.9), (0.9, 1.0 + 1e-9))
 _BAR_WIDTH = 30
 #: Below this width the studies with findings are stacked instead of tabulated.
 NARROW = 80
@@ -166,9 +165,31 @@ def _results_lines(portfolio: dict) -> list[str]:
             f"{excess['expected']:.1f} expected; one-sided p = {format_number(excess['p_value'])}"
             f" ({excess['method']}; basis: {excess['basis']})"
         )
+        deficit = excess.get("deficit")
+        if deficit:
+            lines.append(deficit_sentence(deficit))
     elif portfolio.get("excess_significance_note"):
-        lines.append(f"excess significance not tested: {portfolio['excess_significance_note']}")
+        lines.append(portfolio["excess_significance_note"])
     return lines
+
+
+#: Below this lower-tail probability a shortfall of significant results is called a deficit.
+DEFICIT_LEVEL = 0.05
+
+
+def deficit_sentence(deficit: dict) -> str:
+    """What a shortfall of significant results says, in words."""
+    counts = (
+        f"{deficit['observed']:,} significant results against {deficit['expected']:.1f} "
+        f"expected; P(this few or fewer) = {format_number(deficit['p_value'])}"
+    )
+    if deficit["p_value"] < DEFICIT_LEVEL:
+        return (
+            f"far fewer results are significant than the studies' powers predict ({counts}): "
+            "the planned effects look optimistic for these studies, or significant results "
+            "went unreported"
+        )
+    return f"fewer results are significant than predicted ({counts}), within chance"
 
 
 def _text(value: object) -> str:
@@ -194,41 +215,31 @@ def key_numbers(result: AuditResult, pos: int) -> list[str]:
         unit = design.standardized_as if design is not None else None
         std = m.get("mde_std", np.nan)
         show_std = unit and math.isfinite(std) and not math.isclose(abs(std), abs(mde))
-        extra = f" ({unit} {format_number(abs(std))})" if show_std else ""
-        out.append(f"MDE {format_number(mde)}{extra}")
+        # mde and mde_std carry the same sign (the direction used); either way: magnitudes.
+        extra = f" ({unit} {format_number(std)})" if show_std else ""
+        either = " either way" if m.get("direction_used") == "either" else ""
+        out.append(f"MDE {format_number(mde)}{either}{extra}")
     ratio = m.get("n_ratio", np.nan)
     if math.isfinite(ratio):
         out.append(f"size {ratio:.0%} of plan")
     return out
 
 
-def _quartiles(x: np.ndarray) -> tuple[float, float, float]:
-    q1, med, q3 = np.quantile(x, [0.25, 0.5, 0.75])
-    return float(q1), float(med), float(q3)
-
-
 def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
     """Compute what the portfolio report shows; vectorised over studies, loops only over the
     at most ``limit`` studies listed."""
-    table, metrics, valid = result.table, result.metrics, result.valid
+    table, valid = result.table, result.valid
     p = result.portfolio
-    power = metrics["power_at_planned_effect"].to_numpy(dtype=float)[valid]
-    target = table["target_power"].to_numpy(dtype=float)[valid]
-    known = np.isfinite(power)
-    bands = []
-    for low, high in POWER_BANDS:
-        count = int(((power[known] >= low) & (power[known] < high)).sum())
-        label = f"{low:.2f} – {min(high, 1.0):.2f}" if high <= 1.0 else f"{low:.2f} – 1.00"
-        bands.append((label, count))
-    mde_rows = []
-    designs = table["design"].to_numpy(dtype=object)[valid]
-    mde_std = np.abs(metrics["mde_std"].to_numpy(dtype=float)[valid])
-    for name in sorted({d for d in designs if isinstance(d, str)}):
-        values = mde_std[(designs == name) & np.isfinite(mde_std)]
-        if len(values):
-            unit = DESIGNS[name].standardized_as if name in DESIGNS else None
-            q1, med, q3 = _quartiles(values)
-            mde_rows.append((name, unit or "-", len(values), med, q1, q3))
+    # Portfolio statistics come from the portfolio block (audit.portfolio): laid out here only.
+    spread = p["power_distribution"]
+    bands = [
+        (f"{b['low']:.2f} – {b['high']:.2f}", int(b["studies"])) for b in spread["bands"]
+    ]
+    quartiles = spread["quartiles"]
+    mde_rows = [
+        (name, d["unit"] or "-", d["studies"], d["median"], d["quartiles"][0], d["quartiles"][2])
+        for name, d in p["mde_std_distribution"].items()
+    ]
 
     findings = result.findings
     problems = result.rule_problems
@@ -250,14 +261,12 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
     worst = np.full(n, -1)
     count = np.zeros(n, dtype=int)
     if len(findings):
+        # For the listing order only; the counts are the portfolio's.
         ranks = findings["severity"].map(SEVERITY_RANK).to_numpy(dtype=int)
         positions = findings["pos"].to_numpy(dtype=int)
         np.maximum.at(worst, positions, ranks)
         np.add.at(count, positions, 1)
-    by_worst = {
-        s: int(((worst == i) & valid).sum()) for i, s in reversed(list(enumerate(SEVERITIES)))
-    }
-    by_worst["none"] = int(((worst < 0) & valid).sum())
+    by_worst = dict(p["studies_by_worst_finding"])
     flagged_pos = np.flatnonzero(worst >= 0)
     # Most severe first, then most findings, then input order.
     order = np.lexsort((flagged_pos, -count[flagged_pos], -worst[flagged_pos]))
@@ -312,9 +321,9 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
         rule_files=list(result.settings.get("rule_files", [])),
         waiting=dict(result.rules_waiting),
         disabled=list(result.settings.get("rules_disabled", [])),
-        power_known=int(known.sum()),
-        power_quartiles=_quartiles(power[known]) if known.any() else None,
-        at_target=int((power[known] >= target[known] - 1e-12).sum()),
+        power_known=int(spread["studies"]),
+        power_quartiles=tuple(quartiles) if quartiles else None,
+        at_target=int(spread["at_target"]),
         power_bands=bands,
         mde_rows=mde_rows,
         rule_counts=rule_counts,
@@ -687,7 +696,7 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
             "design",
             _text(row["design"]) + (f" — {design.title}" if design is not None else ""),
         )
-        sides = "one-sided" if _text(row["sides"]) == "1" else "two-sided"
+        sides = "one-sided" if float(row["sides"]) == 1.0 else "two-sided"
         grid.add_row(
             "test",
             f"alpha {_cell(row['alpha'])} {sides}, {_cell(row['comparisons'])} comparison(s), "

@@ -223,3 +223,25 @@ def test_a_rule_that_fails_is_reported_and_counts_for_fail_on(monkeypatch, capsy
     assert "simulated failure" in err and "Traceback" not in err
     # The other rules still ran: the serious finding of RX-01 is there.
     assert main(["check", str(FIXTURE), "--quiet", "--fail-on", "serious"]) == 1
+
+
+def test_study_twice_shows_both_studies(capsys):
+    # Issue 13: --study A --study B showed only B.
+    assert main(["check", str(DEMO), "--study", "KF-101", "--study", "KF-104"]) == 0
+    out = capsys.readouterr().out
+    assert "study-audit: study KF-101" in out and "study-audit: study KF-104" in out
+    # KF-104 is one-sided (alpha .025, sides 1 in the demo file): the view says so.
+    view = out.split("study-audit: study KF-104", 1)[1]
+    (test_line,) = [line for line in view.splitlines() if line.startswith(" test ")][:1]
+    assert "alpha 0.025 one-sided" in test_line
+
+
+def test_user_mistakes_with_output_folders_are_exit_2(tmp_path, capsys):
+    # Issue 13: --plots onto an existing file was an internal error (exit 3).
+    a_file = tmp_path / "taken"
+    a_file.write_text("keep me")
+    assert main(["check", str(DEMO), "--plots", str(a_file), "--quiet"]) == 2
+    assert "is a file" in capsys.readouterr().err
+    assert main(["demo", "--out", str(a_file)]) == 2
+    assert "is a file" in capsys.readouterr().err
+    assert a_file.read_text() == "keep me"
