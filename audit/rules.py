@@ -357,66 +357,172 @@ class Not(Condition):
 # -- message templates ----------------------------------------------------------------------------
 
 
+#: A part of a message: literal text, a ``(name, spec)`` field, or an optional clause given as
+#: its alternatives (each a tuple of parts without clauses).
+Part = str | tuple[str, str | None] | list[tuple]
+
+_CLAUSE = re.compile(r"\[([^\[\]]*)\]")
+
+
+def _parse_parts(text: str) -> tuple:
+    """Literal text and ``(name, spec)`` fields, in order."""
+    parts: list = []
+    start = 0
+    for m in _FIELD.finditer(text):
+        if m.start() > start:
+            parts.append(text[start : m.start()])
+        parts.append((m.group(1), m.group(2)))
+        start = m.end()
+    if start < len(text):
+        parts.append(text[start:])
+    return tuple(parts)
+
+
 @dataclass(frozen=True)
 class Template:
-    """A one-line message with ``{name}`` / ``{name:spec}`` fields, filled per flagged row."""
+    """A one-line message with ``{name}`` / ``{name:spec}`` fields, filled per flagged row.
+
+    Text in square brackets that quotes a field is an optional clause: it is left out of a
+    row's message when any field in it is blank. ``|`` separates alternatives inside one
+    clause; the first whose fields are all given is used (``[the planned effect {a}|the SESOI
+    {b}]``). Bracketed text without a field (``[0, 1]``) is plain text. A blank field outside
+    a clause prints ``n/a``: the bundled rules put every field that can be blank in a clause.
+    """
 
     text: str
     fields: tuple[tuple[str, str | None], ...]
+    parts: tuple = ()
 
     @classmethod
     def parse(cls, text: str, where: str) -> Template:
         if "\n" in text.strip():
             raise ConfigError(f"{where}: the message must be one line.")
+        text = text.strip()
         fields = tuple((m.group(1), m.group(2)) for m in _FIELD.finditer(text))
         if "{" in _FIELD.sub("", text) or "}" in _FIELD.sub("", text):
             raise ConfigError(
                 f"{where}: the message has a brace that is not a field; fields look like "
                 "{name} or {name:.2f}."
             )
-        return cls(text.strip(), fields)
+        parts: list = []
+        start = 0
+        for m in _CLAUSE.finditer(text):
+            inner = m.group(1)
+            if not _FIELD.search(inner):
+                continue  # plain bracketed text, kept as written
+            if m.start() > start:
+                parts.extend(_parse_parts(text[start : m.start()]))
+            parts.append([_parse_parts(alt) for alt in inner.split("|")])
+            start = m.end()
+        parts.extend(_parse_parts(text[start:]))
+        return cls(text, fields, tuple(parts))
 
     def names(self) -> set[str]:
         return {name for name, _ in self.fields}
 
-    def render(self, values: Mapping[str, np.ndarray], size: int) -> np.ndarray:
+    def render(
+        self,
+        values: Mapping[str, np.ndarray],
+        size: int,
+        against: Mapping[str, np.ndarray] | None = None,
+    ) -> np.ndarray:
         """Messages for ``size`` rows; ``values`` maps each field name to its row values.
 
-        One ``str.format`` call per row: fields with a spec and no missing value are formatted
-        by that call; the others (missing values, the default number style) are formatted as
-        columns first.
+        ``against`` maps a field to the threshold it was compared with (per row): the field is
+        then printed with as many more decimals (up to four) as it takes not to read equal to
+        the threshold printed the same way, so that "0.4996 (below 0.50)" never reads
+        "0.50 (below 0.50)". Fields are formatted as columns; the pieces are joined per row.
         """
-        pattern: list[str] = []
-        args: list[list[Any]] = []
-        start = 0
-        for i, match in enumerate(_FIELD.finditer(self.text)):
-            # The literal text holds no braces (checked by parse), so it needs no escaping.
-            pattern.append(self.text[start : match.start()])
-            name, spec = match.group(1), match.group(2)
+        against = against or {}
+        texts: dict[tuple[str, str | None], np.ndarray] = {}
+        blank: dict[str, np.ndarray] = {}
+        for name, spec in self.fields:
             column = np.asarray(values[name])
-            if spec and column.dtype.kind == "f" and not np.isnan(column).any():
-                pattern.append(f"{{{i}:{spec}}}")
-                args.append(column.tolist())
+            if name not in blank:
+                blank[name] = _blank_values(column)
+            if (name, spec) not in texts:
+                texts[name, spec] = _format_column(column, spec, against.get(name))
+
+        def joined(parts: tuple) -> np.ndarray:
+            out = np.full(size, "", dtype=object)
+            for part in parts:
+                out = out + (part if isinstance(part, str) else texts[part])
+            return out
+
+        out = np.full(size, "", dtype=object)
+        for part in self.parts:
+            if isinstance(part, str):
+                out = out + part
+            elif isinstance(part, tuple):
+                out = out + texts[part]
             else:
-                pattern.append(f"{{{i}}}")
-                args.append(_format_column(column, spec).tolist())
-            start = match.end()
-        pattern.append(self.text[start:])
-        fmt = "".join(pattern)
-        out = np.empty(size, dtype=object)
-        out[:] = [fmt.format(*row) for row in zip(*args, strict=True)] if args else fmt
+                chosen = np.full(size, "", dtype=object)
+                done = np.zeros(size, dtype=bool)
+                for alternative in part:
+                    names = [p[0] for p in alternative if isinstance(p, tuple)]
+                    ok = ~done
+                    for name in names:
+                        ok &= ~blank[name]
+                    if ok.any():
+                        chosen = np.where(ok, joined(alternative), chosen)
+                    done |= ok
+                out = out + chosen
         return out
 
 
-def _format_column(values: np.ndarray, spec: str | None) -> np.ndarray:
+def _blank_values(values: np.ndarray) -> np.ndarray:
+    """Where a field's values are blank (nan, None, empty text)."""
+    arr = np.asarray(values)
+    if arr.dtype.kind == "f":
+        return np.isnan(arr)
+    if arr.dtype.kind in "iub":
+        return np.zeros(arr.shape, dtype=bool)
+    return np.array(
+        [v is None or (isinstance(v, float) and math.isnan(v)) or v == "" for v in arr],
+        dtype=bool,
+    )
+
+
+def _sharpened_specs(values: np.ndarray, threshold: np.ndarray, spec: str | None) -> list[str]:
+    """Per row, ``spec`` with enough more decimals that the value does not print as the
+    threshold does (at most four more); a spec that is not a fixed, per cent or general one is
+    left alone."""
+    m = re.fullmatch(r"(?P<head>.*?)\.(?P<digits>\d+)(?P<kind>[fg%])", spec or ".3g")
+    if m is None:
+        return [spec or ""] * len(values)
+    head, digits, kind = m.group("head"), int(m.group("digits")), m.group("kind")
+    out = []
+    for v, t in zip(
+        values.tolist(), np.broadcast_to(threshold, values.shape).tolist(), strict=True
+    ):
+        d = digits
+        while d < digits + 4 and v != t and math.isfinite(v) and math.isfinite(t):
+            if format(v, f"{head}.{d}{kind}") != format(t, f"{head}.{d}{kind}"):
+                break
+            d += 1
+        out.append(f"{head}.{d}{kind}")
+    return out
+
+
+def _format_column(
+    values: np.ndarray, spec: str | None, threshold: np.ndarray | None = None
+) -> np.ndarray:
     """Format a column of values; float columns take a fast path (one ``format`` call per value,
-    no type checks), other columns go value by value through :func:`_format`."""
+    no type checks), other columns go value by value through :func:`_format`. With a
+    ``threshold`` the numbers are sharpened against it (:func:`_sharpened_specs`)."""
     arr = np.asarray(values)
     if arr.dtype.kind != "f":
         return np.array([_format(v, spec) for v in arr], dtype=object)
     missing = np.isnan(arr)
     clean = np.where(missing, 0.0, arr)
-    if spec:
+    if threshold is not None:
+        specs = _sharpened_specs(clean, np.asarray(threshold, dtype=float), spec)
+        out = np.array([format(v, f) for v, f in zip(clean.tolist(), specs, strict=True)],
+                       dtype=object)  # fmt: skip
+        if not spec:  # the default style keeps whole numbers whole
+            whole = (clean == np.round(clean)) & (np.abs(clean) >= 10) & np.isfinite(clean)
+            out[whole] = [str(int(v)) for v in clean[whole].tolist()]
+    elif spec:
         out = np.array([format(v, spec) for v in clean.tolist()], dtype=object)
     else:
         # format_number: three significant digits, whole numbers from 10 up as integers.
@@ -480,6 +586,21 @@ class Rule:
 
     def param_values(self) -> dict[str, float]:
         return {name: p.value for name, p in self.parameters.items()}
+
+    def compared(self) -> list[tuple[str, float | str]]:
+        """``(column, threshold)`` of each comparison in the condition (threshold as written:
+        a number, a parameter or a column), for messages that quote both."""
+        out = []
+        stack = [self.when]
+        while stack:
+            c = stack.pop()
+            if isinstance(c, Compare) and not c.magnitude:
+                out.append((c.column, c.operand))
+            elif isinstance(c, AllOf):
+                stack.extend(c.parts)
+            elif isinstance(c, Not):
+                stack.append(c.part)
+        return out
 
     def columns(self) -> set[str]:
         """Columns (metrics or inputs) the rule reads, in its condition or its message."""
@@ -911,7 +1032,14 @@ def evaluate_rules(
                 name: (np.full(len(pos), params[name]) if name in params else data.raw(name)[pos])
                 for name in rule.message.names()
             }
-            messages = rule.message.render(values, len(pos))
+            against = {
+                column: data.numeric(ref)[pos]
+                if isinstance(ref, str) and ref not in params
+                else np.full(len(pos), float(params.get(ref, ref)))
+                for column, ref in rule.compared()
+                if column in values and values[column].dtype.kind == "f"
+            }
+            messages = rule.message.render(values, len(pos), against)
         except Exception as exc:  # a broken rule must not stop the audit
             problems.append(
                 {

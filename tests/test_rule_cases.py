@@ -51,6 +51,8 @@ def run_case(rule_id: str, case: dict) -> tuple[str, list[str]]:
 def test_rule_case(rule_id, case):
     outcome, messages = run_case(rule_id, case)
     assert outcome == case["expect"], f"{case['name']}: got {outcome} {messages}"
+    for text in case.get("message_not_contains", []):
+        assert not any(text in m for m in messages), f"{text!r} in {messages}"
     for text in case.get("message_contains", []):
         assert any(text in m for m in messages), f"{text!r} not in {messages}"
 
@@ -63,7 +65,15 @@ def test_every_rule_has_flag_and_pass_cases():
         assert doc["rule"] in RULES.rules, f"{path.name}: no such rule"
         covered[doc["rule"]] = {c["expect"] for c in doc["case"]}
         for case in doc["case"]:
-            assert set(case) <= {"name", "expect", "row", "metrics", "table", "message_contains"}
+            assert set(case) <= {
+                "name",
+                "expect",
+                "row",
+                "metrics",
+                "table",
+                "message_contains",
+                "message_not_contains",
+            }
     for rule_id in RULES.rules:
         assert {"flag", "pass"} <= covered.get(rule_id, set()), f"{rule_id} lacks cases"
 

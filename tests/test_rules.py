@@ -24,6 +24,7 @@ from audit.rules import (
 )
 
 RULES_DIR = Path(__file__).resolve().parent.parent / "rules"
+DEMO = Path(__file__).resolve().parent.parent / "demo_data" / "demo_portfolio.csv"
 BUNDLED = sorted(RULES_DIR.glob("*.toml"))
 
 #: Rules the issue asks for, by what they check; the ids are ours.
@@ -384,6 +385,59 @@ def test_blank_message_values_read_na():
     assert result.findings["message"].tolist() == ["sesoi n/a, n 20"]
 
 
+def test_bracketed_clauses_are_left_out_when_a_field_is_blank():
+    # Issue 13 / DESIGN.md 9.6: a message never prints a placeholder; a clause quoting a blank
+    # value is left out, and alternatives pick the first whose values are all given.
+    rules = _only(
+        _rule_text(
+            when='{ column = "realized_n1", below = 100 }',
+            message='"n {realized_n1}[, sesoi {sesoi}][; both {sesoi} and {planned_sd}|; sd '
+            '{planned_sd}|; neither] in [0, 1]"',
+        )
+    )
+    table = _two_means([20, 30, 40])
+    table["sesoi"] = [0.2, None, 0.3]
+    table["planned_sd"] = [None, 4.0, 5.0]
+    result = audit.audit_table(table, rules=rules)
+    assert result.findings["message"].tolist() == [
+        "n 20, sesoi 0.2; neither in [0, 1]",
+        "n 30; sd 4 in [0, 1]",
+        "n 40, sesoi 0.3; both 0.3 and 5 in [0, 1]",
+    ]
+
+
+def test_a_quoted_value_never_reads_equal_to_the_threshold_it_failed():
+    # Issue 13: "Power ... is only 0.50 (below 0.50)". The value gets the decimals it needs.
+    rules = _only(
+        _rule_text(
+            when='{ column = "power_at_planned_effect", below = "floor" }',
+            message='"power {power_at_planned_effect:.2f} below {floor:.2f}"',
+        )
+        + '[rule.parameters.floor]\nvalue = 0.5\nrange = [0.0, 1.0]\nmeaning = "a floor"\n'
+    )
+    table = pd.DataFrame({"study_id": ["a", "b"]})
+    metrics = pd.DataFrame({"power_at_planned_effect": [0.49962, 0.3]})
+    found = evaluate_rules(rules, table, metrics, np.ones(2, dtype=bool)).findings
+    assert found["message"].tolist() == ["power 0.4996 below 0.50", "power 0.30 below 0.50"]
+
+
+def test_bundled_messages_never_print_a_placeholder():
+    # The demo and random rows of every design (with and without results): no bundled rule's
+    # message says "n/a".
+    from tests.test_designs_all import _random_rows
+
+    df = _random_rows(np.random.default_rng(11), 600)
+    rng = np.random.default_rng(12)
+    df["observed_ci_low"] = rng.uniform(-1, 0, len(df))
+    df["observed_ci_high"] = df["observed_ci_low"] + rng.uniform(0.1, 2, len(df))
+    df.loc[df["design"] == "survival", ["observed_ci_low", "observed_ci_high"]] = [0.6, 1.2]
+    df.loc[df["design"] == "correlation", ["observed_ci_low", "observed_ci_high"]] = [-0.1, 0.4]
+    df["reported_power"] = np.where(rng.uniform(size=len(df)) < 0.2, 0.4, np.nan)
+    for result in (audit.audit_table(df), audit.audit_file(DEMO)):
+        messages = result.findings["message"].tolist()
+        assert messages and not [m for m in messages if "n/a" in m]
+
+
 def test_evaluation_is_vectorised_over_many_rows():
     # 50,000 studies: every rule is a handful of array operations (timings belong to
     # benchmarks/, not to tests). Counts are checked against plain numpy.
@@ -414,6 +468,7 @@ def test_evaluation_is_vectorised_over_many_rows():
         metrics[name] = rng.uniform(0, 0.2, n)
     metrics["n_required_plan"] = 128.0
     metrics["mde_sesoi_ratio"] = metrics["mde"] / table["sesoi"]
+    metrics["sesoi_used"] = table["sesoi"]
     for name in ("planned_sd", "realized_sd", "planned_icc", "realized_icc", "planned_p1"):
         table[name] = np.nan
     for name in ("realized_p1", "realized_events"):
