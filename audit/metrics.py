@@ -19,7 +19,7 @@ from audit._format import format_number
 from audit.designs import DESIGNS, Design, Scenario, TestSpec
 from audit.designs._base import _directions
 
-__all__ = ["METRICS", "compute_metrics", "test_settings"]
+__all__ = ["METRICS", "compute_metrics", "directed_mde", "direction_words", "test_settings"]
 
 #: Metric name -> meaning, in report order. Names are part of the output contract.
 METRICS: dict[str, str] = {
@@ -347,7 +347,7 @@ def _design_metrics(
         out["plan_discrepancy"] = planned_total / out["n_required_plan"] - 1.0
         out["power_at_planned_effect"] = design.power(real, effect, test)
         out["power_at_sesoi"] = design.power(real, sesoi, test)
-        out["mde"], out["mde_std"] = _mde(design, real, test)
+        out["mde"], out["mde_std"] = directed_mde(design, real, test)
         out["mde_sesoi_ratio"] = np.abs(design.to_analysis(out["mde"])) / np.abs(
             design.to_analysis(sesoi)
         )
@@ -420,7 +420,7 @@ def _sesoi_on_harder_side(
     return np.where(harder, other, out)
 
 
-def _mde(design: Design, real: Scenario, test: TestSpec) -> tuple[np.ndarray, np.ndarray]:
+def directed_mde(design: Design, real: Scenario, test: TestSpec) -> tuple[np.ndarray, np.ndarray]:
     """The MDE and its standardized value, signed in the direction used.
 
     Where a row has no direction the MDE is a magnitude: the larger of the two sides' MDEs on

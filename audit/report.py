@@ -161,7 +161,7 @@ def _results_lines(portfolio: dict) -> list[str]:
     excess = portfolio.get("excess_significance")
     if excess:
         lines.append(
-            f"excess significance: {excess['observed']:,} significant results observed, "
+            f"excess significance: {_plural(excess['observed'], 'significant result')} observed, "
             f"{excess['expected']:.1f} expected; one-sided p = {format_number(excess['p_value'])}"
             f" ({excess['method']}; basis: {excess['basis']})"
         )
@@ -180,8 +180,9 @@ DEFICIT_LEVEL = 0.05
 def deficit_sentence(deficit: dict) -> str:
     """What a shortfall of significant results says, in words."""
     counts = (
-        f"{deficit['observed']:,} significant results against {deficit['expected']:.1f} "
-        f"expected; P(this few or fewer) = {format_number(deficit['p_value'])}"
+        f"{_plural(deficit['observed'], 'significant result')} against "
+        f"{deficit['expected']:.1f} expected; P(this few or fewer) = "
+        f"{format_number(deficit['p_value'])}"
     )
     if deficit["p_value"] < DEFICIT_LEVEL:
         return (
@@ -232,9 +233,7 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
     p = result.portfolio
     # Portfolio statistics come from the portfolio block (audit.portfolio): laid out here only.
     spread = p["power_distribution"]
-    bands = [
-        (f"{b['low']:.2f} – {b['high']:.2f}", int(b["studies"])) for b in spread["bands"]
-    ]
+    bands = [(f"{b['low']:.2f} – {b['high']:.2f}", int(b["studies"])) for b in spread["bands"]]
     quartiles = spread["quartiles"]
     mde_rows = [
         (name, d["unit"] or "-", d["studies"], d["median"], d["quartiles"][0], d["quartiles"][2])

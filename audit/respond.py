@@ -16,9 +16,9 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from audit._format import format_number
-from audit.designs import DESIGNS, TestSpec
+from audit.designs import DESIGNS
 from audit.errors import ConfigError
-from audit.metrics import test_settings
+from audit.metrics import directed_mde, test_settings
 
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
@@ -96,16 +96,29 @@ def _alpha_phrase(alpha: float, sides: float, comparisons: float) -> str:
     return text
 
 
-def _effect_phrase(design_name: str, standardized: bool, value: float, std: float | None) -> str:
-    """'a difference in means of 5 (d = 0.5)'."""
+def _effect_phrase(
+    design_name: str,
+    standardized: bool,
+    value: float,
+    std: float | None,
+    either: bool = False,
+) -> str:
+    """'a difference in means of 5 (d = 0.5)'; with no direction, a ratio is given both ways
+    ('a hazard ratio of 1.75 or 0.571 (log HR = ±0.56)')."""
     design = DESIGNS[design_name]
     if standardized:
         noun = _STANDARDIZED_NOUNS.get(design_name, "standardized mean difference (d)")
         return f"a {noun} of {_num(value)}"
-    text = f"a {EFFECT_NOUNS.get(design_name, 'effect')} of {_num(value)}"
+    shown = _num(value)
+    sign = ""
+    if either and design_name == "survival" and math.isfinite(value) and value > 0:
+        big = max(value, 1.0 / value)
+        shown, sign = f"{_num(big)} or {_num(1.0 / big)}", "±"
+        std = abs(std) if std is not None else None
+    text = f"a {EFFECT_NOUNS.get(design_name, 'effect')} of {shown}"
     label = design.standardized_as
     if std is not None and math.isfinite(std) and label and not math.isclose(abs(std), abs(value)):
-        text += f" ({label} = {_num(std)})"
+        text += f" ({label} = {sign}{_num(std)})"
     return text
 
 
@@ -114,13 +127,19 @@ def _mde_at(result: AuditResult, pos: int, power: float) -> tuple[float, float]:
     name = str(result.table["design"].iat[pos])
     design = DESIGNS[name]
     rows = result.table.iloc[[pos]]
-    base = test_settings(rows, design)
-    test = TestSpec(base.alpha, base.sides, np.array([power]), base.direction)
+    test = test_settings(rows, design).with_power(np.array([power]))
     real = design.scenario(rows, "realized")
     with np.errstate(all="ignore"):
-        mde = design.mde(real, test)
-        std = design.standardize(real, mde)
+        mde, std = directed_mde(design, real, test)
     return float(mde[0]), float(std[0])
+
+
+def _either_way(design_name: str, value: float) -> str:
+    """A magnitude with no direction: '0.2 either way', for ratios '1.25 (or 0.8) either way'."""
+    if design_name == "survival" and math.isfinite(value) and value > 0:
+        big = max(value, 1.0 / value)
+        return f"{_num(big)} or {_num(1.0 / big)}, either way"
+    return f"{_num(abs(value))} either way"
 
 
 def _power_at(result: AuditResult, pos: int, effect: float) -> float:
@@ -162,6 +181,9 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
         "cluster_two_means",
     )
     units = UNIT_NOUNS.get(name, "analysable units")
+    either = m.get("direction_used") == "either"
+    sesoi_used = float(m.get("sesoi_used", np.nan))
+    sesoi_text = _either_way(name, sesoi_used) if either else _num(sesoi_used)
     title = row.get("title")
     heading = f"## Power and sensitivity: {row['study_id']}"
     if isinstance(title, str) and title:
@@ -217,14 +239,15 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
     if math.isfinite(mde80):
         tested = _alpha_phrase(alpha, sides, comparisons)
         at90 = (
-            f", and {_effect_phrase(name, standardized, mde90, std90)} with 90% power."
+            f", and {_effect_phrase(name, standardized, mde90, std90, either)} with 90% power."
             if math.isfinite(mde90)
             else "."
         )
+        way = " in either direction" if either else ""
         sens.append(
             f"**Sensitivity analysis.** With the realized sample size and variability, the "
-            f"smallest effect the study could detect with 80% power ({tested}) was "
-            f"{_effect_phrase(name, standardized, mde80, std80)}{at90}"
+            f"smallest effect the study could detect{way} with 80% power ({tested}) was "
+            f"{_effect_phrase(name, standardized, mde80, std80, either)}{at90}"
         )
         refs.append("bloom")
         if design.standardized_as in ("d", "d_z", "f", "f2", "r", "h"):
@@ -251,11 +274,9 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
             powers.append(f"for an effect of {_num(effect)} it was {_power(p_eff)}")
     else:
         p_sesoi = m.get("power_at_sesoi", np.nan)
-        sesoi = row.get("sesoi")
         if math.isfinite(p_sesoi):
             powers.append(
-                f"for the smallest effect of interest ({_num(abs(float(sesoi)))}) it was "
-                f"{_power(p_sesoi)}"
+                f"for the smallest effect of interest ({sesoi_text}) it was {_power(p_sesoi)}"
             )
     if powers:
         text = "; ".join(powers)
@@ -280,7 +301,6 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
             f"({level_text} CI {_fixed(low, places)} to {_fixed(high, places)}"
             + (f"; {format_p(p)})." if math.isfinite(p) else ").")
         ]
-        sesoi_val = row.get("sesoi")
         if verdict == "detected":
             bits.append(
                 "The result was statistically significant: the interval excludes the null "
@@ -296,22 +316,29 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
                     f"2014), so the estimate should be read with that in mind."
                 )
         elif verdict == "excludes_sesoi":
+            where = "lies wholly within" if either else "excludes effects as large as"
             bits.append(
-                f"The result was not statistically significant, and the interval excludes "
-                f"effects as large as the smallest effect of interest "
-                f"({_num(abs(float(sesoi_val)))}): the data argue against an effect of relevant "
-                f"size."
+                f"The result was not statistically significant, and the interval {where} the "
+                f"smallest effect of interest ({sesoi_text}): the data argue against an effect "
+                f"of relevant size."
             )
         elif verdict == "excludes_planned_effect":
             bits.append(
                 f"The result was not statistically significant, and the interval excludes the "
                 f"planned effect of {_num(planned)}, though not all smaller effects."
             )
-        else:
+        elif math.isfinite(planned) and not either:
             bits.append(
                 "The result was not statistically significant, and the interval includes both "
                 "no effect and the planned effect: the study can neither confirm nor rule out "
                 "an effect of the size it was designed to detect."
+            )
+        else:
+            bits.append(
+                "The result was not statistically significant, and the interval includes both "
+                f"no effect and effects as large as the smallest effect of interest "
+                f"({sesoi_text}): the study can neither confirm nor rule out an effect of "
+                "relevant size."
             )
         paragraphs.append(" ".join(bits))
 

@@ -1,9 +1,14 @@
 """Designs tested with an F test: a one-way comparison of k means, and regression predictors.
 
 Both use the noncentral F distribution with noncentrality ``lambda = f² N`` (N the total sample
-size) as in Cohen [1]_: ``k_means`` on (k − 1, N − k) degrees of freedom with Cohen's f, and
-``regression`` on (u, N − u − q − 1) with Cohen's f² of the u tested predictors, q further
-covariates in the model.
+size): ``k_means`` on (k − 1, N − k) degrees of freedom with Cohen's f, and ``regression`` on
+(u, N − u − q − 1) with Cohen's f² of the u tested predictors, q further covariates in the
+model. ``f² N`` is the noncentrality of the fixed-effects model when f² is the population
+``R²_change / (1 − R²_full)``. Cohen [1]_ writes ``lambda = f² (u + v + 1)`` with v the error df:
+for k means and for predictors without covariates that is ``f² N`` as here; with q covariates
+it is ``f² (N − q)``, a little smaller (for N = 120, q = 3, f² = 0.09: 10.53 against 10.80),
+so his tables give a little less power than this design when covariates are partialled out.
+We keep ``f² N`` for all rows, so that adding covariates changes only the error df.
 
 An omnibus F test has no single estimate with a standard error and no direction: the SE-based
 metrics are declared not applicable and effects are magnitudes (``direction`` is always +1).
