@@ -124,3 +124,25 @@ def test_every_null_metric_has_a_note_on_random_rows(seed):
                     metric,
                     notes[i],
                 )
+
+
+def test_unchanged_nuisance_parameters_cost_exactly_no_power():
+    # Issue 13: power_cost_nuisance was shown as -1.04e-17 where the realized nuisance
+    # parameters equal the planned ones (the same power reached by two paths of arithmetic).
+    rows = [
+        {"study_id": "m", "design": "two_means", "planned_n1": 50, "planned_n2": 50,
+         "realized_n1": 45, "realized_n2": 47, "planned_sd": 7.3, "realized_sd": 7.3,
+         "planned_effect": 3.1},
+        {"study_id": "c", "design": "cluster_two_means", "planned_n1": 9, "planned_n2": 9,
+         "realized_n1": 9, "realized_n2": 8, "planned_sd": 3.3, "realized_sd": 3.3,
+         "planned_icc": 0.07, "realized_icc": 0.07, "planned_cluster_size": 17,
+         "planned_effect": 1.7},
+        {"study_id": "s", "design": "survival", "planned_n1": 301, "planned_n2": 299,
+         "realized_n1": 290, "realized_n2": 288, "planned_events": 380,
+         "realized_events": 367, "planned_effect": 0.77},
+    ]  # fmt: skip
+    m = audit.audit_table(pd.DataFrame(rows)).metrics
+    cost = m["power_cost_nuisance"].to_numpy()
+    assert cost[0] == 0.0 and cost[1] == 0.0
+    # The survival row's event share did change (367 of 578 against 380 of 600): a real cost.
+    assert abs(cost[2]) > 1e-6

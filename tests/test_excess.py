@@ -110,3 +110,46 @@ def test_excess_chi_square_form():
     assert low.p_value > 0.5
     with pytest.raises(ValueError, match="method must be"):
         excess_significance_test(sig, power, method="bogus")
+
+
+def test_deficit_lower_tail_against_scipy():
+    # P(X <= O) for a Poisson-binomial (scipy.stats.poisson_binom.cdf) and, with equal powers,
+    # the binomial (scipy.stats.binom.cdf).
+    from audit.excess import deficit_p_value
+
+    power = np.array([0.8, 0.9, 0.7, 0.85, 0.95, 0.6, 0.75, 0.8, 0.9, 0.65, 0.7, 0.8])
+    sig = np.zeros(12, dtype=bool)
+    sig[:4] = True
+    assert deficit_p_value(sig, power) == pytest.approx(
+        stats.poisson_binom(power).cdf(4), rel=1e-9
+    )
+    assert deficit_p_value(sig, np.full(12, 0.8)) == pytest.approx(
+        stats.binom.cdf(4, 12, 0.8), rel=1e-12
+    )
+
+
+def test_a_shortfall_of_significant_results_is_reported_as_a_deficit():
+    # Issue 13: the demo had 13 significant results where the powers predicted 24.5, and the
+    # report said only "p = 1". The portfolio now gives P(X <= 13) and the report a sentence.
+    import io
+
+    from rich.console import Console
+
+    import audit
+    from audit.report import THEME, render_report
+    from audit.resources import bundled_dir
+
+    result = audit.audit_file(bundled_dir("demo_data") / "demo_portfolio.csv")
+    excess = result.portfolio["excess_significance"]
+    deficit = excess["deficit"]
+    assert deficit["observed"] == excess["observed"] < excess["expected"] == deficit["expected"]
+    sig = result.metrics["result_significant"].to_numpy(dtype=float)
+    power = result.metrics["power_at_planned_effect"].to_numpy(dtype=float)
+    use = result.valid & np.isfinite(sig) & np.isfinite(power)
+    cdf = stats.poisson_binom(power[use]).cdf(deficit["observed"])
+    assert deficit["p_value"] == pytest.approx(cdf, rel=1e-9) and deficit["p_value"] < 0.05
+    console = Console(file=io.StringIO(), width=100, color_system=None, theme=THEME)
+    render_report(result, console)
+    text = " ".join(console.file.getvalue().split())
+    assert "far fewer results are significant than the studies' powers predict" in text
+    assert "planned effects look optimistic" in text

@@ -181,3 +181,33 @@ def test_stage_bar_runs_through_the_stages():
     assert seen == list(STAGES)
     assert result.portfolio["studies"] == 8
     assert bar.progress.tasks[0].total == len(STAGES)
+
+
+def test_portfolio_mde_medians_are_of_magnitudes_and_the_report_shows_them():
+    # Issue 13: two studies at d = +0.5 and -0.5 had a median standardized MDE of 0.0. The
+    # median of the magnitudes is 0.5 (the MDE of d at the target is the same size both ways).
+    rows = []
+    for sid, sign in (("up", "increase"), ("down", "decrease")):
+        rows.append({"study_id": sid, "design": "two_means", "effect_scale": "d",
+                     "direction": sign, "realized_n1": 64, "realized_n2": 64})  # fmt: skip
+    result = audit.audit_table(pd.DataFrame(rows))
+    std = result.metrics["mde_std"].to_numpy()
+    assert std[0] == pytest.approx(-std[1]) and std[0] > 0
+    assert result.portfolio["median_mde_std"]["two_means"] == pytest.approx(std[0])
+    spread = result.portfolio["mde_std_distribution"]["two_means"]
+    assert spread["studies"] == 2 and spread["median"] == pytest.approx(std[0])
+    # The report lays out the portfolio's own numbers: change them and the report follows.
+    result.portfolio["mde_std_distribution"]["two_means"]["median"] = 0.123
+    console = _console()
+    render_report(result, console)
+    assert "0.123" in _text(console)
+
+
+def test_untested_excess_significance_is_said_once():
+    result = audit.audit_table(
+        pd.DataFrame({"study_id": ["a"], "design": ["estimate"], "realized_se": [1.0]})
+    )
+    console = _console()
+    render_report(result, console)
+    text = " ".join(_text(console).split())
+    assert text.count("excess significance not tested") == 1
