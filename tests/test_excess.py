@@ -120,9 +120,7 @@ def test_deficit_lower_tail_against_scipy():
     power = np.array([0.8, 0.9, 0.7, 0.85, 0.95, 0.6, 0.75, 0.8, 0.9, 0.65, 0.7, 0.8])
     sig = np.zeros(12, dtype=bool)
     sig[:4] = True
-    assert deficit_p_value(sig, power) == pytest.approx(
-        stats.poisson_binom(power).cdf(4), rel=1e-9
-    )
+    assert deficit_p_value(sig, power) == pytest.approx(stats.poisson_binom(power).cdf(4), rel=1e-9)
     assert deficit_p_value(sig, np.full(12, 0.8)) == pytest.approx(
         stats.binom.cdf(4, 12, 0.8), rel=1e-12
     )

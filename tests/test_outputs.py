@@ -258,3 +258,22 @@ def test_check_writes_workbook_and_plots(tmp_path):
     assert code == 0
     assert (tmp_path / "w.xlsx").stat().st_size > 0
     assert (tmp_path / "p" / "portfolio_power.png").exists()
+
+
+def test_demo_files_are_built_from_the_studies_source():
+    # demo_data/studies.toml is the source; the CSV and workbook must be rebuilt after an edit
+    # (python demo_data/make_demo.py).
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("make_demo", DEMO.parent / "make_demo.py")
+    make_demo = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(make_demo)
+    rows = make_demo.studies()
+    assert DEMO.read_text(encoding="utf-8") == make_demo.csv_text(rows)
+    book = load_workbook(DEMO_XLSX, read_only=True)
+    cells = [list(r) for r in book.active.iter_rows(values_only=True)]
+    names = make_demo.header(rows)
+    assert cells[0] == names
+    assert [dict(zip(names, r, strict=True)) for r in cells[1:]] == [
+        {n: row.get(n) for n in names} for row in rows
+    ]
