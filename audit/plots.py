@@ -247,7 +247,7 @@ def _portfolio_plots(result: AuditResult, folder: Path, fmt: str, plt) -> list[P
         fig, ax = plt.subplots(figsize=(6.4, 3.8), dpi=110)
         _style(ax)
         ax.hist(power, bins=np.linspace(0, 1, 21), color=PALETTE["bars"], edgecolor="white")
-        median = float(np.median(power))
+        median = float(result.portfolio["median_power_at_planned_effect"])  # the summary's own
         ax.axvline(median, color=PALETTE["realized"], lw=1.6, label=f"median {median:.2f}")
         ax.axvline(0.8, color=PALETTE["planned_effect"], lw=1.0, ls=":", label="0.80")
         ax.set_xlabel("design-based power at the planned effect (realized design)")
