@@ -79,19 +79,8 @@ def _ordered_columns() -> list[Column]:
 
 
 def _designs_using(column: str) -> list[str]:
-    """Designs whose maths read ``column`` (from each design's declared inputs)."""
-    used = []
-    for name, design in DESIGNS.items():
-        sources = {**design.sources("planned"), **design.sources("realized")}
-        names = {
-            part
-            for s in sources.values()
-            for part in s.replace("(or ", " ").replace(")", " ").split()
-        }
-        names |= set(design.effect_columns)
-        if column in names:
-            used.append(name)
-    return used
+    """Designs that read ``column`` (each design's declared :meth:`Design.inputs`)."""
+    return [name for name, design in DESIGNS.items() if column in design.inputs()]
 
 
 def _allowed(spec: Column) -> str:
@@ -162,11 +151,8 @@ def write_template(path: str | Path) -> None:
         cell.font = bold
     for spec in columns:
         heading, colour = GROUPS.get(spec.group, (spec.group, "FFFFFF"))
-        users = (
-            "all"
-            if spec.name in ("study_id", "design", "alpha", "sides", "target_power", "comparisons")
-            else ", ".join(_designs_using(spec.name))
-        )
+        using = _designs_using(spec.name)
+        users = "all" if len(using) == len(DESIGNS) else ", ".join(using)
         guide.append([spec.name, heading, spec.meaning, _allowed(spec), users or "-"])
         guide.cell(row=guide.max_row, column=2).fill = PatternFill("solid", fgColor=colour)
     guide.append([])
