@@ -256,10 +256,13 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
         for name in METRICS
     }
     design_col = table["design"].to_numpy(dtype=object)
-    groups = [
-        (design, np.flatnonzero(valid & (design_col == name))) for name, design in DESIGNS.items()
-    ]
-    groups = [(design, positions) for design, positions in groups if len(positions)]
+    groups = []
+    for name, design in DESIGNS.items():
+        positions = np.flatnonzero(valid & (design_col == name))
+        if len(positions):
+            # One group per effect measure (a design with one effect unit is one group).
+            for variant, mask in design.variants(table.iloc[positions]):
+                groups.append((variant, positions[mask]))
     notes = _Notes()
     for (_, positions), (computed, group_notes) in zip(
         groups, _group_metrics(table, groups), strict=True
@@ -607,6 +610,7 @@ def _retro_metrics(
     alpha, sides = test.alpha, test.sides
     se_based = "se_realized" not in design.not_applicable
     reported = {c: _col(rows, c) for c in (*RESULT_COLUMNS, "observed_ci_level", "reported_power")}
+    _result_from_counts(design, rows, positions, notes, reported)
     # A p printed as a bound ("< 0.001", "n.s.") is a reported result too.
     has_result = ~np.isnan(_col(rows, "observed_p_relation"))
     for c in RESULT_COLUMNS:
@@ -717,6 +721,49 @@ def _retro_metrics(
         sig,
     )
     return res_out
+
+
+def _result_from_counts(
+    design: Design,
+    rows: pd.DataFrame,
+    positions: np.ndarray,
+    notes: _Notes,
+    reported: dict[str, np.ndarray],
+) -> None:
+    """Fill in the reported result from events per arm (or the realized proportions) where the
+    row reports no estimate, SE or interval, with a note; where it reports one, the counts are
+    not used, with a note too. Designs without counts (no ``counted_result``) are left alone."""
+    counted = getattr(design, "counted_result", None)
+    if counted is None:
+        return
+    effect, se, source = counted(rows)
+    given = (
+        np.isfinite(reported["observed_effect"])
+        | np.isfinite(reported["observed_se"])
+        | np.isfinite(reported["observed_ci_low"])
+        | np.isfinite(reported["observed_ci_high"])
+    )
+    use = (source > 0) & ~given
+    reported["observed_effect"] = np.where(use, effect, reported["observed_effect"])
+    reported["observed_se"] = np.where(use, se, reported["observed_se"])
+    how = design.counted_note()
+    names = {1: design.count_columns(), 2: design.rate_columns()}
+    for code, columns in names.items():
+        notes.add(
+            positions[use & (source == code)],
+            f"observed_effect and observed_se derived from {columns} ({how})",
+        )
+        notes.add(
+            positions[given & (source == code)],
+            f"{columns} not used for the result: the reported observed_effect, observed_se or "
+            "interval is used",
+        )
+    partial = design.partial_counts(rows) & (source == 0)
+    notes.add(
+        positions[partial],
+        f"{design.count_columns()} incomplete: the result needs both arms' events and sizes; "
+        "not used",
+    )
 
 
 #: Level of a reported interval whose level is not given: what papers report.
