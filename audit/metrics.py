@@ -16,7 +16,7 @@ import pandas as pd
 
 from audit import parallel, retro
 from audit._format import format_number
-from audit.designs import DESIGNS, Design, Scenario, TestSpec
+from audit.designs import Design, Scenario, TestSpec, design_groups
 from audit.designs._base import _directions
 
 __all__ = ["METRICS", "compute_metrics", "directed_mde", "direction_words", "test_settings"]
@@ -255,14 +255,8 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
         name: np.full(n, None, dtype=object) if name in TEXT_METRICS else np.full(n, np.nan)
         for name in METRICS
     }
-    design_col = table["design"].to_numpy(dtype=object)
-    groups = []
-    for name, design in DESIGNS.items():
-        positions = np.flatnonzero(valid & (design_col == name))
-        if len(positions):
-            # One group per effect measure (a design with one effect unit is one group).
-            for variant, mask in design.variants(table.iloc[positions]):
-                groups.append((variant, positions[mask]))
+    # One group per design and effect measure (a design with one effect unit is one group).
+    groups = design_groups(table, np.flatnonzero(valid))
     notes = _Notes()
     for (_, positions), (computed, group_notes) in zip(
         groups, _group_metrics(table, groups), strict=True
@@ -795,6 +789,8 @@ def _note_off_centre(
     if not off.any():
         return
     scale = {"survival": "log hazard ratio", "correlation": "Fisher z"}.get(design.name)
+    if scale is None and design.is_ratio:
+        scale = f"log {design.noun}"
     where = f"the {scale} scale" if scale else "the scale of the estimate"
     hint = (
         "an odds or risk ratio's interval is symmetric on the log scale, so give such results "

@@ -237,6 +237,17 @@ class Design:
     #: The effect measure of this instance (one of ``measures``); None for one-unit designs.
     measure: str | None = None
 
+    @property
+    def is_ratio(self) -> bool:
+        """Effects are ratios: no effect is 1 and the analysis scale is the log."""
+        return False
+
+    @property
+    def noun(self) -> str | None:
+        """What an effect is called in a sentence ("a hazard ratio of 0.8"), if the design
+        names it itself."""
+        return None
+
     # -- variants by effect measure ------------------------------------------------------------
 
     def with_measure(self, measure: str | None) -> Design:

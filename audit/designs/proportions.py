@@ -267,7 +267,7 @@ class TwoProportions(Design):
         sc = super().scenario(rows, stage)
         if stage == "realized":
             with np.errstate(divide="ignore", invalid="ignore"):
-                counted = _column(rows, "observed_events1") / _column(rows, "realized_n1")
+                counted = _column(rows, "observed_events1") / self.arm_units(rows, "1")
             counted = np.where((counted >= 0) & (counted <= 1), counted, np.nan)
             fallback = np.where(np.isnan(counted), _column(rows, "planned_p1"), counted)
             sc["p1"] = np.where(np.isnan(sc["p1"]), fallback, sc["p1"])
@@ -275,6 +275,10 @@ class TwoProportions(Design):
         cc = _column(rows, "continuity_correction")
         sc["continuity_correction"] = np.where(np.isnan(cc), 0.0, cc)
         return sc
+
+    def arm_units(self, rows: pd.DataFrame, arm: str) -> np.ndarray:
+        """Units analysed in an arm (``arm`` "1" or "2"), the denominators of its events."""
+        return _column(rows, f"realized_n{arm}")
 
     def sources(self, stage: str) -> dict[str, str]:
         out = super().sources(stage)
@@ -359,14 +363,18 @@ class TwoProportions(Design):
         out.extend(self._count_checks(rows))
         return out
 
+    def unit_words(self) -> str:
+        """The denominator of an arm's events, as notes name it."""
+        return "realized_n1"
+
     def _count_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         out = []
         for k in ("1", "2"):
             out.append(
                 (
-                    _column(rows, f"observed_events{k}") > _column(rows, f"realized_n{k}"),
+                    _column(rows, f"observed_events{k}") > self.arm_units(rows, k),
                     f"observed_events{k}",
-                    f"cannot exceed the arm size realized_n{k}",
+                    f"cannot exceed the arm size ({self.unit_words().replace('1', k)})",
                 )
             )
         return out
@@ -374,9 +382,8 @@ class TwoProportions(Design):
     def fallback_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str]]:
         real = _column(rows, "realized_p1")
         plan = _column(rows, "planned_p1")
-        events = _column(rows, "observed_events1") / np.where(
-            _column(rows, "realized_n1") > 0, _column(rows, "realized_n1"), np.nan
-        )
+        units = self.arm_units(rows, "1")
+        events = _column(rows, "observed_events1") / np.where(units > 0, units, np.nan)
         cc = _column(rows, "continuity_correction")
         effect = self.planned_effect(rows)
         held = {
@@ -393,8 +400,8 @@ class TwoProportions(Design):
         return [
             (
                 np.isnan(real) & np.isfinite(events),
-                "realized_p1 not reported: the control rate of observed_events1 / realized_n1 is "
-                "used for the realized design",
+                f"realized_p1 not reported: the control rate of observed_events1 / "
+                f"{self.unit_words()} is used for the realized design",
             ),
             (
                 np.isnan(real) & np.isnan(events) & ~np.isnan(plan),
@@ -411,7 +418,7 @@ class TwoProportions(Design):
         """The reported result from events per arm (or the realized proportions) and the arm
         sizes: ``(effect, se, source)``, effect in the measure, SE on the analysis scale,
         ``source`` 1 for events, 2 for proportions, 0 where neither gives it."""
-        n1, n2 = _column(rows, "realized_n1"), _column(rows, "realized_n2")
+        n1, n2 = self.arm_units(rows, "1"), self.arm_units(rows, "2")
         e1, e2 = _column(rows, "observed_events1"), _column(rows, "observed_events2")
         by_events = np.isfinite(e1 + e2 + n1 + n2)
         by_rates = ~by_events & np.isfinite(
