@@ -27,7 +27,8 @@ METRICS: dict[str, str] = {
     "column, else the planned effect's sign; for ratios below 1 is a decrease), or either (no "
     "direction given: the SESOI is a band around no effect and MDEs are magnitudes)",
     "planned_effect_used": "the planned effect in effect units as the audit used it "
-    "(planned_effect; p2 - p1 for two proportions)",
+    "(planned_effect, or from planned_p2 / planned_rate2 in the row's effect measure: a risk "
+    "difference, risk ratio or odds ratio for binary designs, a rate ratio for two_rates)",
     "sesoi_used": "the SESOI as the audit used it: pointed in the direction used, a magnitude "
     "when either (a band from -sesoi to sesoi; for ratios 1/sesoi to sesoi)",
     "plan_power": "power of the planned design at the planned effect",
@@ -41,8 +42,8 @@ METRICS: dict[str, str] = {
     "side where the two sides differ)",
     "mde_sesoi_ratio": "|MDE| / |SESOI| on the design's analysis scale (log for hazard ratios, "
     "Fisher z for correlations): above 1, effects that still matter could go undetected",
-    "mde_std": "the MDE standardized (d, d_z, h, r, f, f2 or log hazard ratio by design), with "
-    "the MDE's sign",
+    "mde_std": "the MDE standardized (d, d_z, h, r, f, f2, log hazard ratio, log rate ratio or "
+    "Cohen's g by design; h for proportions whatever the effect measure), with the MDE's sign",
     "se_plan": "expected standard error of the estimate under the plan",
     "se_realized": "expected standard error of the estimate as realized",
     "precision_ratio": "se_plan / se_realized (below 1: less precise than planned)",

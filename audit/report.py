@@ -648,8 +648,22 @@ _PAIR_LABELS = {
     "cluster size": "mean cluster size",
     "events": "events",
     "se": "standard error",
+    "p2": "intervention proportion",
+    "rate1": "control event rate",
 }
-_EFFECT_COLUMNS = ("planned_effect", "sesoi", "planned_p1", "planned_p2", "effect_scale")
+_EFFECT_COLUMNS = (
+    "planned_effect",
+    "sesoi",
+    "planned_p1",
+    "planned_p2",
+    "effect_scale",
+    "planned_rate1",
+    "planned_rate2",
+    "exposure",
+    "dispersion",
+    "periods",
+    "period_correlation",
+)
 _RESULT_COLUMNS = (
     "observed_effect",
     "observed_se",
@@ -657,6 +671,8 @@ _RESULT_COLUMNS = (
     "observed_ci_high",
     "observed_p",
     "reported_power",
+    "observed_events1",
+    "observed_events2",
 )
 
 
