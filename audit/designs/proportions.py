@@ -342,6 +342,8 @@ class TwoProportions(Design):
                     (np.abs(sesoi) >= 1, "sesoi", "a risk difference must lie strictly within ±1")
                 )
             reached = self.intervention_rate(p1, effect)
+            # A ratio at or below 0 has its own message above.
+            usable = effect > 0 if self.is_ratio else np.isfinite(effect)
             out.append(
                 (
                     ~np.isnan(p2) & ~np.isnan(effect) & differs,
@@ -352,10 +354,7 @@ class TwoProportions(Design):
             )
             out.append(
                 (
-                    np.isnan(p2)
-                    & ~np.isnan(p1)
-                    & (effect > 0 if self.is_ratio else effect > -1)
-                    & ~((reached > 0) & (reached < 1)),
+                    np.isnan(p2) & ~np.isnan(p1) & usable & ~((reached > 0) & (reached < 1)),
                     "planned_effect",
                     f"with planned_p1 this {noun} gives an intervention proportion outside (0, 1)",
                 )
