@@ -396,3 +396,51 @@ def test_effect_measure_on_a_design_with_one_unit_is_an_error():
     res = audit.audit_table(pd.DataFrame([row]))
     assert res.status.tolist() == ["invalid"]
     assert res.errors["column"].tolist() == ["effect_measure"]
+
+
+def test_an_unknown_measure_is_reported_not_a_crash(tmp_path, capsys):
+    from audit.cli import main
+
+    path = tmp_path / "bad.csv"
+    path.write_text(
+        "study_id,design,planned_p1,planned_effect,effect_measure,planned_n1,planned_n2\n"
+        "A,two_proportions,0.3,0.7,hazard_ratio,100,100\n"
+        "B,two_proportions,0.3,0.7,risk_ratio,100,100\n"
+    )
+    assert main(["check", str(path), "--study", "A"]) == 0
+    out = capsys.readouterr().out
+    assert "effect_measure" in out and "hazard_ratio" in out
+    res = audit.audit_file(path)
+    assert res.status.tolist() == ["invalid", "audited"]
+    assert res.errors["column"].tolist() == ["effect_measure"]
+
+
+def test_outputs_speak_in_the_rows_measure(tmp_path):
+    from openpyxl import load_workbook
+
+    from audit.report import key_numbers
+    from audit.respond import respond_text
+    from audit.template import write_template
+
+    row = {"study_id": "OR1", "design": "two_proportions", "effect_measure": "odds_ratio",
+           "planned_p1": 0.18, "planned_effect": 0.7, "planned_n1": 420, "planned_n2": 420,
+           "realized_n1": 401, "realized_n2": 398, "observed_events1": 70,
+           "observed_events2": 49}  # fmt: skip
+    res = audit.audit_table(pd.DataFrame([row]))
+    text = respond_text(res, "OR1")
+    assert "planned to detect an odds ratio of 0.7" in text
+    assert "was an odds ratio of" in text
+    assert any(k.startswith("MDE odds ratio ") for k in key_numbers(res, 0))
+    # The template's guide names the designs that read each new column.
+    path = tmp_path / "t.xlsx"
+    write_template(path)
+    guide = {r[0]: r[4] for r in load_workbook(path)["guide"].iter_rows(values_only=True) if r[0]}
+    assert guide["effect_measure"] == "two_proportions, cluster_two_proportions"
+    assert guide["periods"] == "stepped_wedge"
+    assert guide["dispersion"] == "two_rates"
+    assert guide["period_correlation"] == "crossover"
+    assert set(guide["observed_events1"].split(", ")) == {
+        "two_proportions",
+        "cluster_two_proportions",
+        "two_rates",
+    }

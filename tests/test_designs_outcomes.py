@@ -297,6 +297,20 @@ def test_crossover_required_size_is_even_and_smallest():
             assert power(total[i] - 2) < 0.8
 
 
+def test_crossover_size_follows_the_normal_formula_of_julious():
+    # Julious (2004), Statistics in Medicine 23:1921-1986, section 5 (formula from memory): an
+    # AB/BA crossover needs n = 2 (z_(1-alpha/2) + z_(1-beta))^2 sigma_w^2 / delta^2 subjects in
+    # all, sigma_w the within-subject SD (sigma_d^2 = 2 sigma_w^2), plus a few for the t
+    # distribution on n - 2 df.
+    design = DESIGNS["crossover"]
+    sigma_w = np.array([4.0, 6.0, 10.0])
+    delta = np.array([1.0, 1.5, 2.0])
+    sd_d = np.sqrt(2.0) * sigma_w
+    total = design.required_size({"n1": np.ones(3), "sd": sd_d}, delta, _spec(3))
+    normal = 2 * (Z975 + stats.norm.ppf(0.8)) ** 2 * sigma_w**2 / delta**2
+    assert np.all(total >= normal) and np.all(total <= normal + 4)
+
+
 def test_crossover_between_subject_sd_and_correlation_are_converted_with_a_note():
     base = {"design": "crossover", "planned_effect": 3.0, "planned_n1": 30, "realized_n1": 28}
     rows = [

@@ -79,4 +79,6 @@ def design_of(table: pd.DataFrame, pos: int) -> Design | None:
     design = DESIGNS.get(table["design"].iat[pos]) if "design" in table.columns else None
     if design is None:
         return None
-    return design.variants(table.iloc[[pos]])[0][0]
+    parts = design.variants(table.iloc[[pos]])
+    # A measure the design does not take (an invalid row): the design as registered.
+    return parts[0][0] if parts else design

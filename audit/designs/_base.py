@@ -261,7 +261,8 @@ class Design:
         A design with one effect unit is one variant (itself, all rows); a design with
         ``measures`` splits its rows by the ``effect_measure`` column (blank: the default).
         Everything downstream works on one variant at a time, so a variant's effect unit,
-        analysis scale and checks are those of its measure for all of its rows.
+        analysis scale and checks are those of its measure for all of its rows. Rows naming a
+        measure the design does not take are in no variant (validation rejects them).
         """
         everything = np.ones(len(rows), dtype=bool)
         if not self.measures:
