@@ -795,7 +795,7 @@ def _note_off_centre(
     where = f"the {scale} scale" if scale else "the scale of the estimate"
     hint = (
         "an odds or risk ratio's interval is symmetric on the log scale, so give such results "
-        "on that scale (or with a design that reads ratios)"
+        "on that scale, or with a design that reads ratios (effect_measure for proportions)"
         if scale is None
         else "check that the estimate and its limits are on the scale of the design"
     )
