@@ -16,7 +16,7 @@ import pandas as pd
 
 from audit import parallel, retro
 from audit._format import format_number
-from audit.designs import DESIGNS, Design, Scenario, TestSpec
+from audit.designs import Design, Scenario, TestSpec, design_groups
 from audit.designs._base import _directions
 
 __all__ = ["METRICS", "compute_metrics", "directed_mde", "direction_words", "test_settings"]
@@ -27,7 +27,8 @@ METRICS: dict[str, str] = {
     "column, else the planned effect's sign; for ratios below 1 is a decrease), or either (no "
     "direction given: the SESOI is a band around no effect and MDEs are magnitudes)",
     "planned_effect_used": "the planned effect in effect units as the audit used it "
-    "(planned_effect; p2 - p1 for two proportions)",
+    "(planned_effect, or from planned_p2 / planned_rate2 in the row's effect measure: a risk "
+    "difference, risk ratio or odds ratio for binary designs, a rate ratio for two_rates)",
     "sesoi_used": "the SESOI as the audit used it: pointed in the direction used, a magnitude "
     "when either (a band from -sesoi to sesoi; for ratios 1/sesoi to sesoi)",
     "plan_power": "power of the planned design at the planned effect",
@@ -41,8 +42,8 @@ METRICS: dict[str, str] = {
     "side where the two sides differ)",
     "mde_sesoi_ratio": "|MDE| / |SESOI| on the design's analysis scale (log for hazard ratios, "
     "Fisher z for correlations): above 1, effects that still matter could go undetected",
-    "mde_std": "the MDE standardized (d, d_z, h, r, f, f2 or log hazard ratio by design), with "
-    "the MDE's sign",
+    "mde_std": "the MDE standardized (d, d_z, h, r, f, f2, log hazard ratio, log rate ratio or "
+    "Cohen's g by design; h for proportions whatever the effect measure), with the MDE's sign",
     "se_plan": "expected standard error of the estimate under the plan",
     "se_realized": "expected standard error of the estimate as realized",
     "precision_ratio": "se_plan / se_realized (below 1: less precise than planned)",
@@ -255,11 +256,8 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
         name: np.full(n, None, dtype=object) if name in TEXT_METRICS else np.full(n, np.nan)
         for name in METRICS
     }
-    design_col = table["design"].to_numpy(dtype=object)
-    groups = [
-        (design, np.flatnonzero(valid & (design_col == name))) for name, design in DESIGNS.items()
-    ]
-    groups = [(design, positions) for design, positions in groups if len(positions)]
+    # One group per design and effect measure (a design with one effect unit is one group).
+    groups = design_groups(table, np.flatnonzero(valid))
     notes = _Notes()
     for (_, positions), (computed, group_notes) in zip(
         groups, _group_metrics(table, groups), strict=True
@@ -607,6 +605,7 @@ def _retro_metrics(
     alpha, sides = test.alpha, test.sides
     se_based = "se_realized" not in design.not_applicable
     reported = {c: _col(rows, c) for c in (*RESULT_COLUMNS, "observed_ci_level", "reported_power")}
+    _result_from_counts(design, rows, positions, notes, reported)
     # A p printed as a bound ("< 0.001", "n.s.") is a reported result too.
     has_result = ~np.isnan(_col(rows, "observed_p_relation"))
     for c in RESULT_COLUMNS:
@@ -719,6 +718,49 @@ def _retro_metrics(
     return res_out
 
 
+def _result_from_counts(
+    design: Design,
+    rows: pd.DataFrame,
+    positions: np.ndarray,
+    notes: _Notes,
+    reported: dict[str, np.ndarray],
+) -> None:
+    """Fill in the reported result from events per arm (or the realized proportions) where the
+    row reports no estimate, SE or interval, with a note; where it reports one, the counts are
+    not used, with a note too. Designs without counts (no ``counted_result``) are left alone."""
+    counted = getattr(design, "counted_result", None)
+    if counted is None:
+        return
+    effect, se, source = counted(rows)
+    given = (
+        np.isfinite(reported["observed_effect"])
+        | np.isfinite(reported["observed_se"])
+        | np.isfinite(reported["observed_ci_low"])
+        | np.isfinite(reported["observed_ci_high"])
+    )
+    use = (source > 0) & ~given
+    reported["observed_effect"] = np.where(use, effect, reported["observed_effect"])
+    reported["observed_se"] = np.where(use, se, reported["observed_se"])
+    how = design.counted_note()
+    names = {1: design.count_columns(), 2: design.rate_columns()}
+    for code, columns in names.items():
+        notes.add(
+            positions[use & (source == code)],
+            f"observed_effect and observed_se derived from {columns} ({how})",
+        )
+        notes.add(
+            positions[given & (source == code)],
+            f"{columns} not used for the result: the reported observed_effect, observed_se or "
+            "interval is used",
+        )
+    partial = design.partial_counts(rows) & (source == 0)
+    notes.add(
+        positions[partial],
+        f"{design.count_columns()} incomplete: the result needs both arms' events and sizes; "
+        "not used",
+    )
+
+
 #: Level of a reported interval whose level is not given: what papers report.
 DEFAULT_CI_LEVEL = 0.95
 
@@ -748,10 +790,12 @@ def _note_off_centre(
     if not off.any():
         return
     scale = {"survival": "log hazard ratio", "correlation": "Fisher z"}.get(design.name)
+    if scale is None and design.is_ratio:
+        scale = f"log {design.noun}"
     where = f"the {scale} scale" if scale else "the scale of the estimate"
     hint = (
         "an odds or risk ratio's interval is symmetric on the log scale, so give such results "
-        "on that scale (or with a design that reads ratios)"
+        "on that scale, or with a design that reads ratios (effect_measure for proportions)"
         if scale is None
         else "check that the estimate and its limits are on the scale of the design"
     )

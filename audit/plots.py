@@ -20,7 +20,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from audit.designs import DESIGNS
+from audit.designs import DESIGNS, design_groups, design_of
 from audit.errors import OutputError
 from audit.metrics import test_settings
 
@@ -63,11 +63,7 @@ def power_curves(
     """
     table, metrics = result.table, result.metrics
     out: dict[int, dict[str, np.ndarray]] = {}
-    designs = table["design"].to_numpy(dtype=object)
-    for name, design in DESIGNS.items():
-        pos = positions[designs[positions] == name]
-        if not len(pos):
-            continue
+    for design, pos in design_groups(table, np.asarray(positions, dtype=int)):
         rows = table.iloc[pos]
         test = test_settings(rows, design)
         effect = design.planned_effect(rows)
@@ -111,9 +107,7 @@ def power_curves(
     return out
 
 
-def _choose(
-    result: AuditResult, max_studies: int, study: str | Sequence[str] | None
-) -> np.ndarray:
+def _choose(result: AuditResult, max_studies: int, study: str | Sequence[str] | None) -> np.ndarray:
     audited = np.flatnonzero(result.valid)
     if study is not None:
         wanted = [study] if isinstance(study, str) else list(study)
@@ -170,7 +164,7 @@ def write_plots(
         if c is None or not np.isfinite(c["realized"]).any():
             continue
         row = table.iloc[pos]
-        design = DESIGNS[row["design"]]
+        design = design_of(table, pos)
         fig, ax = plt.subplots(figsize=(6.4, 4.6), dpi=110)
         _style(ax)
         ax.plot(c["effect"], c["planned"], color=PALETTE["planned"], lw=2, label="as planned")

@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from audit.designs import DESIGNS
+from audit.designs import DESIGNS, design_groups
 from audit.designs._power import t_power
 from audit.excess import deficit_p_value, excess_significance_test
 
@@ -204,11 +204,8 @@ def portfolio_summary(
 def _per_design(table: pd.DataFrame, rows: np.ndarray, func) -> np.ndarray:
     """``func(design, sub_table)`` evaluated per design over the selected rows (nan elsewhere)."""
     out = np.full(len(table), np.nan)
-    designs = table["design"].to_numpy(dtype=object)
-    for name, design in DESIGNS.items():
-        mask = rows & (designs == name)
-        if mask.any():
-            out[mask] = func(design, table.loc[mask])
+    for design, pos in design_groups(table, np.flatnonzero(rows)):
+        out[pos] = func(design, table.iloc[pos])
     return out
 
 

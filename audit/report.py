@@ -24,7 +24,7 @@ from rich.text import Text
 from rich.theme import Theme
 
 from audit._format import format_number
-from audit.designs import DESIGNS
+from audit.designs import design_of
 from audit.metrics import METRICS
 from audit.rules import CONTRACT_METRICS, SEVERITIES, SEVERITY_RANK, Rule, RuleSet, known_columns
 from audit.schema import COLUMNS
@@ -212,14 +212,18 @@ def key_numbers(result: AuditResult, pos: int) -> list[str]:
         out.append(f"at SESOI {sesoi_power:.2f}")
     mde = m.get("mde", np.nan)
     if math.isfinite(mde):
-        design = DESIGNS.get(str(result.table["design"].iat[pos]))
+        design = design_of(result.table, pos)
         unit = design.standardized_as if design is not None else None
+        # A ratio measure is named: the number alone would read as a difference.
+        named = (
+            f"{design.noun} " if design is not None and design.measure and design.is_ratio else ""
+        )
         std = m.get("mde_std", np.nan)
         show_std = unit and math.isfinite(std) and not math.isclose(abs(std), abs(mde))
         # mde and mde_std carry the same sign (the direction used); either way: magnitudes.
         extra = f" ({unit} {format_number(std)})" if show_std else ""
         either = " either way" if m.get("direction_used") == "either" else ""
-        out.append(f"MDE {format_number(mde)}{either}{extra}")
+        out.append(f"MDE {named}{format_number(mde)}{either}{extra}")
     ratio = m.get("n_ratio", np.nan)
     if math.isfinite(ratio):
         out.append(f"size {ratio:.0%} of plan")
@@ -644,8 +648,22 @@ _PAIR_LABELS = {
     "cluster size": "mean cluster size",
     "events": "events",
     "se": "standard error",
+    "p2": "intervention proportion",
+    "rate1": "control event rate",
 }
-_EFFECT_COLUMNS = ("planned_effect", "sesoi", "planned_p1", "planned_p2", "effect_scale")
+_EFFECT_COLUMNS = (
+    "planned_effect",
+    "sesoi",
+    "planned_p1",
+    "planned_p2",
+    "effect_scale",
+    "planned_rate1",
+    "planned_rate2",
+    "exposure",
+    "dispersion",
+    "periods",
+    "period_correlation",
+)
 _RESULT_COLUMNS = (
     "observed_effect",
     "observed_se",
@@ -653,6 +671,8 @@ _RESULT_COLUMNS = (
     "observed_ci_high",
     "observed_p",
     "reported_power",
+    "observed_events1",
+    "observed_events2",
 )
 
 
@@ -690,11 +710,13 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
         grid.add_row("file", f"{result.settings.get('source', '')}, row {int(row['_row'])}")
         if _text(row.get("title")):
             grid.add_row("title", _text(row["title"]))
-        design = DESIGNS.get(_text(row["design"]))
+        design = design_of(result.table, pos)
         grid.add_row(
             "design",
             _text(row["design"]) + (f" — {design.title}" if design is not None else ""),
         )
+        if design is not None and design.measure is not None:
+            grid.add_row("effects", f"{design.measure.replace('_', ' ')}: {design.effect_unit}")
         sides = "one-sided" if float(row["sides"]) == 1.0 else "two-sided"
         grid.add_row(
             "test",

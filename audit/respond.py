@@ -16,7 +16,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from audit._format import format_number
-from audit.designs import DESIGNS
+from audit.designs import Design, design_of
 from audit.errors import ConfigError
 from audit.metrics import directed_mde, test_settings
 
@@ -62,10 +62,24 @@ EFFECT_NOUNS = {
     "cluster_two_means": "difference in means",
     "survival": "hazard ratio",
     "estimate": "effect",
+    "cluster_two_proportions": "risk difference",
+    "two_rates": "rate ratio",
+    "crossover": "difference between the treatments",
+    "paired_proportions": "difference in paired proportions",
+    "stepped_wedge": "difference in means",
 }
 _STANDARDIZED_NOUNS = {"paired_means": "standardized mean difference (d_z)"}
 #: What the sizes count, by design.
-UNIT_NOUNS = {"paired_means": "pairs", "cluster_two_means": "clusters", "survival": "participants"}
+UNIT_NOUNS = {
+    "paired_means": "pairs",
+    "cluster_two_means": "clusters",
+    "survival": "participants",
+    "cluster_two_proportions": "clusters",
+    "stepped_wedge": "clusters",
+    "paired_proportions": "pairs",
+    "crossover": "participants",
+    "two_rates": "participants",
+}
 
 
 def _num(value: float) -> str:
@@ -97,7 +111,7 @@ def _alpha_phrase(alpha: float, sides: float, comparisons: float) -> str:
 
 
 def _effect_phrase(
-    design_name: str,
+    design: Design,
     standardized: bool,
     value: float,
     std: float | None,
@@ -105,17 +119,18 @@ def _effect_phrase(
 ) -> str:
     """'a difference in means of 5 (d = 0.5)'; with no direction, a ratio is given both ways
     ('a hazard ratio of 1.75 or 0.571 (log HR = ±0.56)')."""
-    design = DESIGNS[design_name]
+    design_name = design.name
     if standardized:
         noun = _STANDARDIZED_NOUNS.get(design_name, "standardized mean difference (d)")
         return f"a {noun} of {_num(value)}"
     shown = _num(value)
     sign = ""
-    if either and design_name == "survival" and math.isfinite(value) and value > 0:
+    if either and design.is_ratio and math.isfinite(value) and value > 0:
         big = max(value, 1.0 / value)
         shown, sign = f"{_num(big)} or {_num(1.0 / big)}", "±"
         std = abs(std) if std is not None else None
-    text = f"a {EFFECT_NOUNS.get(design_name, 'effect')} of {shown}"
+    noun = design.noun or EFFECT_NOUNS.get(design_name, "effect")
+    text = f"{_article(noun)} {noun} of {shown}"
     label = design.standardized_as
     if std is not None and math.isfinite(std) and label and not math.isclose(abs(std), abs(value)):
         text += f" ({label} = {sign}{_num(std)})"
@@ -124,8 +139,7 @@ def _effect_phrase(
 
 def _mde_at(result: AuditResult, pos: int, power: float) -> tuple[float, float]:
     """MDE (effect units and standardized) of the realized design at another target power."""
-    name = str(result.table["design"].iat[pos])
-    design = DESIGNS[name]
+    design = design_of(result.table, pos)
     rows = result.table.iloc[[pos]]
     test = test_settings(rows, design).with_power(np.array([power]))
     real = design.scenario(rows, "realized")
@@ -134,17 +148,20 @@ def _mde_at(result: AuditResult, pos: int, power: float) -> tuple[float, float]:
     return float(mde[0]), float(std[0])
 
 
-def _either_way(design_name: str, value: float) -> str:
+def _article(noun: str) -> str:
+    return "an" if noun[:1] in "aeiou" else "a"
+
+
+def _either_way(design: Design, value: float) -> str:
     """A magnitude with no direction: '0.2 either way', for ratios '1.25 (or 0.8) either way'."""
-    if design_name == "survival" and math.isfinite(value) and value > 0:
+    if design.is_ratio and math.isfinite(value) and value > 0:
         big = max(value, 1.0 / value)
         return f"{_num(big)} or {_num(1.0 / big)}, either way"
     return f"{_num(abs(value))} either way"
 
 
 def _power_at(result: AuditResult, pos: int, effect: float) -> float:
-    name = str(result.table["design"].iat[pos])
-    design = DESIGNS[name]
+    design = design_of(result.table, pos)
     rows = result.table.iloc[[pos]]
     real = design.scenario(rows, "realized")
     with np.errstate(all="ignore"):
@@ -168,7 +185,7 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
     row = result.table.iloc[pos]
     m = result.metrics.iloc[pos]
     name = str(row["design"])
-    design = DESIGNS[name]
+    design = design_of(result.table, pos)
     alpha, sides = float(row["alpha"]), float(row["sides"])
     comparisons = float(row["comparisons"])
     target = float(row["target_power"])
@@ -179,11 +196,13 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
         "paired_means",
         "two_means",
         "cluster_two_means",
+        "crossover",
+        "stepped_wedge",
     )
     units = UNIT_NOUNS.get(name, "analysable units")
     either = m.get("direction_used") == "either"
     sesoi_used = float(m.get("sesoi_used", np.nan))
-    sesoi_text = _either_way(name, sesoi_used) if either else _num(sesoi_used)
+    sesoi_text = _either_way(design, sesoi_used) if either else _num(sesoi_used)
     title = row.get("title")
     heading = f"## Power and sensitivity: {row['study_id']}"
     if isinstance(title, str) and title:
@@ -200,7 +219,7 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
         )
         plan_bits.append(
             f"The study was planned to detect "
-            f"{_effect_phrase(name, standardized, planned, std_planned)} with {target:.0%} "
+            f"{_effect_phrase(design, standardized, planned, std_planned)} with {target:.0%} "
             f"power at a "
             f"{_alpha_phrase(alpha, sides, comparisons)}."
         )
@@ -239,7 +258,7 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
     if math.isfinite(mde80):
         tested = _alpha_phrase(alpha, sides, comparisons)
         at90 = (
-            f", and {_effect_phrase(name, standardized, mde90, std90, either)} with 90% power."
+            f", and {_effect_phrase(design, standardized, mde90, std90, either)} with 90% power."
             if math.isfinite(mde90)
             else "."
         )
@@ -247,7 +266,7 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
         sens.append(
             f"**Sensitivity analysis.** With the realized sample size and variability, the "
             f"smallest effect the study could detect{way} with 80% power ({tested}) was "
-            f"{_effect_phrase(name, standardized, mde80, std80, either)}{at90}"
+            f"{_effect_phrase(design, standardized, mde80, std80, either)}{at90}"
         )
         refs.append("bloom")
         if design.standardized_as in ("d", "d_z", "f", "f2", "r", "h"):
@@ -293,7 +312,7 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
         level_text = f"{level * 100:g}%" if math.isfinite(level) else "the"
         places = _decimals(
             (high - low) / 2
-            if name != "survival"
+            if not design.is_ratio
             else min(abs(high - estimate), abs(estimate - low))
         )
         bits = [

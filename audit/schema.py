@@ -223,6 +223,85 @@ COLUMNS: tuple[Column, ...] = (
         "Label grouping studies of the same outcome on the same effect scale (for the pooled "
         "basis of the excess-significance test).",
     ),
+    # -- binary, count and multi-period outcomes (DESIGN.md section 9.2) --
+    _p(
+        "realized_p2",
+        "effects",
+        "Realized intervention-group proportion (with realized_n1/n2 and realized_p1 it gives "
+        "the reported result in effect_measure).",
+    ),
+    Column(
+        "effect_measure",
+        "choice",
+        "effects",
+        "two_proportions, cluster_two_proportions: the measure planned_effect, sesoi, the "
+        "reported result and the MDE are in: 'risk_difference' (p2 - p1), 'risk_ratio' "
+        "(p2 / p1) or 'odds_ratio'.",
+        default="risk_difference",
+        choices=("risk_difference", "risk_ratio", "odds_ratio"),
+    ),
+    _count(
+        "observed_events1",
+        "results",
+        "Events observed in group 1 (control); with realized_n1/n2 and observed_events2 they "
+        "give the reported result in effect_measure (two_rates: with exposure).",
+        low=0.0,
+    ),
+    _count("observed_events2", "results", "Events observed in group 2 (intervention).", low=0.0),
+    Column(
+        "planned_rate1",
+        "number",
+        "effects",
+        "two_rates: planned control-group event rate per unit of exposure time.",
+        low=0.0,
+    ),
+    Column(
+        "planned_rate2",
+        "number",
+        "effects",
+        "two_rates: planned intervention-group event rate per unit of exposure time.",
+        low=0.0,
+    ),
+    Column(
+        "realized_rate1",
+        "number",
+        "effects",
+        "two_rates: realized control-group event rate per unit of exposure time.",
+        low=0.0,
+    ),
+    Column(
+        "exposure",
+        "number",
+        "sizes",
+        "two_rates: mean follow-up per unit, in the rates' time unit (blank: 1).",
+        low=0.0,
+    ),
+    Column(
+        "dispersion",
+        "number",
+        "variability",
+        "two_rates: negative-binomial dispersion k (variance mu + k mu^2); blank or 0: Poisson.",
+        low=0.0,
+        low_open=False,
+    ),
+    Column(
+        "periods",
+        "integer",
+        "sizes",
+        "stepped_wedge: measurement periods (sequences = periods - 1).",
+        low=2.0,
+        low_open=False,
+    ),
+    Column(
+        "period_correlation",
+        "number",
+        "variability",
+        "crossover: correlation of a subject's two period outcomes; given, planned_sd and "
+        "realized_sd are read as between-subject SDs of one period's outcome and converted to "
+        "the SD of the period difference, sd * sqrt(2 (1 - correlation)).",
+        low=-1.0,
+        high=1.0,
+    ),
 )
 
 SPECS: dict[str, Column] = {c.name: c for c in COLUMNS}
@@ -756,7 +835,13 @@ def validate(raw: RawTable, whole: WholeTable | None = None) -> Validated:
         for bad, column, reason in design.check_rows(sub):
             full = np.zeros(n, dtype=bool)
             full[np.flatnonzero(mask)[np.asarray(bad, dtype=bool)]] = True
-            fail(full, column, f"{reason} for design {name}")
+            reasons = np.asarray(reason, dtype=object)
+            if reasons.ndim:  # one reason per row of the design
+                spread = np.full(n, "", dtype=object)
+                spread[np.flatnonzero(mask)] = reasons + f" for design {name}"
+                fail(full, column, spread)
+            else:
+                fail(full, column, f"{reason} for design {name}")
 
     # A reported result must hang together: limits in order, the estimate between them.
     low, high = table["observed_ci_low"].to_numpy(), table["observed_ci_high"].to_numpy()

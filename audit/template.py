@@ -70,6 +70,28 @@ EXAMPLES: tuple[dict[str, object], ...] = (
     {"study_id": "EX-10", "title": "Growth-curve slope difference from a mixed model", "design":
      "estimate", "planned_se": 0.04, "realized_se": 0.05, "df": 180, "planned_effect": 0.12,
      "sesoi": 0.08},
+    {"study_id": "EX-11", "title": "Oral care protocol and ventilator pneumonia (odds ratio)",
+     "design": "two_proportions", "effect_measure": "odds_ratio", "planned_n1": 420,
+     "planned_n2": 420, "realized_n1": 401, "realized_n2": 398, "planned_p1": 0.18,
+     "planned_effect": 0.6, "observed_events1": 70, "observed_events2": 49},
+    {"study_id": "EX-12", "title": "School handwashing and illness absence (schools randomised)",
+     "design": "cluster_two_proportions", "planned_n1": 16, "planned_n2": 16, "realized_n1": 15,
+     "realized_n2": 16, "planned_cluster_size": 60, "planned_icc": 0.02, "realized_icc": 0.04,
+     "planned_p1": 0.3, "planned_p2": 0.22},
+    {"study_id": "EX-13", "title": "Balance classes and falls per resident-year", "design":
+     "two_rates", "planned_n1": 250, "planned_n2": 250, "realized_n1": 231, "realized_n2": 228,
+     "planned_rate1": 2.4, "planned_rate2": 1.8, "realized_rate1": 2.1, "exposure": 1,
+     "dispersion": 0.8},
+    {"study_id": "EX-14", "title": "Stimulation and gait speed (AB/BA crossover)", "design":
+     "crossover", "planned_n1": 30, "realized_n1": 26, "planned_sd": 5.4, "realized_sd": 6.1,
+     "planned_effect": 3},
+    {"study_id": "EX-15", "title": "Two dressings on paired ulcers and healing", "design":
+     "paired_proportions", "planned_n1": 150, "realized_n1": 138, "planned_p1": 0.1,
+     "planned_p2": 0.22, "realized_p1": 0.13},
+    {"study_id": "EX-16", "title": "Ward roll-out of a mobility programme (stepped wedge)",
+     "design": "stepped_wedge", "planned_n1": 12, "realized_n1": 12, "periods": 5,
+     "planned_cluster_size": 15, "planned_sd": 10, "planned_icc": 0.05, "realized_icc": 0.09,
+     "planned_effect": 3},
 )  # fmt: skip
 
 

@@ -71,17 +71,41 @@ def _random_rows(rng: np.random.Generator, k: int) -> pd.DataFrame:
         "realized_cluster_size": rng.uniform(2, 40, k),
         "cluster_size_cv": rng.uniform(0, 0.8, k),
         "sesoi": rng.uniform(0.01, 0.2, k),
+        "effect_measure": rng.choice(["risk_difference", "risk_ratio", "odds_ratio"], k),
+        "periods": rng.integers(3, 8, k),
+        "planned_rate1": rng.uniform(0.2, 3.0, k),
+        "realized_rate1": rng.uniform(0.2, 3.0, k),
+        "exposure": rng.uniform(0.5, 2.0, k),
+        "dispersion": rng.uniform(0.0, 1.0, k),
+        "period_correlation": rng.uniform(0.0, 0.9, k),
+        "observed_events1": np.floor(n1 * rng.uniform(0.0, 0.5, k)),
+        "observed_events2": np.floor(n2 * rng.uniform(0.0, 0.5, k)),
     }
+    ratio_sesoi = np.exp(rng.uniform(0.05, 0.5, k))
+    ratio = np.isin(design, ["two_rates"]) | (
+        np.isin(design, ["two_proportions", "cluster_two_proportions"])
+        & (data["effect_measure"] != "risk_difference")
+    )
+    data["sesoi"] = np.where(ratio, ratio_sesoi, data["sesoi"])
+    # Paired proportions: discordant shares that leave room for each other.
+    data["planned_p1"] = np.where(design == "paired_proportions", p1 / 3, data["planned_p1"])
+    data["planned_p2"] = np.where(
+        design == "paired_proportions",
+        np.clip(p1 / 3 + rng.uniform(-0.04, 0.2, k), 0.01, 0.5),
+        data["planned_p2"],
+    )
     effect = {
         "correlation": rng.uniform(-0.5, 0.5, k),
         "k_means": rng.uniform(0.0, 0.5, k),
         "regression": rng.uniform(0.0, 0.3, k),
         "survival": np.exp(rng.uniform(-0.8, 0.8, k)),
+        "two_rates": np.exp(rng.uniform(-0.8, 0.8, k)),
     }
     planned_effect = rng.uniform(-5, 5, k)
     for name, values in effect.items():
         planned_effect = np.where(design == name, values, planned_effect)
-    data["planned_effect"] = np.where(design == "two_proportions", np.nan, planned_effect)
+    binary = np.isin(design, ["two_proportions", "cluster_two_proportions", "paired_proportions"])
+    data["planned_effect"] = np.where(binary, np.nan, planned_effect)
     total = n1 + n2
     data["planned_events"] = np.round(total * rng.uniform(0.1, 0.9, k))
     data["realized_events"] = np.round(total * 0.6 * rng.uniform(0.1, 0.9, k))

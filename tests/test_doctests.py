@@ -8,6 +8,7 @@ import importlib
 import pytest
 
 MODULES = [
+    "audit.designs._binary",
     "audit.designs._power",
     "audit.designs.cluster",
     "audit.designs.correlation",

@@ -150,6 +150,60 @@ def _fewer_events(row: Row) -> Row:
     return {**row, "realized_events": max(1, round(float(row["planned_events"]) / 2))}
 
 
+def _cluster_proportions(n: float, d: float) -> Row:
+    return {**_proportions(n + 1, d), "planned_cluster_size": 10, "planned_icc": 0.05}
+
+
+def _rates(n: float, d: float) -> Row:
+    # Rate ratio exp(-d) kept within (1/e, e): far beyond it the Wald test of a log rate ratio
+    # loses power as the intervention arm runs out of events (see docs/methods/outcomes.md).
+    return {
+        "planned_n1": n,
+        "planned_n2": n,
+        "realized_n1": n,
+        "realized_n2": n,
+        "planned_rate1": 1.0,
+        "exposure": 1.5,
+        "dispersion": 0.3,
+        "planned_effect": math.exp(-_bounded(d, 1.0)),
+    }
+
+
+def _fewer_control_events(row: Row) -> Row:
+    return {**row, "realized_rate1": 0.3}
+
+
+def _crossover(n: float, d: float) -> Row:
+    # n + 2 subjects: the smallest size still has a degree of freedom (n - 2).
+    return {"planned_n1": n + 2, "realized_n1": n + 2, "planned_sd": 1.0, "planned_effect": d}
+
+
+def _paired_proportions(n: float, d: float) -> Row:
+    # Discordant shares 0.15 and 0.15 + delta, delta within (-0.1, 0.1).
+    return {
+        "planned_n1": n,
+        "realized_n1": n,
+        "planned_p1": 0.15,
+        "planned_p2": 0.15 + _bounded(d, 0.1),
+    }
+
+
+def _more_discordance(row: Row) -> Row:
+    return {**row, "realized_p1": 0.3}
+
+
+def _stepped_wedge(n: float, d: float) -> Row:
+    return {
+        "planned_n1": 3 * n,
+        "realized_n1": 3 * n,
+        "periods": 4,
+        "planned_cluster_size": 10,
+        "planned_icc": 0.05,
+        "planned_sd": 1.0,
+        "planned_effect": d,
+    }
+
+
 #: design -> (row for (size per group, standardized effect), the same row made noisier).
 EXAMPLES: dict[str, tuple[Callable[[float, float], Row], Callable[[Row], Row]]] = {
     "one_mean": (_means, _noisier_sd),
@@ -162,11 +216,19 @@ EXAMPLES: dict[str, tuple[Callable[[float, float], Row], Callable[[Row], Row]]] 
     "regression": (_regression, _fewer_units),
     "cluster_two_means": (_cluster, _noisier_icc),
     "survival": (_survival, _fewer_events),
+    "cluster_two_proportions": (_cluster_proportions, _noisier_icc),
+    "two_rates": (_rates, _fewer_control_events),
+    "crossover": (_crossover, _noisier_sd),
+    "paired_proportions": (_paired_proportions, _more_discordance),
+    "stepped_wedge": (_stepped_wedge, _noisier_sd),
 }
 
 #: Designs whose effect scale is bounded (a risk difference, a correlation): a high target can
 #: need an effect past the bound, and the MDE is then null with a note instead of a number.
-BOUNDED = {"two_proportions", "correlation"}
+BOUNDED = {"two_proportions", "correlation", "cluster_two_proportions", "paired_proportions"}
+# A falling rate has a bounded power too: with few units no rate ratio below 1 reaches a high
+# target (the Wald test loses power as the intervention arm's events vanish).
+BOUNDED |= {"two_rates"}
 
 DESIGN_NAMES = sorted(DESIGNS)
 
@@ -210,7 +272,7 @@ def test_extremes_are_finite_or_null_with_a_note(name):
         effect = r.get(
             "planned_effect", float(r.get("planned_p2", 0)) - float(r.get("planned_p1", 0))
         )
-        if name == "survival":
+        if name in ("survival", "two_rates"):
             effect = math.log(float(effect))  # half the effect on the log scale
             sesoi = math.exp(-abs(effect) / 2)
         else:

@@ -95,7 +95,7 @@ def test_report_sections_and_order():
     order = [text.index(s, positions[2]) for s in ("RX-01", "RX-03", "RX-04", "RX-05", "RX-08")]
     assert order == sorted(order)
     assert "No findings for 1 audited study: RX-02." in text
-    for reason in ("realized_n1 = '-5'", "design = 'crossover'"):
+    for reason in ("realized_n1 = '-5'", "design = 'factorial'"):
         assert reason in text
     for caveat in ("Hoenig & Heisey 2001", "Gelman & Carlin 2014", "qualified statistician"):
         assert caveat in " ".join(text.split())

@@ -174,7 +174,7 @@ def _filled(rows: pd.DataFrame, name: str) -> np.ndarray:
         if spec is not None and isinstance(spec.default, float):
             given &= x != spec.default
         return given
-    given = values.notna().to_numpy(dtype=bool)
+    given = values.notna().to_numpy(dtype=bool).copy()
     if spec is not None and spec.default is not None:
         given &= (values != spec.default).to_numpy(dtype=bool, na_value=False)
     return given
@@ -231,6 +231,53 @@ class Design:
     symmetric: ClassVar[bool] = True
     #: Columns whose sizes follow the one-group convention (total N in ``planned_n1``).
     one_group: ClassVar[bool] = False
+    #: Values of the ``effect_measure`` column the design takes, its default first; empty for a
+    #: design with one effect unit (which then does not read the column).
+    measures: ClassVar[tuple[str, ...]] = ()
+    #: The effect measure of this instance (one of ``measures``); None for one-unit designs.
+    measure: str | None = None
+
+    @property
+    def is_ratio(self) -> bool:
+        """Effects are ratios: no effect is 1 and the analysis scale is the log."""
+        return False
+
+    @property
+    def noun(self) -> str | None:
+        """What an effect is called in a sentence ("a hazard ratio of 0.8"), if the design
+        names it itself."""
+        return None
+
+    # -- variants by effect measure ------------------------------------------------------------
+
+    def with_measure(self, measure: str | None) -> Design:
+        """This design with its effects in ``measure``: itself for a design with one effect unit
+        or a measure it does not take (see :meth:`variants`)."""
+        return self
+
+    def variants(self, rows: pd.DataFrame) -> list[tuple[Design, np.ndarray]]:
+        """``(design, mask)``: the rows of each effect measure, with the design that reads them.
+
+        A design with one effect unit is one variant (itself, all rows); a design with
+        ``measures`` splits its rows by the ``effect_measure`` column (blank: the default).
+        Everything downstream works on one variant at a time, so a variant's effect unit,
+        analysis scale and checks are those of its measure for all of its rows. Rows naming a
+        measure the design does not take are in no variant (validation rejects them).
+        """
+        everything = np.ones(len(rows), dtype=bool)
+        if not self.measures:
+            return [(self, everything)]
+        if "effect_measure" in rows.columns:
+            values = rows["effect_measure"].to_numpy(dtype=object)
+            values = np.where(pd.isna(values), self.measures[0], values)
+        else:
+            values = np.full(len(rows), self.measures[0], dtype=object)
+        out = []
+        for measure in self.measures:
+            mask = values == measure
+            if mask.any():
+                out.append((self.with_measure(measure), mask))
+        return out
 
     # -- reading --------------------------------------------------------------------------------
 
@@ -267,9 +314,28 @@ class Design:
         common = COMMON_INPUTS if self.has_direction else COMMON_INPUTS - {"direction"}
         return common | own
 
-    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
-        """Row checks: ``(bad_mask, column, reason)`` triples. The direction and the columns the
-        design would ignore to a wrong result, then the design's own :meth:`row_checks`."""
+    def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str | np.ndarray]]:
+        """Row checks: ``(bad_mask, column, reason)`` triples (a reason is one text or one per
+        row). The direction and the columns the design would ignore to a wrong result, then the
+        design's own :meth:`row_checks`; each effect measure's rows by its own variant."""
+        parts = self.variants(rows)
+        if len(parts) == 1 and parts[0][1].all():
+            return parts[0][0]._checks(rows)
+        out = []
+        for variant, mask in parts:
+            for bad, column, reason in variant._checks(rows.loc[mask]):
+                full = np.zeros(len(rows), dtype=bool)
+                full[mask] = np.asarray(bad, dtype=bool)
+                reasons = np.asarray(reason, dtype=object)
+                if reasons.ndim:
+                    spread = np.full(len(rows), "", dtype=object)
+                    spread[mask] = reasons
+                    reasons = spread
+                out.append((full, column, reasons if reasons.ndim else reason))
+        return out
+
+    def _checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str | np.ndarray]]:
+        """:meth:`check_rows` for rows of this variant only."""
         out = []
         if self.has_direction and "direction" in rows.columns:
             given = _directions(rows)
@@ -340,6 +406,16 @@ class Design:
                         "and leave this column blank",
                     )
                 )
+        if "effect_measure" not in used and "effect_measure" in rows.columns:
+            out.append(
+                (
+                    _filled(rows, "effect_measure"),
+                    "effect_measure",
+                    f"is filled, but {self.name} has effects in one unit only "
+                    f"({self.effect_unit}): leave effect_measure blank and give effects in that "
+                    "unit, or use a design that takes the measure",
+                )
+            )
         if "effect_scale" not in used:
             scale = rows["effect_scale"] if "effect_scale" in rows.columns else None
             if scale is not None:
@@ -358,7 +434,9 @@ class Design:
         """``(mask, text)``: for each row, the filled columns this design does not read."""
         from audit.schema import COLUMNS  # the column table (a late import: it imports us)
 
-        used = self.inputs() | CLUSTER_INPUTS | ADJUSTMENT_INPUTS | {"effect_scale"}
+        used = (
+            self.inputs() | CLUSTER_INPUTS | ADJUSTMENT_INPUTS | {"effect_scale", "effect_measure"}
+        )
         if self.one_group:
             used |= {"planned_n2", "realized_n2"}
         parts = [
@@ -374,9 +452,9 @@ class Design:
                 sep = np.where(labels[mask] == "", "", ", ")
                 labels[mask] = labels[mask] + sep + name
         hit = labels != ""
-        text = (
-            f"filled but not used by {self.name}, which ignores them: " + labels[hit]
-        ).astype(object)
+        text = (f"filled but not used by {self.name}, which ignores them: " + labels[hit]).astype(
+            object
+        )
         return [(hit, text)]
 
     def orient(self, value: np.ndarray, direction: np.ndarray) -> np.ndarray:

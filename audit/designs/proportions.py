@@ -1,6 +1,10 @@
 """Two independent proportions compared with a z test (normal approximation).
 
-The effect is the risk difference ``p2 - p1`` (group 2 against the control group 1). The test
+The effect is given in the row's ``effect_measure``: the risk difference ``p2 - p1`` (the
+default), the risk ratio ``p2 / p1`` or the odds ratio (group 2 against the control group 1);
+whatever the measure, the test is the one below on the pair of proportions the effect implies,
+so an odds ratio or risk ratio plan needs the same size as the risk difference it implies. The
+test
 statistic divides the observed difference by its standard error under H0, with the variance
 pooled over both groups; under the alternative the difference is normal with the unpooled
 variance. This is the usual sample-size formula for two proportions [1]_. With the continuity
@@ -30,9 +34,32 @@ from audit.designs._base import (
     _column,
     allocation_ratio,
 )
+from audit.designs._binary import (
+    MEASURES,
+    RATIO_MEASURES,
+    counts_result,
+    from_log,
+    measure_of,
+    p2_from,
+    to_log,
+    wald_se,
+)
 from audit.designs._solve import smallest_size, solve_increasing
 
-__all__ = ["TwoProportions", "cohens_h", "fleiss_n1", "proportions_power"]
+__all__ = ["MEASURE_UNITS", "TwoProportions", "cohens_h", "fleiss_n1", "proportions_power"]
+
+#: The effect unit of each effect measure, as the outputs name it.
+MEASURE_UNITS = {
+    "risk_difference": "risk difference p2 - p1",
+    "risk_ratio": "risk ratio p2 / p1",
+    "odds_ratio": "odds ratio (p2 / (1 - p2)) / (p1 / (1 - p1))",
+}
+#: What an effect in each measure is called in a sentence ("an odds ratio of 0.7").
+MEASURE_NOUNS = {
+    "risk_difference": "risk difference",
+    "risk_ratio": "risk ratio",
+    "odds_ratio": "odds ratio",
+}
 
 
 def cohens_h(p1: np.ndarray, p2: np.ndarray) -> np.ndarray:
@@ -172,87 +199,267 @@ def _power_of_difference(m, n1, n2, p1, alpha, sides, corrected, direction):
 
 
 class TwoProportions(Design):
-    """Risk difference between two independent groups; z test with pooled variance under H0.
+    """Two independent proportions; z test with the variance pooled under H0 (Fleiss).
 
-    Group 1 is the control group: ``planned_p1`` / ``realized_p1`` are its event proportions,
-    and the realized design keeps the planned risk difference on top of the realized control
-    rate (``realized_p1``, or ``planned_p1`` when not reported). ``planned_p2`` gives the
-    planned intervention rate; where it is blank, ``planned_effect`` may give the risk
-    difference instead. The continuity correction is chosen per row
+    Group 1 is the control group: ``planned_p1`` / ``realized_p1`` are its event proportions.
+    Effects (``planned_effect``, ``sesoi``, ``mde``, the reported result) are in the row's
+    ``effect_measure``; one instance handles one measure (see :meth:`Design.variants`), and its
+    analysis scale is the measure's (log for the ratios). The realized design holds the planned
+    *measure* fixed on the realized control rate (``realized_p1``, else ``observed_events1`` /
+    ``realized_n1``, else ``planned_p1``): the risk difference for ``risk_difference``, the
+    relative effect for the ratios, so the intervention rate moves with the control rate.
+    ``planned_p2`` gives the planned intervention rate; where it is blank, ``planned_effect``
+    gives the effect instead. The continuity correction is chosen per row
     (``continuity_correction``) or by the run default.
     """
 
     name = "two_proportions"
     family = "proportions"
     title = "two independent proportions (z test, variance pooled under H0)"
-    effect_unit = "risk difference p2 - p1"
+    effect_unit = MEASURE_UNITS["risk_difference"]
     standardized_as = "h"
     stage_keys = ("n1", "n2", "p1")
     nuisance_keys = ("p1",)
-    extra_inputs = ("planned_p2", "continuity_correction")
+    extra_inputs = (
+        "planned_p2",
+        "realized_p2",
+        "continuity_correction",
+        "effect_measure",
+        "observed_events1",
+        "observed_events2",
+    )
+    measures = MEASURES
     # The variance of a risk difference depends on where it lies: detecting a rise from p1 is
     # not as hard as detecting a fall of the same size.
     symmetric = False
+
+    def __init__(self, measure: str = "risk_difference") -> None:
+        if measure not in MEASURES:
+            raise ValueError(f"unknown effect measure {measure!r}")
+        self.measure = measure
+        self.effect_unit = MEASURE_UNITS[measure]
+        self._variants: dict[str, TwoProportions] = {measure: self}
+
+    def with_measure(self, measure: str | None) -> TwoProportions:
+        measure = measure if measure in MEASURES else self.measures[0]
+        if measure not in self._variants:
+            variant = type(self)(measure)
+            variant._variants = self._variants
+            self._variants[measure] = variant
+        return self._variants[measure]
+
+    @property
+    def noun(self) -> str:
+        """What an effect of this variant is called in a sentence."""
+        return MEASURE_NOUNS[self.measure]
+
+    @property
+    def is_ratio(self) -> bool:
+        return self.measure in RATIO_MEASURES
+
+    def intervention_rate(self, p1: np.ndarray, effect: np.ndarray) -> np.ndarray:
+        """``p2`` from the control rate and an effect in this variant's measure."""
+        return p2_from(self.measure, p1, effect)
 
     # -- reading --------------------------------------------------------------------------------
 
     def scenario(self, rows: pd.DataFrame, stage: str) -> Scenario:
         sc = super().scenario(rows, stage)
         if stage == "realized":
-            sc["p1"] = np.where(np.isnan(sc["p1"]), _column(rows, "planned_p1"), sc["p1"])
+            with np.errstate(divide="ignore", invalid="ignore"):
+                counted = _column(rows, "observed_events1") / self.arm_units(rows, "1")
+            counted = np.where((counted >= 0) & (counted <= 1), counted, np.nan)
+            fallback = np.where(np.isnan(counted), _column(rows, "planned_p1"), counted)
+            sc["p1"] = np.where(np.isnan(sc["p1"]), fallback, sc["p1"])
         # Set per row or by the run default (audit_table fills it in); off when absent.
         cc = _column(rows, "continuity_correction")
         sc["continuity_correction"] = np.where(np.isnan(cc), 0.0, cc)
         return sc
 
+    def arm_units(self, rows: pd.DataFrame, arm: str) -> np.ndarray:
+        """Units analysed in an arm (``arm`` "1" or "2"), the denominators of its events."""
+        return _column(rows, f"realized_n{arm}")
+
     def sources(self, stage: str) -> dict[str, str]:
         out = super().sources(stage)
         if stage == "realized":
-            out["p1"] = "realized_p1 (or planned_p1)"
+            out["p1"] = "realized_p1 (or observed_events1 / realized_n1, or planned_p1)"
         return out
 
     def planned_effect(self, rows: pd.DataFrame) -> np.ndarray:
         p1 = _column(rows, "planned_p1")
         p2 = _column(rows, "planned_p2")
-        return np.where(np.isnan(p2), _column(rows, "planned_effect"), p2 - p1)
+        return np.where(np.isnan(p2), _column(rows, "planned_effect"), self._measure(p1, p2))
+
+    def _measure(self, p1: np.ndarray, p2: np.ndarray) -> np.ndarray:
+        if self.measure == "risk_difference":
+            return p2 - p1  # exactly today's arithmetic
+        return measure_of(self.measure, p1, p2)
 
     def effect_sources(self) -> str:
         return "planned_p2 (or planned_effect)"
+
+    def orient(self, value: np.ndarray, direction: np.ndarray) -> np.ndarray:
+        if not self.is_ratio:
+            return direction * np.abs(value)
+        return self.from_analysis(direction * np.abs(self.to_analysis(value)))
+
+    def to_analysis(self, effect: np.ndarray) -> np.ndarray:
+        return to_log(self.measure, effect)
+
+    def from_analysis(self, value: np.ndarray) -> np.ndarray:
+        return from_log(self.measure, value)
 
     def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         p1 = _column(rows, "planned_p1")
         p2 = _column(rows, "planned_p2")
         effect = _column(rows, "planned_effect")
         sesoi = _column(rows, "sesoi")
-        with np.errstate(invalid="ignore"):
-            implied = p1 + effect
-            return [
+        noun = self.noun
+        out = []
+        with np.errstate(invalid="ignore", divide="ignore"):
+            if self.is_ratio:
+                for column in ("planned_effect", "sesoi", "observed_effect"):
+                    out.append(
+                        (_column(rows, column) <= 0, column, f"{noun}s must be greater than 0")
+                    )
+                for column in ("observed_ci_low", "observed_ci_high"):
+                    out.append(
+                        (
+                            _column(rows, column) <= 0,
+                            column,
+                            f"the limits of a {noun}'s interval must be greater than 0 (give "
+                            "them on the ratio scale, not the log scale)",
+                        )
+                    )
+                # Values rounded for print (an odds ratio of 2.25 from 0.10 and 0.20) agree.
+                implied = self._measure(p1, p2)
+                differs = np.abs(np.log(effect) - np.log(implied)) > 0.005
+            else:
+                implied = p2 - p1
+                differs = np.abs(effect - implied) > 1e-9
+                out.append(
+                    (np.abs(sesoi) >= 1, "sesoi", "a risk difference must lie strictly within ±1")
+                )
+            reached = self.intervention_rate(p1, effect)
+            # A ratio at or below 0 has its own message above.
+            usable = effect > 0 if self.is_ratio else np.isfinite(effect)
+            out.append(
                 (
-                    ~np.isnan(p2) & (np.abs(effect - (p2 - p1)) > 1e-9),
+                    ~np.isnan(p2) & ~np.isnan(effect) & differs,
                     "planned_effect",
-                    "disagrees with planned_p2 - planned_p1 (the risk difference); give one or "
+                    f"disagrees with the {noun} of planned_p2 against planned_p1; give one or "
                     "make them agree",
-                ),
+                )
+            )
+            out.append(
                 (
-                    np.isnan(p2) & ((implied <= 0) | (implied >= 1)),
+                    np.isnan(p2) & ~np.isnan(p1) & usable & ~((reached > 0) & (reached < 1)),
                     "planned_effect",
-                    "planned_p1 + planned_effect must be a proportion strictly between 0 and 1",
-                ),
-                (np.abs(sesoi) >= 1, "sesoi", "a risk difference must lie strictly within ±1"),
-            ]
+                    f"with planned_p1 this {noun} gives an intervention proportion outside (0, 1)",
+                )
+            )
+        out.extend(self._count_checks(rows))
+        return out
+
+    def unit_words(self) -> str:
+        """The denominator of an arm's events, as notes name it."""
+        return "realized_n1"
+
+    def _count_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+        out = []
+        for k in ("1", "2"):
+            out.append(
+                (
+                    _column(rows, f"observed_events{k}") > self.arm_units(rows, k),
+                    f"observed_events{k}",
+                    f"cannot exceed the arm size ({self.unit_words().replace('1', k)})",
+                )
+            )
+        return out
 
     def fallback_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str]]:
         real = _column(rows, "realized_p1")
         plan = _column(rows, "planned_p1")
+        units = self.arm_units(rows, "1")
+        events = _column(rows, "observed_events1") / np.where(units > 0, units, np.nan)
         cc = _column(rows, "continuity_correction")
+        effect = self.planned_effect(rows)
+        held = {
+            "risk_difference": "the planned risk difference is held fixed on it (the "
+            "intervention rate moves by the same difference)",
+            "risk_ratio": "the planned risk ratio is held fixed on it (the relative effect: the "
+            "intervention rate moves in proportion)",
+            "odds_ratio": "the planned odds ratio is held fixed on it (the relative effect on the "
+            "odds scale)",
+        }[self.measure]
+        known = np.where(np.isnan(real), events, real)
+        with np.errstate(invalid="ignore"):
+            moved = ~np.isnan(effect) & ~np.isnan(plan) & (np.abs(known - plan) > 1e-12)
         return [
             (
-                np.isnan(real) & ~np.isnan(plan),
+                np.isnan(real) & np.isfinite(events),
+                f"realized_p1 not reported: the control rate of observed_events1 / "
+                f"{self.unit_words()} is used for the realized design",
+            ),
+            (
+                np.isnan(real) & np.isnan(events) & ~np.isnan(plan),
                 "realized_p1 not reported: the planned control rate is used for the realized "
                 "design",
             ),
+            (moved, f"the realized control rate differs from the planned one: {held}"),
             (cc > 0, "continuity-corrected z test (Fleiss, Levin & Paik)"),
         ]
+
+    # -- the reported result from counts ------------------------------------------------------
+
+    def counted_result(self, rows: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The reported result from events per arm (or the realized proportions) and the arm
+        sizes: ``(effect, se, source)``, effect in the measure, SE on the analysis scale,
+        ``source`` 1 for events, 2 for proportions, 0 where neither gives it."""
+        n1, n2 = self.arm_units(rows, "1"), self.arm_units(rows, "2")
+        e1, e2 = _column(rows, "observed_events1"), _column(rows, "observed_events2")
+        by_events = np.isfinite(e1 + e2 + n1 + n2)
+        by_rates = ~by_events & np.isfinite(
+            _column(rows, "realized_p1") + _column(rows, "realized_p2") + n1 + n2
+        )
+        e1 = np.where(by_events, e1, _column(rows, "realized_p1") * n1)
+        e2 = np.where(by_events, e2, _column(rows, "realized_p2") * n2)
+        res = counts_result(self.measure, e1, n1, e2, n2)
+        inflate = self.result_inflation(rows)
+        source = np.where(by_events, 1, np.where(by_rates, 2, 0))
+        ok = (source > 0) & np.isfinite(res.effect) & np.isfinite(res.se * inflate)
+        return (
+            np.where(ok, res.effect, np.nan),
+            np.where(ok, res.se * inflate, np.nan),
+            np.where(ok, source, 0),
+        )
+
+    def count_columns(self) -> str:
+        return "observed_events1/2 and realized_n1/2"
+
+    def rate_columns(self) -> str:
+        return "realized_p1/2 and realized_n1/2"
+
+    def partial_counts(self, rows: pd.DataFrame) -> np.ndarray:
+        """Rows that give part of a result from counts (some events, or an intervention rate)."""
+        return (
+            np.isfinite(_column(rows, "observed_events1"))
+            | np.isfinite(_column(rows, "observed_events2"))
+            | np.isfinite(_column(rows, "realized_p2"))
+        )
+
+    def result_inflation(self, rows: pd.DataFrame) -> np.ndarray:
+        """Factor on the SE of a result computed from counts (1: independent units)."""
+        return np.ones(len(rows))
+
+    def counted_note(self) -> str:
+        corr = "0.5 added to every cell where a cell is empty (Haldane)"
+        return {
+            "risk_difference": f"difference of the proportions, Wald SE; {corr}",
+            "risk_ratio": f"ratio of the proportions, SE of the log risk ratio; {corr}",
+            "odds_ratio": f"odds ratio, Woolf SE of the log odds ratio; {corr}",
+        }[self.measure]
 
     # -- maths ----------------------------------------------------------------------------------
 
@@ -260,20 +467,30 @@ class TwoProportions(Design):
         return (test.alpha, test.sides, sc["continuity_correction"], test.direction)
 
     def se(self, sc: Scenario, effect: np.ndarray | None = None) -> np.ndarray:
-        """SE of the estimated risk difference (unpooled, at ``p1`` and ``p1 + effect``)."""
-        p2 = sc["p1"] + effect
-        _, se1, _ = _standard_errors(sc["n1"], sc["n2"], sc["p1"], p2)
-        return np.where((p2 >= 0) & (p2 <= 1), se1, np.nan)
+        """SE of the estimate on the analysis scale (unpooled, at ``p1`` and the ``p2`` the
+        effect implies): of the risk difference, or of the log ratio."""
+        p2 = self.intervention_rate(sc["p1"], effect)
+        if self.measure == "risk_difference":
+            _, se1, _ = _standard_errors(sc["n1"], sc["n2"], sc["p1"], p2)
+            return np.where((p2 >= 0) & (p2 <= 1), se1, np.nan)
+        return wald_se(self.measure, sc["n1"], sc["n2"], sc["p1"], p2)
 
     def power(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
         return proportions_power(
-            sc["n1"], sc["n2"], sc["p1"], sc["p1"] + effect, *self._test_args(sc, test)
+            sc["n1"],
+            sc["n2"],
+            sc["p1"],
+            self.intervention_rate(sc["p1"], effect),
+            *self._test_args(sc, test),
         )
 
     def mde(self, sc: Scenario, test: TestSpec) -> np.ndarray:
-        """Risk difference detectable from the control rate ``p1``, in the planned direction.
+        """Effect detectable from the control rate ``p1``, in the planned direction, in the
+        variant's measure.
 
-        nan where no difference that keeps ``p2`` within [0, 1] reaches the target power.
+        The risk difference is solved for (power rises with it at a fixed ``p1``) and then
+        expressed in the measure. nan where no difference that keeps ``p2`` within [0, 1]
+        reaches the target power.
         """
         p1 = sc["p1"]
         room = np.where(test.direction > 0, 1.0 - p1, p1)
@@ -298,11 +515,14 @@ class TwoProportions(Design):
             _power_of_difference, test.power[ok], guess, lower=0.0, upper=room[ok], args=args
         )
         out[ok] = test.direction[ok] * magnitude
-        return out
+        if self.measure == "risk_difference":
+            return out
+        with np.errstate(invalid="ignore"):
+            return self._measure(p1, p1 + out)
 
     def standardize(self, sc: Scenario, effect: np.ndarray) -> np.ndarray:
-        """Cohen's h between ``p1`` and ``p1 + effect``."""
-        return cohens_h(sc["p1"], sc["p1"] + effect)
+        """Cohen's h between ``p1`` and the ``p2`` the effect implies (whatever the measure)."""
+        return cohens_h(sc["p1"], self.intervention_rate(sc["p1"], effect))
 
     def required_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
         """Smallest total size reaching the target power, allocation kept, groups rounded up.
@@ -313,17 +533,18 @@ class TwoProportions(Design):
         n = len(effect)
         out = np.full(n, np.nan)
         p1 = sc["p1"]
-        p2 = p1 + effect
+        p2 = self.intervention_rate(p1, effect)
         r = allocation_ratio(sc)
         cc = sc["continuity_correction"]
-        ok = (
-            np.isfinite(p2)
-            & (p2 >= 0)
-            & (p2 <= 1)
-            & (test.direction * effect > 0)
-            & (test.power > test.alpha)
-            & (test.power < 1)
-        )
+        with np.errstate(invalid="ignore"):
+            ok = (
+                np.isfinite(p2)
+                & (p2 >= 0)
+                & (p2 <= 1)
+                & (test.direction * (p2 - p1) > 0)
+                & (test.power > test.alpha)
+                & (test.power < 1)
+            )
         if not ok.any():
             return out
         guess = fleiss_n1(p1, p2, r, test.alpha, test.sides, test.power, cc)
@@ -349,22 +570,34 @@ class TwoProportions(Design):
         effect: np.ndarray,
         test: TestSpec,
     ) -> dict[str, NullReasons]:
+        noun = self.noun
         with np.errstate(invalid="ignore"):
-            off_real = ((real["p1"] + effect) < 0) | ((real["p1"] + effect) > 1)
+            off_real = np.isnan(self.intervention_rate(real["p1"], effect)) & ~np.isnan(
+                real["p1"] + effect
+            )
             sesoi = self.orient(_column(rows, "sesoi"), test.direction)
-            off_sesoi = ((real["p1"] + sesoi) < 0) | ((real["p1"] + sesoi) > 1)
-        outside = "the realized control rate plus the planned risk difference lies outside [0, 1]"
+            off_sesoi = np.isnan(self.intervention_rate(real["p1"], sesoi)) & ~np.isnan(
+                real["p1"] + sesoi
+            )
+        outside = (
+            f"the planned {noun} on the realized control rate gives an intervention rate "
+            "outside [0, 1]"
+        )
         effect_blank = (np.isnan(effect), self.effect_sources())
         no_mde = (
             test.power > test.alpha,
-            "no risk difference in the direction used (with no direction: on one of the two "
+            f"no {noun} in the direction used (with no direction: on one of the two "
             "sides) reaches the target power from this control rate",
         )
         return {
             "power_at_planned_effect": NullReasons(conditions=((off_real, outside),)),
             "power_at_sesoi": NullReasons(
                 conditions=(
-                    (off_sesoi, "the realized control rate plus the SESOI lies outside [0, 1]"),
+                    (
+                        off_sesoi,
+                        f"the SESOI ({noun}) on the realized control rate gives an intervention "
+                        "rate outside [0, 1]",
+                    ),
                 )
             ),
             "mde": NullReasons(conditions=(no_mde,)),

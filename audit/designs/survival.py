@@ -79,6 +79,9 @@ class Survival(Design):
         "events_ratio": ("planned_events", "realized_events"),
     }
 
+    is_ratio = True
+    noun = "hazard ratio"
+
     # -- reading --------------------------------------------------------------------------------
 
     def sources(self, stage: str) -> dict[str, str]:
