@@ -787,3 +787,38 @@ def test_the_study_view_and_respond_state_the_method():
         "dropout," in second
     )
     assert "11% larger" in second
+
+
+def test_random_rows_with_dropout_keep_their_invariants():
+    # Random rows of every design, a third with a dropout allowance: every null reproduction
+    # metric has a note; the allowance never lowers a size; the closest method is at least as
+    # close as the audit's own; plan_reproduced_by is set exactly where the closest is within
+    # the tolerance; the rule fires exactly where it is not.
+    from tests.test_designs_all import _explained, _random_rows
+
+    rng = np.random.default_rng(1818)
+    rows = _random_rows(rng, 300)
+    rows["planned_dropout"] = np.where(rng.uniform(size=300) < 0.33, rng.uniform(0, 0.4, 300), None)
+    result = audit.audit_table(rows)
+    m = result.metrics[result.valid]
+    assert len(m) > 200
+    notes = result.by_row(result.notes, "text")
+    for pos in np.flatnonzero(result.valid):
+        for metric in REPRODUCTION_METRICS:
+            if pd.isna(result.metrics[metric].iat[pos]):
+                design = result.table["design"].iat[pos]
+                assert design == "estimate" or _explained(metric, notes[pos]), (metric, pos)
+    known = m["n_required_plan"].notna()
+    assert (m.loc[known, "n_required_with_dropout"] >= m.loc[known, "n_required_plan"]).all()
+    closest = m["plan_discrepancy_closest"].abs()
+    compared = m["plan_discrepancy"].notna()
+    assert compared.sum() > 100
+    assert (closest[compared] <= m.loc[compared, "plan_discrepancy"].abs() + 1e-12).all()
+    within = closest <= 0.10
+    assert (m["plan_reproduced_by"].notna() == within).all()
+    flagged = set(
+        result.findings.loc[result.findings["rule"] == "sample-size-not-reproducible", "pos"]
+    )
+    positions = np.flatnonzero(result.valid)
+    assert flagged == {p for p, w, c in zip(positions, within, closest, strict=True)
+                       if not w and np.isfinite(c)}  # fmt: skip
