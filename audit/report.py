@@ -770,7 +770,8 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
         _section(console, "Metrics")
         metrics = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
         metrics.add_column("metric", no_wrap=True)
-        metrics.add_column("value", justify="right", no_wrap=True)
+        # Long texts (a method's name) wrap within the column rather than squeeze the meanings.
+        metrics.add_column("value", justify="right", max_width=24, overflow="fold")
         metrics.add_column("meaning")
         not_applicable = _not_applicable(result, pos)
         for name in result.metrics.columns:
