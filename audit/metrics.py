@@ -14,7 +14,7 @@ from typing import IO
 import numpy as np
 import pandas as pd
 
-from audit import parallel, retro
+from audit import parallel, plan_methods, retro
 from audit._format import format_number
 from audit.designs import Design, Scenario, TestSpec, design_groups
 from audit.designs._base import _directions
@@ -34,7 +34,20 @@ METRICS: dict[str, str] = {
     "plan_power": "power of the planned design at the planned effect",
     "n_required_plan": "units needed at the planned parameters for the target power "
     "(sum over groups, each rounded up)",
-    "plan_discrepancy": "planned size / required size - 1 (does the stated calculation reproduce?)",
+    "plan_discrepancy": "planned size / required size - 1 (does the stated calculation "
+    "reproduce?), the required size by the audit's own method and, with planned_dropout, "
+    "divided by 1 - dropout in each group",
+    "n_required_with_dropout": "n_required_plan with the plan's dropout allowance: each group "
+    "divided by 1 - planned_dropout and rounded up (the same as n_required_plan without one)",
+    "plan_reproduced_by": "the published method whose required size is closest to the planned "
+    "size (ties to the audit's own), if it is within the tolerance of rule "
+    "sample-size-not-reproducible; blank when no listed method reproduces the plan",
+    "plan_discrepancy_closest": "planned size / required size - 1 under the closest published "
+    "method (plan_closest_method), within the tolerance or not",
+    "plan_closest_method": "the published method whose required size is closest to the planned "
+    "size, within the tolerance or not",
+    "n_required_closest": "units the closest published method requires (with the dropout "
+    "allowance, as compared)",
     "power_at_planned_effect": "design-based power of the realized design at the planned effect",
     "power_at_sesoi": "design-based power of the realized design at the SESOI",
     "mde": "minimal detectable effect at the target power with the realized design "
@@ -99,7 +112,19 @@ METRICS: dict[str, str] = {
 }
 
 #: Metrics whose values are text (all others are numbers).
-TEXT_METRICS = frozenset({"ci_verdict", "direction_used"})
+TEXT_METRICS = frozenset(
+    {"ci_verdict", "direction_used", "plan_reproduced_by", "plan_closest_method"}
+)
+
+#: Metrics of the reproduction of the stated calculation (audit/plan_methods.py): null for the
+#: same reasons as plan_discrepancy.
+REPRODUCTION_METRICS = (
+    "n_required_with_dropout",
+    "plan_reproduced_by",
+    "plan_discrepancy_closest",
+    "plan_closest_method",
+    "n_required_closest",
+)
 
 
 #: Metrics about the reported result: they need one of observed_effect, observed_se, the CI or
@@ -220,10 +245,14 @@ def _explain_nulls(
     metric: str,
     value: np.ndarray,
     inputs: list[tuple[np.ndarray, str]],
-    conditions: list[tuple[np.ndarray, str]],
+    conditions: list[tuple[np.ndarray, str | np.ndarray]],
 ) -> None:
-    """Note, for each null value, the blank inputs or else the first condition that explains it."""
-    null = np.isnan(value)
+    """Note, for each null value, the blank inputs or else the first condition that explains it.
+
+    A condition's reason is one text, or a text per row (an object array aligned with
+    ``value``).
+    """
+    null = pd.isna(value) if value.dtype == object else np.isnan(value)
     if not null.any():
         return
     labels = _missing_labels([(m & null, lab) for m, lab in inputs], len(value))
@@ -236,19 +265,30 @@ def _explain_nulls(
     rest = null & ~has_missing
     for mask, reason in conditions:
         hit = rest & mask
-        notes.add(positions[hit], f"{metric}: {reason}")
+        if isinstance(reason, np.ndarray):
+            notes.add(positions[hit], metric + ": " + reason[hit])
+        else:
+            notes.add(positions[hit], f"{metric}: {reason}")
         rest &= ~hit
     notes.add(positions[rest], f"{metric}: could not be computed from the values given")
 
 
-def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
+def compute_metrics(
+    table: pd.DataFrame, valid: np.ndarray, *, plan_tolerance: float | None = None
+) -> MetricTable:
     """Compute every metric for the valid rows of a validated table.
 
     Parameters
     ----------
     table : the ``table`` of :class:`audit.schema.Validated`.
     valid : which rows passed validation; other rows get null metrics and no notes.
+    plan_tolerance : the largest |planned / required - 1| with which a published method
+        reproduces the plan (``plan_reproduced_by``): the ``max_discrepancy`` of rule
+        sample-size-not-reproducible in force, which the pipeline passes from the resolved
+        rules (:func:`audit.plan_methods.tolerance_in_force`); default: the bundled rule's.
     """
+    if plan_tolerance is None:
+        plan_tolerance = plan_methods.bundled_tolerance()
     n = len(table)
     # Plain arrays filled design by design, one frame at the end (pandas' per-column item
     # assignment costs more than the arithmetic of some designs).
@@ -260,7 +300,7 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
     groups = design_groups(table, np.flatnonzero(valid))
     notes = _Notes()
     for (_, positions), (computed, group_notes) in zip(
-        groups, _group_metrics(table, groups), strict=True
+        groups, _group_metrics(table, groups, plan_tolerance), strict=True
     ):
         notes.pos.extend(group_notes.pos)
         notes.text.extend(group_notes.text)
@@ -285,7 +325,7 @@ PARALLEL_METRICS_MIN = 20_000
 
 
 def _group_metrics(
-    table: pd.DataFrame, groups: list[tuple[Design, np.ndarray]]
+    table: pd.DataFrame, groups: list[tuple[Design, np.ndarray]], plan_tolerance: float
 ) -> list[tuple[dict[str, np.ndarray], _Notes]]:
     """Metrics and notes of each group of rows (rows of one design), in the order given.
 
@@ -298,7 +338,8 @@ def _group_metrics(
         out = []
         for design, positions in parts:
             notes = _Notes()
-            out.append((_design_metrics(design, table.iloc[positions], positions, notes), notes))
+            rows = table.iloc[positions]
+            out.append((_design_metrics(design, rows, positions, notes, plan_tolerance), notes))
         return out
 
     if sum(len(p) for _, p in groups) < PARALLEL_METRICS_MIN or not parallel.can_fork():
@@ -328,7 +369,11 @@ def _group_metrics(
 
 
 def _design_metrics(
-    design: Design, rows: pd.DataFrame, positions: np.ndarray, notes: _Notes
+    design: Design,
+    rows: pd.DataFrame,
+    positions: np.ndarray,
+    notes: _Notes,
+    plan_tolerance: float,
 ) -> dict[str, np.ndarray]:
     test = test_settings(rows, design)
     plan = design.scenario(rows, "planned")
@@ -340,9 +385,24 @@ def _design_metrics(
     with np.errstate(divide="ignore", invalid="ignore"):
         out: dict[str, np.ndarray] = {}
         out["plan_power"] = design.power(plan, effect, test)
-        out["n_required_plan"] = design.required_size(plan, effect, test)
         planned_total = design.total_size(plan)
-        out["plan_discrepancy"] = planned_total / out["n_required_plan"] - 1.0
+        reproduction = None
+        if design.size_keys:
+            # Every published method of the design, the audit's own among them (its size is
+            # n_required_plan), against the planned size with the stated dropout allowance.
+            reproduction = plan_methods.reproduce(
+                design,
+                plan,
+                effect,
+                test,
+                planned_total,
+                _col(rows, "planned_dropout"),
+                plan_tolerance,
+            )
+            out.update(reproduction.metrics)
+        else:
+            out["n_required_plan"] = design.required_size(plan, effect, test)
+            out["plan_discrepancy"] = planned_total / out["n_required_plan"] - 1.0
         out["power_at_planned_effect"] = design.power(real, effect, test)
         out["power_at_sesoi"] = design.power(real, sesoi, test)
         out["mde"], out["mde_std"] = directed_mde(design, real, test)
@@ -383,12 +443,32 @@ def _design_metrics(
     if foreign:
         notes.add(positions, f"not applicable to {design.name}: {', '.join(foreign)}")
 
-    _note_nulls(design, rows, positions, notes, out, plan, real, effect, sesoi, test)
+    more = {}
+    if reproduction is not None:
+        more = _note_reproduction(notes, positions, rows, reproduction, planned_total)
+    _note_nulls(design, rows, positions, notes, out, plan, real, effect, sesoi, test, more)
     # Texts: one for all masked rows, or one per masked row.
     for mask, text in [*design.fallback_notes(rows), *design.ignored_notes(rows)]:
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
     out.update(_retro_metrics(design, rows, positions, notes, out, test, plan, real, effect, sesoi))
     return out
+
+
+def _note_reproduction(
+    notes: _Notes,
+    positions: np.ndarray,
+    rows: pd.DataFrame,
+    reproduction: plan_methods.Reproduction,
+    planned_total: np.ndarray,
+) -> dict[str, list[tuple[np.ndarray, np.ndarray]]]:
+    """Notes on reproducing the stated calculation; the reason a blank plan_reproduced_by
+    has where the methods give sizes but none is within the tolerance."""
+    texts, unmatched, reason = plan_methods.reproduction_notes(
+        reproduction, planned_total, _col(rows, "planned_dropout")
+    )
+    for mask, text in texts:
+        notes.add(positions[mask], text)
+    return {"plan_reproduced_by": [(unmatched, reason)]}
 
 
 def _difference(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -457,8 +537,12 @@ def _note_nulls(
     effect: np.ndarray,
     sesoi: np.ndarray,
     test: TestSpec,
+    more: dict[str, list[tuple[np.ndarray, str | np.ndarray]]] | None = None,
 ) -> None:
-    """Attach a reason to every null metric (skipping those declared not applicable)."""
+    """Attach a reason to every null metric (skipping those declared not applicable).
+
+    ``more`` adds conditions (tried first) to the reasons of some metrics.
+    """
     plan_src = design.sources("planned")
     real_src = design.sources("realized")
 
@@ -531,6 +615,13 @@ def _note_nulls(
             )
         else:
             specs[metric] = (list(extra.inputs), list(extra.conditions))
+    # The reproduction metrics need what plan_discrepancy (or n_required_plan) needs.
+    for metric in REPRODUCTION_METRICS:
+        base = "n_required_plan" if metric == "n_required_with_dropout" else "plan_discrepancy"
+        specs.setdefault(metric, specs[base])
+    for metric, conditions in (more or {}).items():
+        inputs, rest = specs[metric]
+        specs[metric] = (inputs, [*conditions, *rest])
     for metric, value in out.items():
         # direction_used is always known (where applicable).
         if metric in design.not_applicable or metric == "direction_used":

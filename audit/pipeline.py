@@ -26,6 +26,7 @@ from audit import parallel
 from audit.caveats import caveats
 from audit.errors import ConfigError
 from audit.metrics import METRICS, compute_metrics
+from audit.plan_methods import tolerance_in_force
 from audit.portfolio import EXCESS_DEFAULTS, ExcessSettings, portfolio_summary
 from audit.read import RawTable, raw_from_frame, read_table
 from audit.rules import Evaluation, Rule, RuleSet, evaluate_rules, resolve_rules
@@ -255,7 +256,9 @@ def audit_validated(
     for a large portfolio a forked child starts encoding part of it now.
     """
     ruleset = resolve_rules(rules)
-    table, metrics, notes, status = _metrics_of(validated, continuity_correction, progress)
+    table, metrics, notes, status = _metrics_of(
+        validated, continuity_correction, progress, tolerance_in_force(ruleset)
+    )
     valid = validated.valid
     _announce(progress, "applying rules")
     prepared = None
@@ -300,9 +303,17 @@ def _hand_over(
 
 
 def _metrics_of(
-    validated: Validated, continuity_correction: bool, progress: Progress | None
+    validated: Validated,
+    continuity_correction: bool,
+    progress: Progress | None,
+    plan_tolerance: float,
 ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame, np.ndarray]:
-    """The audited table (run defaults applied), its metrics, all notes by row, and status."""
+    """The audited table (run defaults applied), its metrics, all notes by row, and status.
+
+    ``plan_tolerance`` is the tolerance of rule sample-size-not-reproducible in force (a
+    user's override counts): the metric plan_reproduced_by says which published method
+    reproduces the plan within it, so that the metric and the rule agree.
+    """
     table = validated.table.copy()
     # The run default applies where a row leaves continuity_correction blank.
     table["continuity_correction"] = table["continuity_correction"].fillna(
@@ -310,7 +321,7 @@ def _metrics_of(
     )
     valid = validated.valid
     _announce(progress, "computing metrics")
-    computed = compute_metrics(table, valid)
+    computed = compute_metrics(table, valid, plan_tolerance=plan_tolerance)
     metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
     notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
     notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
@@ -351,6 +362,9 @@ def _summarised(
         "target_power_default": 0.8,
         "alpha_default": 0.05,
         "continuity_correction_default": bool(continuity_correction),
+        # The tolerance within which a published method reproduces the plan
+        # (plan_reproduced_by): max_discrepancy of rule sample-size-not-reproducible in force.
+        "plan_reproduction_tolerance": tolerance_in_force(ruleset),
         "source": validated.raw.source,
         "sheet": validated.raw.sheet,
         "excess_significance": excess.as_dict(),
@@ -411,7 +425,9 @@ def _audit_share(
     """Validate, compute and apply the rules to the rows ``start`` to ``stop`` of ``raw``."""
     _announce(progress, "checking rows")
     validated = validate(_rows_of(raw, start, stop), WholeTable(ids, raw.rows, start))
-    table, metrics, notes, status = _metrics_of(validated, continuity_correction, progress)
+    table, metrics, notes, status = _metrics_of(
+        validated, continuity_correction, progress, tolerance_in_force(ruleset)
+    )
     _announce(progress, "applying rules")
     evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
     return _Share(

@@ -676,6 +676,34 @@ _RESULT_COLUMNS = (
 )
 
 
+def plan_reproduction(result: AuditResult, pos: int) -> str:
+    """Which published method reproduces the study's planned size, in a sentence ('' where
+    the calculation could not be redone): laid out from plan_reproduced_by and its kin."""
+    m = result.metrics.iloc[pos]
+    closest = m.get("plan_closest_method")
+    required = m.get("n_required_closest", np.nan)
+    discrepancy = m.get("plan_discrepancy_closest", np.nan)
+    if not isinstance(closest, str) or not math.isfinite(required):
+        return ""
+    planned = format_number(round(required * (1.0 + discrepancy)))
+    dropout = result.table["planned_dropout"].iat[pos] if "planned_dropout" in result.table else 0
+    allowance = (
+        f" with the stated {dropout:.0%} dropout allowance"
+        if isinstance(dropout, float) and dropout > 0
+        else ""
+    )
+    needs = f"{format_number(required)} units for the target power{allowance}"
+    by = m.get("plan_reproduced_by")
+    if isinstance(by, str):
+        return f"reproduced by {by}: {needs}, planned {planned} ({discrepancy:+.1%})"
+    tolerance = result.settings.get("plan_reproduction_tolerance")
+    within = f" within {tolerance:.0%}" if isinstance(tolerance, float) else ""
+    return (
+        f"not reproduced{within} by any listed method; the closest, {closest}, requires "
+        f"{needs}, planned {planned} ({discrepancy:+.1%})"
+    )
+
+
 def _cell(value: object) -> str:
     if value is None:
         return ""
@@ -757,11 +785,15 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
         reported = [f"{c} {_cell(row[c])}" for c in _RESULT_COLUMNS if _cell(row.get(c)) != ""]
         if reported:
             console.print(" reported result: " + ", ".join(reported))
+        reproduction = plan_reproduction(result, pos)
+        if reproduction:
+            console.print(Padding(Text("sample size: " + reproduction), (0, 1, 0, 1)))
 
         _section(console, "Metrics")
         metrics = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
         metrics.add_column("metric", no_wrap=True)
-        metrics.add_column("value", justify="right", no_wrap=True)
+        # Long texts (a method's name) wrap within the column rather than squeeze the meanings.
+        metrics.add_column("value", justify="right", max_width=24, overflow="fold")
         metrics.add_column("meaning")
         not_applicable = _not_applicable(result, pos)
         for name in result.metrics.columns:

@@ -168,6 +168,56 @@ def _power_at(result: AuditResult, pos: int, effect: float) -> float:
         return float(design.power(real, np.array([effect]), test_settings(rows, design))[0])
 
 
+def _reproduction_sentences(m, row, units: str) -> list[str]:
+    """What redoing the stated calculation gave: the published method that reproduces it
+    (plan_reproduced_by), or the closest one and how far the planned size is from it."""
+    closest = m.get("plan_closest_method")
+    required = m.get("n_required_closest", np.nan)
+    discrepancy = m.get("plan_discrepancy_closest", np.nan)
+    if not isinstance(closest, str) or not math.isfinite(required):
+        return []
+    dropout = row.get("planned_dropout")
+    needs = f"{int(required)} {units}"
+    if dropout is not None and math.isfinite(float(dropout)) and float(dropout) > 0:
+        plain = units.removeprefix("analysable ")
+        needs = (
+            f"{int(required)} {plain} to be recruited, allowing for the stated "
+            f"{float(dropout):.0%} dropout,"
+        )
+    by = m.get("plan_reproduced_by")
+    if isinstance(by, str):
+        return [
+            f"Recomputed from its stated inputs with {_method_phrase(by)}, that calculation "
+            f"requires {needs.rstrip(',')}, in line with the planned size."
+        ]
+    way = "larger" if discrepancy > 0 else "smaller"
+    return [
+        f"Recomputed from its stated inputs, that calculation does not reproduce with any of "
+        f"the standard methods: the closest, {_method_phrase(closest)}, requires {needs} and "
+        f"the planned size is {abs(discrepancy):.0%} {way} than that."
+    ]
+
+
+#: Method names (plan_reproduced_by) as they read inside a sentence.
+_METHOD_PHRASES = {
+    "Fleiss": "Fleiss' method",
+    "Fleiss continuity correction": "Fleiss' method with the continuity correction",
+    "Schoenfeld": "Schoenfeld's method",
+    "Freedman": "Freedman's method",
+    "Fisher z": "Fisher's z",
+    "exact r": "the exact distribution of r",
+    "arcsine (Cohen's h)": "the arcsine method (Cohen's h)",
+}
+
+
+def _method_phrase(name: str) -> str:
+    """A method's name inside a sentence: 'the exact t', 'Freedman's method', 'the normal
+    approximation with Guenther correction'."""
+    if name in _METHOD_PHRASES:
+        return _METHOD_PHRASES[name]
+    return "the " + name.replace("ANCOVA, ", "ANCOVA ").replace(", ", " with ")
+
+
 def respond_text(result: AuditResult, study_id: str, effect: float | None = None) -> str:
     """The Markdown draft for ``study_id`` (the first audited row with that id).
 
@@ -223,23 +273,7 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
             f"power at a "
             f"{_alpha_phrase(alpha, sides, comparisons)}."
         )
-        discrepancy = m.get("plan_discrepancy", np.nan)
-        needed_events = m.get("events_required_plan", np.nan)
-        events = f" ({int(needed_events)} events)" if math.isfinite(needed_events) else ""
-        required = m.get("n_required_plan", np.nan)
-        if math.isfinite(discrepancy) and math.isfinite(required):
-            if abs(discrepancy) <= 0.10:
-                plan_bits.append(
-                    f"Recomputed from its stated inputs, that calculation requires "
-                    f"{int(required)} {units}{events}, in line with the planned size."
-                )
-            else:
-                plan_bits.append(
-                    f"Recomputed from its stated inputs, that calculation requires "
-                    f"{int(required)} {units}{events}; the planned size is "
-                    f"{abs(discrepancy):.0%} {'larger' if discrepancy > 0 else 'smaller'} than "
-                    f"that."
-                )
+        plan_bits.extend(_reproduction_sentences(m, row, units))
     ratio = m.get("n_ratio", np.nan)
     if math.isfinite(ratio):
         plan_bits.append(f"The analysed sample was {ratio:.0%} of the planned size.")

@@ -587,15 +587,16 @@ class Rule:
     def param_values(self) -> dict[str, float]:
         return {name: p.value for name, p in self.parameters.items()}
 
-    def compared(self) -> list[tuple[str, float | str]]:
-        """``(column, threshold)`` of each comparison in the condition (threshold as written:
-        a number, a parameter or a column), for messages that quote both."""
+    def compared(self) -> list[tuple[str, float | str, bool]]:
+        """``(column, threshold, magnitude)`` of each comparison in the condition (threshold as
+        written: a number, a parameter or a column; magnitude: absolute values compared), for
+        messages that quote both."""
         out = []
         stack = [self.when]
         while stack:
             c = stack.pop()
-            if isinstance(c, Compare) and not c.magnitude:
-                out.append((c.column, c.operand))
+            if isinstance(c, Compare):
+                out.append((c.column, c.operand, c.magnitude))
             elif isinstance(c, AllOf):
                 stack.extend(c.parts)
             elif isinstance(c, Not):
@@ -1032,13 +1033,20 @@ def evaluate_rules(
                 name: (np.full(len(pos), params[name]) if name in params else data.raw(name)[pos])
                 for name in rule.message.names()
             }
-            against = {
-                column: data.numeric(ref)[pos]
-                if isinstance(ref, str) and ref not in params
-                else np.full(len(pos), float(params.get(ref, ref)))
-                for column, ref in rule.compared()
-                if column in values and values[column].dtype.kind == "f"
-            }
+            against = {}
+            for column, ref, magnitude in rule.compared():
+                if column not in values or values[column].dtype.kind != "f":
+                    continue
+                threshold = (
+                    data.numeric(ref)[pos]
+                    if isinstance(ref, str) and ref not in params
+                    else np.full(len(pos), float(params.get(ref, ref)))
+                )
+                if magnitude:
+                    # A signed value against a threshold on its magnitude: the threshold on
+                    # the value's side ("-10.3%", not "-10%", beyond 10%).
+                    threshold = np.abs(threshold) * np.where(values[column] < 0, -1.0, 1.0)
+                against[column] = threshold
             messages = rule.message.render(values, len(pos), against)
         except Exception as exc:  # a broken rule must not stop the audit
             problems.append(

@@ -106,6 +106,14 @@ COLUMNS: tuple[Column, ...] = (
     _count("planned_n2", "sizes", "Planned analysable units in group 2."),
     _count("realized_n1", "sizes", "Units actually analysed in group 1."),
     _count("realized_n2", "sizes", "Units actually analysed in group 2."),
+    _p(
+        "planned_dropout",
+        "sizes",
+        "Attrition allowance the plan states (share lost, e.g. 0.1): each group's required "
+        "size is divided by 1 - dropout before it is compared with the planned size, which is "
+        "then the number to recruit. Blank: none.",
+        low_open=False,
+    ),
     Column(
         "planned_sd",
         "number",

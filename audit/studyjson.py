@@ -26,7 +26,15 @@ if TYPE_CHECKING:
 __all__ = ["INTEGER_METRICS", "json_default", "study_chunks"]
 
 #: Metrics written as JSON integers (sizes).
-INTEGER_METRICS = frozenset({"n_required_plan", "n_required_realized", "events_required_plan"})
+INTEGER_METRICS = frozenset(
+    {
+        "n_required_plan",
+        "n_required_realized",
+        "events_required_plan",
+        "n_required_with_dropout",
+        "n_required_closest",
+    }
+)
 
 _NULL = b"null"
 _EMPTY_LIST = b"[]"

@@ -311,6 +311,9 @@ class Design:
         """Every input column this design reads (the rest it ignores, with a note)."""
         staged = {f"{stage}_{k}" for k in self.stage_keys for stage in ("planned", "realized")}
         own = staged | set(self.shared_keys) | set(self.effect_columns) | set(self.extra_inputs)
+        if self.size_keys:
+            # A design with sample sizes reproduces the plan's calculation, allowance included.
+            own.add("planned_dropout")
         common = COMMON_INPUTS if self.has_direction else COMMON_INPUTS - {"direction"}
         return common | own
 
@@ -590,11 +593,23 @@ class TDesign(Design):
         """Smallest total size reaching the target power, each group rounded up.
 
         The first group's size is solved on the continuous scale (df continuous), keeping the
-        allocation ratio of ``sc``; each group is then rounded up. Because power rises with the
-        size at a fixed allocation, the rounded sizes reach the target.
+        allocation ratio of ``sc`` (:meth:`first_group_size`); each group is then rounded up.
+        Because power rises with the size at a fixed allocation, the rounded sizes reach the
+        target.
         """
+        n1 = self.first_group_size(sc, effect, test)
+        out = np.full(len(effect), np.nan)
+        done = np.isfinite(n1)
+        if done.any():
+            # Guard against solver noise at exact integers (64.0000000001 -> 64, not 65).
+            sub = {k: v[done] for k, v in sc.items()}
+            out[done] = self.rounded_total(sub, n1[done] * (1.0 - 1e-10))
+        return out
+
+    def first_group_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
+        """The continuous first-group size at which the exact power reaches the target, the
+        allocation of ``sc`` kept (nan where no size does); :meth:`required_size` rounds it."""
         n = len(effect)
-        out = np.full(n, np.nan)
         unit = self.with_n1(sc, np.ones(n))
         with np.errstate(divide="ignore", invalid="ignore"):
             # SE at n1 = 1 scales as 1 / sqrt(n1): the normal approximation sizes the start.
@@ -618,9 +633,9 @@ class TDesign(Design):
             & (test.direction * effect > 0)
             & np.isfinite(lower)
         )
-        if not ok.any():
-            return out
         n1 = np.full(n, np.nan)
+        if not ok.any():
+            return n1
         # Sizes with df >= TABLE_MIN_DF: the SE scales as 1 / sqrt(n1), so the target is reached
         # where |effect| sqrt(n1) / se1 equals the noncentrality the test needs at df(n1). That
         # noncentrality changes slowly with df, so the fixed point
@@ -634,12 +649,7 @@ class TDesign(Design):
         ok = ok & ~np.isfinite(n1)
         if ok.any():
             n1[ok] = self._size_by_search(sc, effect, test, ok, guess, lower)
-        done = np.isfinite(n1)
-        if done.any():
-            # Guard against solver noise at exact integers (64.0000000001 -> 64, not 65).
-            sub = {k: v[done] for k, v in sc.items()}
-            out[done] = self.rounded_total(sub, n1[done] * (1.0 - 1e-10))
-        return out
+        return n1
 
     def _size_by_fixed_point(
         self,

@@ -280,6 +280,14 @@ class ClusterTwoProportions(TwoProportions):
 
     def required_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
         """Clusters (both arms) reaching the target power, allocation kept, arms rounded up."""
+        n1 = self.first_group_size(sc, effect, test) * (1.0 - 1e-10)
+        r = allocation_ratio(sc)
+        with np.errstate(invalid="ignore"):
+            return np.ceil(n1) + np.ceil(n1 * r * (1.0 - 1e-12))
+
+    def first_group_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
+        """The continuous number of control clusters at which the power reaches the target, the
+        allocation kept (nan where none does); :meth:`required_size` rounds it."""
         n = len(effect)
         out = np.full(n, np.nan)
         p1 = sc["p1"]
@@ -303,13 +311,11 @@ class ClusterTwoProportions(TwoProportions):
         # At least one df and one cluster per arm.
         lower = np.maximum(3.0 / (1.0 + r), np.maximum(1.0, 1.0 / r))
         args = (p1, p2, r, m, de, test.alpha, test.sides, test.direction)
-        n1 = smallest_size(
+        out[ok] = smallest_size(
             _power_of_clusters,
             test.power[ok],
             np.where(np.isfinite(guess[ok]), np.maximum(guess[ok], lower[ok]), lower[ok]),
             lower=lower[ok],
             args=tuple(a[ok] for a in args),
         )
-        n1 = n1 * (1.0 - 1e-10)
-        out[ok] = np.ceil(n1) + np.ceil(n1 * r[ok] * (1.0 - 1e-12))
         return out

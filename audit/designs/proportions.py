@@ -530,6 +530,17 @@ class TwoProportions(Design):
         Solved exactly on :func:`proportions_power` (both tails), starting from the closed
         form of Fleiss, Levin & Paik; the two agree wherever the far tail is negligible.
         """
+        n1 = self.first_group_size(sc, effect, test)
+        out = np.full(len(effect), np.nan)
+        ok = np.isfinite(n1)
+        # Guard against solver noise at exact integers (198.9999999999 -> 199, not 200).
+        n1 = n1[ok] * (1.0 - 1e-10)
+        out[ok] = np.ceil(n1) + np.ceil(n1 * allocation_ratio(sc)[ok] * (1.0 - 1e-12))
+        return out
+
+    def first_group_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
+        """The continuous control-group size at which the exact power reaches the target, the
+        allocation of ``sc`` kept (nan where no size does); :meth:`required_size` rounds it."""
         n = len(effect)
         out = np.full(n, np.nan)
         p1 = sc["p1"]
@@ -557,9 +568,7 @@ class TwoProportions(Design):
             lower=lower[ok],
             args=tuple(a[ok] for a in args),
         )
-        # Guard against solver noise at exact integers (198.9999999999 -> 199, not 200).
-        n1 = n1 * (1.0 - 1e-10)
-        out[ok] = np.ceil(n1) + np.ceil(n1 * r[ok] * (1.0 - 1e-12))
+        out[ok] = n1
         return out
 
     def null_explanations(

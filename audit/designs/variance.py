@@ -117,6 +117,16 @@ class _FDesign(Design):
 
     def required_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
         """Smallest total N reaching the target power (continuous, then :meth:`round_total`)."""
+        total = self.continuous_total(sc, effect, test)
+        out = np.full(len(effect), np.nan)
+        ok = np.isfinite(total)
+        sub = {k: v[ok] for k, v in sc.items()}
+        out[ok] = self.round_total(sub, total[ok] * (1.0 - 1e-10))
+        return out
+
+    def continuous_total(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
+        """The continuous total N at which the F test reaches the target power (nan where none
+        does); :meth:`required_size` rounds it."""
         n = len(effect)
         out = np.full(n, np.nan)
         f2 = self.f2(effect)
@@ -146,9 +156,7 @@ class _FDesign(Design):
         total = smallest_size(
             _power_of_total, poweru, guess, lower=lower, args=(f2u, dfnu, spentu, alphau)
         )
-        total = total * (1.0 - 1e-10)
-        sub = {k: v[ok] for k, v in sc.items()}
-        out[ok] = self.round_total(sub, total[inverse])
+        out[ok] = total[inverse]
         return out
 
 
