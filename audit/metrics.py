@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from audit import parallel, retro
+from audit import reported as reported_forms
 from audit._format import format_number
 from audit.designs import DESIGNS, Design, Scenario, TestSpec
 from audit.designs._base import _directions
@@ -36,6 +37,8 @@ METRICS: dict[str, str] = {
     "plan_discrepancy": "planned size / required size - 1 (does the stated calculation reproduce?)",
     "power_at_planned_effect": "design-based power of the realized design at the planned effect",
     "power_at_sesoi": "design-based power of the realized design at the SESOI",
+    "power_at_pooled_effect": "design-based power of the realized design at the pooled estimate "
+    "of the row's outcome_family (fixed or random effects, as excess_pooling says)",
     "mde": "minimal detectable effect at the target power with the realized design "
     "(effect units, signed in the direction used; a magnitude when either, taken on the harder "
     "side where the two sides differ)",
@@ -95,10 +98,33 @@ METRICS: dict[str, str] = {
     "observed_power": "power at the observed effect: a transform of the p-value shown only to "
     "make that plain (Hoenig & Heisey 2001); never evidence about the study",
     "observed_power_from_p": "the same, computed from the reported observed_p alone",
+    # -- the reported p checked against the other reported numbers (audit/reported.py) --
+    "reported_p_recomputed": "the p-value the other reported numbers give (the test statistic, "
+    "else the estimate with its SE or interval, else the arm means, else d with the sizes), at "
+    "face value; null where no p was reported",
+    "reported_p_discrepancy": "how far the reported p is from the recomputed one once the "
+    "rounding of printed numbers is allowed for: 1 where they agree, else the factor between "
+    "the nearest ends of the two ranges",
+    "reported_p_as_given": "the reported p as read: p = x, p < x, p > x or n.s.",
+    "reported_p_recomputed_from": "which reported numbers reported_p_recomputed comes from",
 }
 
+#: Metrics computed over the portfolio after the per-design metrics (audit/portfolio.py): one
+#: pooled estimate per outcome family.
+PORTFOLIO_METRICS = ("power_at_pooled_effect",)
+
+#: Prefix of the metric columns of power at each reference effect (``reference_power_0.5``);
+#: the JSON gathers them into one object ``reference_power`` (audit/studyjson.py).
+REFERENCE_PREFIX = "reference_power_"
+
+#: Default reference effects, in each design's standardized unit (Cohen's small, medium and
+#: large d; the same numbers in every unit unless the run says otherwise).
+REFERENCE_EFFECTS = (0.2, 0.5, 0.8)
+
 #: Metrics whose values are text (all others are numbers).
-TEXT_METRICS = frozenset({"ci_verdict", "direction_used"})
+TEXT_METRICS = frozenset(
+    {"ci_verdict", "direction_used", "reported_p_as_given", "reported_p_recomputed_from"}
+)
 
 
 #: Metrics about the reported result: they need one of observed_effect, observed_se, the CI or
@@ -117,6 +143,10 @@ RESULT_METRICS = (
     "ci_halfwidth_ratio_realized",
     "observed_power",
     "observed_power_from_p",
+    "reported_p_recomputed",
+    "reported_p_discrepancy",
+    "reported_p_as_given",
+    "reported_p_recomputed_from",
 )
 
 #: All metrics computed by :func:`_retro_metrics` (their null notes are made there).
@@ -240,13 +270,30 @@ def _explain_nulls(
     notes.add(positions[rest], f"{metric}: could not be computed from the values given")
 
 
-def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
+def reference_column(effect: float) -> str:
+    """The metric column of power at a reference effect: ``reference_power_0.5``."""
+    return f"{REFERENCE_PREFIX}{effect:g}"
+
+
+def reference_columns(columns: list[str] | pd.Index) -> list[tuple[str, str]]:
+    """``(key, column)`` of each reference-power column of a metric table, in order (the key
+    is the effect as the JSON object ``reference_power`` names it: ``"0.5"``)."""
+    return [(c[len(REFERENCE_PREFIX) :], c) for c in columns if c.startswith(REFERENCE_PREFIX)]
+
+
+def compute_metrics(
+    table: pd.DataFrame,
+    valid: np.ndarray,
+    *,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
+) -> MetricTable:
     """Compute every metric for the valid rows of a validated table.
 
     Parameters
     ----------
     table : the ``table`` of :class:`audit.schema.Validated`.
     valid : which rows passed validation; other rows get null metrics and no notes.
+    reference_effects : standardized effects (each design's unit) for ``reference_power_<x>``.
     """
     n = len(table)
     # Plain arrays filled design by design, one frame at the end (pandas' per-column item
@@ -255,6 +302,8 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
         name: np.full(n, None, dtype=object) if name in TEXT_METRICS else np.full(n, np.nan)
         for name in METRICS
     }
+    for effect in reference_effects:
+        columns[reference_column(effect)] = np.full(n, np.nan)
     design_col = table["design"].to_numpy(dtype=object)
     groups = [
         (design, np.flatnonzero(valid & (design_col == name))) for name, design in DESIGNS.items()
@@ -262,7 +311,7 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
     groups = [(design, positions) for design, positions in groups if len(positions)]
     notes = _Notes()
     for (_, positions), (computed, group_notes) in zip(
-        groups, _group_metrics(table, groups), strict=True
+        groups, _group_metrics(table, groups, tuple(reference_effects)), strict=True
     ):
         notes.pos.extend(group_notes.pos)
         notes.text.extend(group_notes.text)
@@ -287,7 +336,9 @@ PARALLEL_METRICS_MIN = 20_000
 
 
 def _group_metrics(
-    table: pd.DataFrame, groups: list[tuple[Design, np.ndarray]]
+    table: pd.DataFrame,
+    groups: list[tuple[Design, np.ndarray]],
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> list[tuple[dict[str, np.ndarray], _Notes]]:
     """Metrics and notes of each group of rows (rows of one design), in the order given.
 
@@ -300,7 +351,8 @@ def _group_metrics(
         out = []
         for design, positions in parts:
             notes = _Notes()
-            out.append((_design_metrics(design, table.iloc[positions], positions, notes), notes))
+            rows = table.iloc[positions]
+            out.append((_design_metrics(design, rows, positions, notes, reference_effects), notes))
         return out
 
     if sum(len(p) for _, p in groups) < PARALLEL_METRICS_MIN or not parallel.can_fork():
@@ -330,7 +382,11 @@ def _group_metrics(
 
 
 def _design_metrics(
-    design: Design, rows: pd.DataFrame, positions: np.ndarray, notes: _Notes
+    design: Design,
+    rows: pd.DataFrame,
+    positions: np.ndarray,
+    notes: _Notes,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> dict[str, np.ndarray]:
     test = test_settings(rows, design)
     plan = design.scenario(rows, "planned")
@@ -381,15 +437,75 @@ def _design_metrics(
         notes.add(positions, f"{metric}: not applicable, {reason}")
     # Metrics defined only for other designs (events for survival, ICC for cluster trials): one
     # note lists them rather than one note each.
-    foreign = [m for m in METRICS if m not in out and m not in RETRO_METRICS]
+    foreign = [
+        m for m in METRICS if m not in out and m not in RETRO_METRICS and m not in PORTFOLIO_METRICS
+    ]
     if foreign:
         notes.add(positions, f"not applicable to {design.name}: {', '.join(foreign)}")
 
     _note_nulls(design, rows, positions, notes, out, plan, real, effect, sesoi, test)
+    out.update(_reference_power(design, rows, positions, notes, real, test, reference_effects))
+    if "power_at_pooled_effect" not in design.not_applicable:
+        # Rows in a family are given their power when the family is pooled (audit/portfolio.py).
+        no_family = pd.isna(rows["outcome_family"]).to_numpy(dtype=bool)
+        notes.add(
+            positions[no_family], "power_at_pooled_effect: not computed, missing outcome_family"
+        )
     # Texts: one for all masked rows, or one per masked row.
     for mask, text in [*design.fallback_notes(rows), *design.ignored_notes(rows)]:
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
     out.update(_retro_metrics(design, rows, positions, notes, out, test, plan, real, effect, sesoi))
+    return out
+
+
+def _reference_power(
+    design: Design,
+    rows: pd.DataFrame,
+    positions: np.ndarray,
+    notes: _Notes,
+    real: Scenario,
+    test: TestSpec,
+    effects: tuple[float, ...],
+) -> dict[str, np.ndarray]:
+    """Design-based power of the realized design at each reference effect, given in the
+    design's standardized unit (d, d_z, h, r, f, f2 or log HR) and pointed in the direction
+    used; a row with no direction on a design whose two sides differ gets the harder side."""
+    out: dict[str, np.ndarray] = {}
+    n = len(rows)
+    sc = real
+    for x in effects:
+        magnitude = np.full(n, float(x))
+        with np.errstate(all="ignore"):
+            sc, eff = design.at_standardized(real, magnitude, test.direction)
+            power = design.power(sc, eff, test)
+            if not design.symmetric and test.either.any():
+                flipped = test.with_direction(np.where(test.either, -test.direction, 1.0))
+                sc2, eff2 = design.at_standardized(real, magnitude, flipped.direction)
+                other = design.power(sc2, eff2, flipped)
+                power = np.where(test.either & (other < power), other, power)
+        out[reference_column(x)] = power
+    if not effects:
+        return out
+    if design.standardized_as is None:
+        notes.add(
+            positions,
+            f"reference_power: not applicable, {design.name} has no standardized unit",
+        )
+        return out
+    null = np.zeros(n, dtype=bool)
+    for values in out.values():
+        null |= np.isnan(values)
+    src = design.sources("realized")
+    # The inputs power at a standardized effect needs (a t design's SD is not among them).
+    inputs = [(np.isnan(sc[k]), src[k]) for k in sc if k in src]
+    unreachable = (
+        np.ones(n, dtype=bool),
+        "the reference effect leaves the range the design allows (a proportion beyond [0, 1] "
+        "from the realized control rate)",
+    )
+    _explain_nulls(
+        notes, positions, "reference_power", np.where(null, np.nan, 0.0), inputs, [unreachable]
+    )
     return out
 
 
@@ -609,14 +725,49 @@ def _retro_metrics(
     reported = {c: _col(rows, c) for c in (*RESULT_COLUMNS, "observed_ci_level", "reported_power")}
     # A p printed as a bound ("< 0.001", "n.s.") is a reported result too.
     has_result = ~np.isnan(_col(rows, "observed_p_relation"))
-    for c in RESULT_COLUMNS:
-        has_result |= ~np.isnan(reported[c])
+    for c in (*RESULT_COLUMNS, *reported_forms.RESULT_FORMS):
+        has_result |= ~np.isnan(_col(rows, c))
     res_out: dict[str, np.ndarray] = {}
 
+    to_a = design.to_analysis
+    with np.errstate(all="ignore"):
+        effect_a = to_a(effect)
+        sesoi_a = to_a(sesoi)
+        obs = {key: to_a(reported[f"observed_{key}"]) for key in ("effect", "ci_low", "ci_high")}
+    df_real = _finite_df(design.analysis_df(real))
+    df_plan = _finite_df(design.analysis_df(plan))
+    # A test statistic or arm means, read as the effect, SE and p they imply (audit/reported.py).
+    derived = reported_forms.derive_results(
+        design,
+        rows,
+        real,
+        test,
+        df_real,
+        {
+            "effect": obs["effect"],
+            "ci_low": obs["ci_low"],
+            "ci_high": obs["ci_high"],
+            "observed_se": reported["observed_se"],
+            "observed_p": reported["observed_p"],
+        },
+    )
+    check = reported_forms.check_reported_p(
+        design, rows, real, test, df_real, derived.statistic_info
+    )
+    res_out["reported_p_recomputed"] = check.recomputed
+    res_out["reported_p_discrepancy"] = check.discrepancy
+    res_out["reported_p_as_given"] = check.as_given
+    res_out["reported_p_recomputed_from"] = check.source
+    for mask, text in [*derived.notes, *check.notes]:
+        notes.add(positions[np.asarray(mask, dtype=bool)], _selected(mask, text))
+    _note_p_check(notes, positions, check, has_result | (not se_based), rows)
+
     if not se_based:
-        p = reported["observed_p"]
+        p = derived.p
         with np.errstate(invalid="ignore"):
-            sig = np.where(np.isnan(p), np.nan, (p < alpha).astype(float))
+            # The reported statistic decides over a reported p (the p is derived from it).
+            p_test = np.where(np.isfinite(derived.p_test), derived.p_test, p)
+            sig = np.where(np.isnan(p_test), np.nan, (p_test < alpha).astype(float))
         sig = np.where(np.isnan(sig), _significance_by_bound(rows, alpha), sig)
         res_out["result_p"] = p
         res_out["result_significant"] = sig
@@ -628,18 +779,12 @@ def _retro_metrics(
             f"not applicable to {design.name} (its test has no single signed effect and "
             f"standard error): {', '.join(na)}",
         )
-        no_p = np.isnan(p)
-        for m in ("result_p", "result_significant"):
-            notes.add(positions[no_p], f"{m}: not computed, missing observed_p")
+        for m, values in (("result_p", p), ("result_significant", sig)):
+            notes.add(
+                positions[np.isnan(values)],
+                f"{m}: not computed, missing observed_p (or observed_statistic)",
+            )
         return res_out
-
-    to_a = design.to_analysis
-    with np.errstate(all="ignore"):
-        effect_a = to_a(effect)
-        sesoi_a = to_a(sesoi)
-        obs = {key: to_a(reported[f"observed_{key}"]) for key in ("effect", "ci_low", "ci_high")}
-    df_real = _finite_df(design.analysis_df(real))
-    df_plan = _finite_df(design.analysis_df(plan))
 
     # Design analysis: Type S / M at the planned effect and at the SESOI, realized SE.
     with np.errstate(all="ignore"):
@@ -657,19 +802,31 @@ def _retro_metrics(
     res_out["ci_halfwidth_realized"] = q_real * out["se_realized"]
 
     # The reported result, completed.
+    df_result = _finite_df(derived.df)
     res = retro.complete_results(
-        obs["effect"],
-        reported["observed_se"],
+        np.where(np.isnan(obs["effect"]), derived.effect, obs["effect"]),
+        np.where(np.isnan(reported["observed_se"]), derived.se, reported["observed_se"]),
         obs["ci_low"],
         obs["ci_high"],
-        reported["observed_p"],
-        df=df_real,
+        derived.p,
+        df=df_result,
         alpha=alpha,
         sides=sides,
         direction=d,
         ci_level=_reported_level(reported["observed_ci_level"]),
     )
-    sig = retro.significant(res.ci_low, res.ci_high, res.p, alpha=alpha, sides=sides, direction=d)
+    by_interval = retro.significant(
+        res.ci_low, res.ci_high, res.p, alpha=alpha, sides=sides, direction=d
+    )
+    # A reported interval or SE decides; otherwise the study's own test does, through its most
+    # direct p (the statistic's, the arm means' t test, the reported p, the t test of d), which
+    # an interval derived from that p may not match exactly (a standardized difference's SE).
+    interval_given = np.isfinite(reported["observed_se"]) | (
+        np.isfinite(obs["ci_low"]) & np.isfinite(obs["ci_high"])
+    )
+    with np.errstate(invalid="ignore"):
+        by_test = (derived.p_test < alpha).astype(float)
+    sig = np.where(interval_given | np.isnan(derived.p_test), by_interval, by_test)
     sig = np.where(np.isnan(sig), _significance_by_bound(rows, alpha), sig)
     verdict = retro.ci_verdicts(
         res.ci_low, res.ci_high, sig, effect_a, sesoi_a, direction=d, either=test.either
@@ -691,13 +848,15 @@ def _retro_metrics(
         res_out["ci_halfwidth_observed"] = halfwidth
         res_out["ci_halfwidth_ratio_plan"] = halfwidth / res_out["ci_halfwidth_plan"]
         res_out["ci_halfwidth_ratio_realized"] = halfwidth / res_out["ci_halfwidth_realized"]
-        statistic = d * res.effect / res.se
+        statistic = np.where(
+            np.isfinite(derived.statistic), d * derived.statistic, d * res.effect / res.se
+        )
         statistic = np.where(
             np.isfinite(statistic),
             statistic,
-            retro.statistic_from_p(reported["observed_p"], df_real, sides),
+            retro.statistic_from_p(res.p, df_result, sides),
         )
-    res_out["observed_power"] = retro.observed_power(statistic, df_real, alpha, sides)
+    res_out["observed_power"] = retro.observed_power(statistic, df_result, alpha, sides)
     res_out["observed_power_from_p"] = retro.observed_power_from_p(
         reported["observed_p"], df_real, alpha, sides
     )
@@ -708,7 +867,7 @@ def _retro_metrics(
     _note_reported_power(notes, positions, reported["reported_power"], res_out)
 
     _note_retro(
-        _RetroRows(design, rows, positions, plan, real, effect, test, effect_a, sesoi_a, df_real),
+        _RetroRows(design, rows, positions, plan, real, effect, test, effect_a, sesoi_a, df_result),
         notes,
         res_out,
         res,
@@ -717,6 +876,36 @@ def _retro_metrics(
         sig,
     )
     return res_out
+
+
+def _selected(mask: np.ndarray, text: object) -> object:
+    """A note's text for the rows of ``mask``: one text, or the masked part of one per row."""
+    if isinstance(text, np.ndarray) and text.shape == np.shape(mask):
+        return text[np.asarray(mask, dtype=bool)]
+    return text
+
+
+def _note_p_check(
+    notes: _Notes,
+    positions: np.ndarray,
+    check: reported_forms.PCheck,
+    has_result: np.ndarray,
+    rows: pd.DataFrame,
+) -> None:
+    """Why ``reported_p_recomputed`` (and the other reported_p metrics) are null on a row that
+    reports a result."""
+    given = np.isfinite(_col(rows, "observed_p")) | np.isfinite(_col(rows, "observed_p_relation"))
+    notes.add(
+        positions[has_result & ~given],
+        "not computed (no p-value reported to check): reported_p_recomputed, "
+        "reported_p_discrepancy, reported_p_as_given, reported_p_recomputed_from",
+    )
+    notes.add(
+        positions[has_result & given & np.isnan(check.discrepancy)],
+        "not computed (no other reported form of the result to recompute the reported p from; "
+        "a test statistic, the estimate with its SE or interval, or arm means and SDs would "
+        "do): reported_p_recomputed, reported_p_discrepancy, reported_p_recomputed_from",
+    )
 
 
 #: Level of a reported interval whose level is not given: what papers report.
@@ -882,21 +1071,23 @@ def _note_retro(
     listed = [m for m in RESULT_METRICS if m not in skip]
     notes.add(
         positions[none],
-        "no result reported (observed_effect, observed_se, observed_ci_low/high, observed_p): "
-        "not computed: " + ", ".join(listed),
+        "no result reported (observed_effect, observed_se, observed_ci_low/high, observed_p, "
+        "observed_statistic, observed_mean1/2): not computed: " + ", ".join(listed),
     )
     some = has_result
     need_ci = "needs the effect with its SE, both CI limits, or the effect with observed_p"
     result_reasons = {
-        "result_effect": "needs observed_effect or both CI limits",
-        "result_se": "needs observed_se, both CI limits, or the effect with observed_p",
+        "result_effect": "needs observed_effect, both CI limits, the arm means or a signed test "
+        "statistic the realized design can scale",
+        "result_se": "needs observed_se, both CI limits, the arm SDs, or the effect with "
+        "observed_p or a test statistic",
         "result_ci_level": need_ci,
         "result_ci_low": need_ci,
         "result_ci_high": need_ci,
-        "result_p": "needs observed_p, or the effect with its SE or CI",
-        "result_significant": "needs a confidence interval or observed_p",
+        "result_p": "needs observed_p, a test statistic, or the effect with its SE or CI",
+        "result_significant": "needs a confidence interval, observed_p or a test statistic",
         "ci_halfwidth_observed": need_ci,
-        "observed_power": "needs the effect with its SE or CI, or observed_p",
+        "observed_power": "needs the effect with its SE or CI, observed_p or a test statistic",
         "observed_power_from_p": "observed_p not reported",
     }
     for metric, reason in result_reasons.items():
