@@ -127,7 +127,8 @@ def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) ->
         "--excess-pooling",
         choices=("fixed", "random"),
         default="fixed",
-        help="fixed-effect (default) or random-effects pooling for --excess-basis pooled",
+        help="fixed-effect (default) or random-effects pooling of each outcome_family (the "
+        "pooled effect, the families in the report, --excess-basis pooled)",
     )
     group.add_argument(
         "--excess-min-studies",

@@ -472,18 +472,30 @@ def _reference_power(
     used; a row with no direction on a design whose two sides differ gets the harder side."""
     out: dict[str, np.ndarray] = {}
     n = len(rows)
-    sc = real
+    # Portfolios repeat designs (the same sizes and test): each distinct one is computed once,
+    # distinct as the standardized effect sees it (a t design's SD does not matter).
+    with np.errstate(all="ignore"):
+        seen, _ = design.at_standardized(real, np.ones(n), test.direction)
+    first, codes = _distinct(
+        *(seen[k] for k in sorted(seen)), test.alpha, test.sides, test.direction, test.either
+    )
+    few = {k: v[first] for k, v in real.items()}
+    few_test = test.subset(first)
+    sc = few
     for x in effects:
-        magnitude = np.full(n, float(x))
+        magnitude = np.full(len(first), float(x))
         with np.errstate(all="ignore"):
-            sc, eff = design.at_standardized(real, magnitude, test.direction)
-            power = design.power(sc, eff, test)
-            if not design.symmetric and test.either.any():
-                flipped = test.with_direction(np.where(test.either, -test.direction, 1.0))
-                sc2, eff2 = design.at_standardized(real, magnitude, flipped.direction)
+            sc, eff = design.at_standardized(few, magnitude, few_test.direction)
+            power = design.power(sc, eff, few_test)
+            if not design.symmetric and few_test.either.any():
+                flipped = few_test.with_direction(
+                    np.where(few_test.either, -few_test.direction, 1.0)
+                )
+                sc2, eff2 = design.at_standardized(few, magnitude, flipped.direction)
                 other = design.power(sc2, eff2, flipped)
-                power = np.where(test.either & (other < power), other, power)
-        out[reference_column(x)] = power
+                power = np.where(few_test.either & (other < power), other, power)
+        out[reference_column(x)] = power[codes]
+    sc = {k: v[codes] for k, v in sc.items()}
     if not effects:
         return out
     if design.standardized_as is None:
@@ -507,6 +519,21 @@ def _reference_power(
         notes, positions, "reference_power", np.where(null, np.nan, 0.0), inputs, [unreachable]
     )
     return out
+
+
+def _distinct(*arrays: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The first position of each distinct combination of the arrays' values, and each
+    position's combination (its index into those first positions)."""
+    columns = [np.asarray(a, dtype=float).reshape(-1) for a in arrays]
+    n = len(columns[0]) if columns else 0
+    if n < 64:
+        return np.arange(n), np.arange(n)
+    frame = pd.DataFrame(dict(enumerate(columns)))
+    codes = frame.groupby(list(frame.columns), sort=False, dropna=False).ngroup().to_numpy()
+    codes = codes.astype(np.intp)
+    first = np.empty(codes.max() + 1, dtype=np.intp)
+    first[codes[::-1]] = np.arange(n - 1, -1, -1)
+    return first, codes
 
 
 def _difference(a: np.ndarray, b: np.ndarray) -> np.ndarray:

@@ -695,7 +695,9 @@ def audit_table(
     excess_method : {"exact", "chi2"}
         Exact Poisson-binomial p-value, or the chi-square form of Ioannidis & Trikalinos (2007).
     excess_pooling : {"fixed", "random"}
-        Pooled estimate for ``excess_basis="pooled"``: fixed-effect or random-effects.
+        How each ``outcome_family`` is pooled (fixed-effect, or random-effects with the
+        Paule-Mandel tau²): for ``power_at_pooled_effect``, the portfolio's ``families`` and
+        ``excess_basis="pooled"``.
     excess_min_studies : int
         Fewest studies with a result and a power for the test to run (default 5).
     reference_effects : sequence of float, or text such as ``"0.2,0.5,0.8"``

@@ -22,13 +22,14 @@ class ExcessSettings:
     Attributes
     ----------
     basis : ``"planned"`` — each study's design-based power at its planned effect (realized
-        design); ``"pooled"`` — each study's power, with its own standard error, at the pooled
-        estimate of its ``outcome_family``.
+        design); ``"pooled"`` — each study's design-based power at the pooled estimate of its
+        ``outcome_family`` (``power_at_pooled_effect``).
     method : ``"exact"`` (Poisson-binomial; binomial when all powers are equal) or ``"chi2"``
         (the chi-square statistic of Ioannidis & Trikalinos 2007).
-    pooling : for the pooled basis, ``"fixed"`` (inverse-variance) or ``"random"``
-        (random-effects, Paule-Mandel between-study variance), both from statsmodels'
-        ``combine_effects``.
+    pooling : how each family is pooled (for ``power_at_pooled_effect``, the ``families``
+        block and the pooled basis): ``"fixed"`` (inverse-variance) or ``"random"``
+        (random-effects, Paule-Mandel between-study variance); see
+        :func:`inverse_variance_pool`.
     min_studies : the test is skipped, with a note, when fewer studies have both a result and a
         power at the basis. Default 5: the fewest at which a portfolio of studies with 50 % power
         that are all significant gives an exact p-value below .05 (0.5^5 = 0.031).

@@ -913,14 +913,25 @@ def check_reported_p(
             e_lo, e_hi = to_a(e_raw - e_h), to_a(e_raw + e_h)
             e_a = to_a(e_raw)
 
-        def put(mask: np.ndarray, s_face, s_low, s_high, df, label: str) -> None:
+        def put(mask: np.ndarray, s_face, s_low, s_high, df, label: str, df_range) -> None:
+            """The p at face value (on ``df``), and its range over a range of the statistic
+            and one of the df (``df_range``: lowest, highest)."""
+            df_low, df_high = df_range
             oriented = direction * s_face
             o_low = np.where(direction > 0, s_low, -s_high)
             o_high = np.where(direction > 0, s_high, -s_low)
             pf, _ = _p_range_linear(oriented, oriented, df, df, sides)
-            pl, ph = _p_range_linear(o_low, o_high, df, df, sides)
+            pl, ph = _p_range_linear(o_low, o_high, df_low, df_high, sides)
             face[mask], low[mask], high[mask] = pf[mask], pl[mask], ph[mask]
             source[mask] = P_SOURCES[label]
+
+        # An estimate with its SE or interval may have been tested with the design's t or as a
+        # z (large-sample, Wald): any df from the design's to infinity. A t test of means or of
+        # d may have been Welch's: any df from its smallest to the pooled test's.
+        normal = np.full(n, np.inf)
+        welch = df_real
+        if "n2" in real:
+            welch = np.minimum(np.maximum(np.minimum(real["n1"], real["n2"]) - 1.0, 1.0), df_real)
 
         # The estimate with its SE.
         use = todo & np.isfinite(e_a) & np.isfinite(se_raw) & (se_raw > 0)
@@ -928,7 +939,7 @@ def check_reported_p(
             s_h = half_unit(se_raw)
             with np.errstate(all="ignore"):
                 s_low, s_high = _ratio_range(e_lo, e_hi, se_raw - s_h, se_raw + s_h)
-                put(use, e_a / se_raw, s_low, s_high, df_read, "se")
+                put(use, e_a / se_raw, s_low, s_high, df_read, "se", (df_read, normal))
             todo &= ~use
 
         # The interval (with the estimate where given).
@@ -954,7 +965,7 @@ def check_reported_p(
                 eff_hi = np.where(est, e_hi, mid_hi)
                 s_low, s_high = _ratio_range(eff_lo, eff_hi, se_min, se_max)
                 use &= np.isfinite(se_face) & (se_face > 0)
-                put(use, eff / se_face, s_low, s_high, df_read, "ci")
+                put(use, eff / se_face, s_low, s_high, df_read, "ci", (df_read, normal))
             todo &= ~use
 
         # Arm means and SDs.
@@ -980,7 +991,7 @@ def check_reported_p(
                 )
                 # A paired design's SE comes from realized_sd, whose rounding is ignored here
                 # (its change of the range is of the order of the means' rounding).
-                put(use, t_face, t_low, t_high, df_m, "means")
+                put(use, t_face, t_low, t_high, df_m, "means", (np.minimum(welch, df_m), df_m))
             todo &= ~use
 
         # A standardized difference with the sizes.
@@ -991,7 +1002,15 @@ def check_reported_p(
         if use.any():
             df_d = design.analysis_df(real)
             with np.errstate(all="ignore"):
-                put(use, e_a / null_se, e_lo / null_se, e_hi / null_se, df_d, "d")
+                put(
+                    use,
+                    e_a / null_se,
+                    e_lo / null_se,
+                    e_hi / null_se,
+                    df_d,
+                    "d",
+                    (np.minimum(welch, df_d), df_d),
+                )
             todo &= ~use
 
     # The reported p as a range.

@@ -378,3 +378,55 @@ def test_a_statistic_type_without_a_statistic_is_noted():
     )  # fmt: skip
     assert result.status[0] == "audited"
     assert any("given without observed_statistic: not used" in n for n in _notes(result, 0))
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_every_null_metric_has_a_note_with_reported_statistics(seed):
+    # The random rows of test_designs_all with a reported statistic, arm means or neither (a
+    # kind each design reads, plausible values): no warning escapes, every row is reported, and
+    # each null metric of an audited row is explained.
+    from test_designs_all import _explained, _random_rows
+
+    rng = np.random.default_rng(seed)
+    df = _random_rows(rng, 300)
+    k = len(df)
+    designs = df["design"].to_numpy()
+    kinds = np.array([sorted(audit.DESIGNS[d].statistic_types)[rng.integers(0, 100) % len(
+        audit.DESIGNS[d].statistic_types)] for d in designs], dtype=object)  # fmt: skip
+    value = rng.normal(1.5, 1.5, k)
+    value = np.where(np.isin(kinds, ["f", "chi2"]), value**2, value)
+    value = np.where(kinds == "r", np.tanh(value / 4), value)
+    df1 = np.where(np.isin(kinds, ["f", "chi2"]), 1.0, rng.integers(5, 300, k).astype(float))
+    df1 = np.where(np.isin(designs, ["k_means", "regression"]) & (kinds == "f"), 2.0, df1)
+    use = rng.uniform(size=k) < 0.6
+    df["observed_statistic"] = np.where(use, value.round(2), np.nan)
+    df["statistic_type"] = np.where(use, kinds, None)
+    df["statistic_df1"] = np.where(use & (kinds != "z"), df1, np.nan)
+    df["statistic_df2"] = np.where(use & (kinds == "f"), rng.integers(5, 300, k), np.nan)
+    means = ~use & np.isin(designs, ["two_means", "cluster_two_means", "paired_means"])
+    means &= rng.uniform(size=k) < 0.7
+    df["observed_mean1"] = np.where(means, rng.normal(50, 5, k).round(1), np.nan)
+    df["observed_mean2"] = np.where(means, rng.normal(52, 5, k).round(1), np.nan)
+    two = means & (designs != "paired_means")
+    df["observed_sd1"] = np.where(two, rng.uniform(3, 9, k).round(1), np.nan)
+    df["observed_sd2"] = np.where(two, rng.uniform(3, 9, k).round(1), np.nan)
+    df["observed_p"] = np.where(
+        rng.uniform(size=k) < 0.5, rng.uniform(0.001, 0.9, k).round(3), np.nan
+    )
+    df["outcome_family"] = rng.choice(["a", "b", None], k)
+    result = audit.audit_table(df.astype(object))
+    assert len(result.table) == k
+    audited = np.flatnonzero(result.valid)
+    assert len(audited) > 100
+    notes = result.by_row(result.notes, "text")
+    for i in audited:
+        row = result.metrics.iloc[i]
+        for metric in audit.METRICS:
+            if pd.isna(row[metric]):
+                assert _explained(metric, notes[i]), (
+                    result.table["design"].iat[i],
+                    metric,
+                    notes[i],
+                )
+        if row.filter(like="reference_power_").isna().any():
+            assert _explained("reference_power", notes[i]), notes[i]
