@@ -399,3 +399,27 @@ def test_family_figures_pass_through_the_power_at_the_pooled_effect(tmp_path):
     names = {f.name for f in files}
     assert "family_memory.png" in names and "portfolio_power.png" in names
     assert (tmp_path / "family_memory.png").stat().st_size > 5000
+
+
+def test_reference_power_for_proportions_is_at_cohens_h_on_the_harder_side():
+    # Cohen's h = 2 asin(sqrt p2) - 2 asin(sqrt p1) (Cohen 1988, ch. 6): p2 = sin^2(asin(sqrt
+    # p1) + h / 2). With no direction the side of lower power counts (as for the SESOI). Power
+    # from statsmodels power_proportions_2indep (pooled variance under H0, both tails).
+    from statsmodels.stats.proportion import power_proportions_2indep
+
+    result = _audit(
+        [{"design": "two_proportions", "realized_n1": 150, "realized_n2": 150,
+          "realized_p1": 0.2, "observed_p": 0.4},
+         {"design": "two_proportions", "realized_n1": 150, "realized_n2": 150,
+          "realized_p1": 0.2, "direction": "decrease", "observed_p": 0.4}]
+    )  # fmt: skip
+    powers = {}
+    for sign in (1, -1):
+        p2 = np.sin(np.arcsin(np.sqrt(0.2)) + sign * 0.25) ** 2
+        powers[sign] = power_proportions_2indep(
+            p2 - 0.2, 0.2, 150, ratio=1.0, alpha=0.05, alternative="two-sided",
+            return_results=False,
+        )  # fmt: skip
+    m = result.metrics
+    assert m["reference_power_0.5"].iat[0] == pytest.approx(min(powers.values()), rel=1e-9)
+    assert m["reference_power_0.5"].iat[1] == pytest.approx(powers[-1], rel=1e-9)
