@@ -623,6 +623,20 @@ def _render_families(view: Overview, console: Console, references: str) -> None:
     if not view.families:
         return
     _section(console, f"Outcome families ({len(view.families):,})")
+    shown = view.families[:MAX_LISTED]
+    if console.width < NARROW:
+        for f in shown:
+            pooled = (
+                f"pooled {f.pooled} ({f.scale}) · power at it {f.median_power}"
+                if f.pooled != "-"
+                else "not pooled"
+            )
+            line = Text.assemble(
+                (f.name, "audit.header"),
+                f" · {_plural(f.studies, 'study', 'studies')} · {pooled} · at {references} "
+                f"{f.reference}",
+            )
+            console.print(Padding(line, (0, 1, 0, 3)))
     table = Table(box=None, padding=(0, 1), pad_edge=False, header_style="audit.label")
     table.add_column("family", min_width=10, ratio=3)
     table.add_column("studies", justify="right", no_wrap=True)
@@ -630,10 +644,10 @@ def _render_families(view: Overview, console: Console, references: str) -> None:
     table.add_column("scale", min_width=10, ratio=3)
     table.add_column("at pooled", justify="right", no_wrap=True)
     table.add_column(f"at {references}", justify="right", no_wrap=True)
-    shown = view.families[:MAX_LISTED]
     for f in shown:
         table.add_row(f.name, f"{f.studies:,}", f.pooled, f.scale, f.median_power, f.reference)
-    console.print(Padding(table, (0, 0, 0, 3)))
+    if console.width >= NARROW:
+        console.print(Padding(table, (0, 0, 0, 3)))
     if len(view.families) > len(shown):
         console.print(
             f"[audit.muted]   {len(view.families) - len(shown):,} more families are not listed; "

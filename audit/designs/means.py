@@ -20,7 +20,7 @@ import pandas as pd
 
 from audit.designs._base import Scenario, TDesign, _column, allocation_ratio
 
-__all__ = ["OneMean", "PairedMeans", "TwoMeans"]
+__all__ = ["OneMean", "PairedMeans", "TwoMeans", "standardized_rows"]
 
 
 #: Columns that hold values in outcome units (or SDs of them) on a mean design's row.
@@ -49,6 +49,10 @@ def _standardized_rows(rows: pd.DataFrame) -> np.ndarray:
     if "effect_scale" in rows.columns:
         declared = (rows["effect_scale"] == "d").to_numpy(dtype=bool, na_value=False)
     return declared | _read_as_d(rows, declared)
+
+
+#: Public name: which rows of a mean design have standardized effects (d, d_z).
+standardized_rows = _standardized_rows
 
 
 def _read_as_d(rows: pd.DataFrame, declared: np.ndarray) -> np.ndarray:
