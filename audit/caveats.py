@@ -64,6 +64,28 @@ CAVEATS: dict[str, tuple[str, str]] = {
         "nothing about which study is affected, it assumes the studies are independent, and "
         "with few studies it has little power.",
     ),
+    "pooled_power": (
+        "Power at a pooled or a conventional effect.",
+        "power_at_pooled_effect is each study's design-based power at the pooled estimate of its "
+        "outcome_family, reference_power its power at conventional standardized effects (the "
+        "same numbers in every design's unit: d, d_z, h, r, f, f2, log hazard ratio, which do "
+        "not describe the same size of effect across units; choose them for the field with "
+        "--reference-effects). A pooled estimate inherits the selection of the studies it "
+        "pools: where significant results were likelier to be published or reported, it is "
+        "inflated, and the powers at it are optimistic. A family whose studies are mostly far "
+        "below 80 % power at its own pooled effect could not have answered its question "
+        "study by study.",
+    ),
+    "reported_forms": (
+        "Results derived from what papers report.",
+        "Where a study gives a test statistic, arm means and SDs, or an estimate with a p-value "
+        "instead of an estimate with its standard error, the audit derives the result (its notes "
+        "say from what): t, z, F and chi-square on 1 df and r are read as the test of the "
+        "study's design (the pooled-variance t, the pooled z test for proportions, Schoenfeld's "
+        "variance for a log hazard ratio, Fisher's z for r). A reported p-value is checked "
+        "against the other reported numbers with every printed number taken as rounded "
+        "(reported_p_discrepancy); a mismatch means a number is wrong somewhere, not which.",
+    ),
     "thresholds": (
         "Thresholds are choices.",
         "Each rule's thresholds are documented parameters (study-audit rules ID); change them "
@@ -96,6 +118,9 @@ def caveats(metrics: pd.DataFrame, portfolio: dict[str, Any]) -> list[dict[str, 
         "type_sm": present("type_s") or present("exaggeration"),
         "precision": present("ci_halfwidth_observed"),
         "excess_significance": portfolio.get("excess_significance") is not None,
+        "pooled_power": present("power_at_pooled_effect")
+        or any(c.startswith("reference_power_") and present(c) for c in metrics.columns),
+        "reported_forms": present("reported_p_recomputed"),
     }
     return [
         {"topic": topic, "title": title, "text": text}

@@ -127,7 +127,8 @@ def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) ->
         "--excess-pooling",
         choices=("fixed", "random"),
         default="fixed",
-        help="fixed-effect (default) or random-effects pooling for --excess-basis pooled",
+        help="fixed-effect (default) or random-effects pooling of each outcome_family (the "
+        "pooled effect, the families in the report, --excess-basis pooled)",
     )
     group.add_argument(
         "--excess-min-studies",
@@ -136,6 +137,27 @@ def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) ->
         metavar="N",
         help="fewest studies with a result for the excess-significance test (default 5)",
     )
+    group.add_argument(
+        "--reference-effects",
+        type=_reference_effects,
+        default=(0.2, 0.5, 0.8),
+        metavar="X,Y,...",
+        help="standardized effects (each design's unit: d, d_z, h, r, f, f2, log HR) at which "
+        "every study's power is given (default 0.2,0.5,0.8)",
+    )
+
+
+def _reference_effects(text: str) -> tuple[float, ...]:
+    """``--reference-effects 0.2,0.5,0.8``: positive numbers, comma-separated."""
+    try:
+        values = tuple(float(v) for v in text.split(",") if v.strip())
+    except ValueError:
+        values = ()
+    if not values or not all(0 < v < float("inf") for v in values):
+        raise argparse.ArgumentTypeError(
+            f"expected positive numbers separated by commas, such as 0.2,0.5,0.8, but got {text!r}"
+        )
+    return values
 
 
 def _add_check_options(p: argparse.ArgumentParser) -> None:
@@ -222,7 +244,13 @@ class CheckRun:
 def _analysis(args: argparse.Namespace) -> dict[str, Any]:
     """The keyword arguments of :func:`audit.audit_file` set by the analysis options."""
     out: dict[str, Any] = {"continuity_correction": bool(args.continuity_correction)}
-    for key in ("excess_basis", "excess_method", "excess_pooling", "excess_min_studies"):
+    for key in (
+        "excess_basis",
+        "excess_method",
+        "excess_pooling",
+        "excess_min_studies",
+        "reference_effects",
+    ):
         if hasattr(args, key):
             out[key] = getattr(args, key)
     return out

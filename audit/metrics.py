@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from audit import parallel, plan_methods, retro
+from audit import reported as reported_forms
 from audit._format import format_number
 from audit.designs import Design, Scenario, TestSpec, design_groups
 from audit.designs._base import _directions
@@ -50,6 +51,8 @@ METRICS: dict[str, str] = {
     "allowance, as compared)",
     "power_at_planned_effect": "design-based power of the realized design at the planned effect",
     "power_at_sesoi": "design-based power of the realized design at the SESOI",
+    "power_at_pooled_effect": "design-based power of the realized design at the pooled estimate "
+    "of the row's outcome_family (fixed or random effects, as excess_pooling says)",
     "mde": "minimal detectable effect at the target power with the realized design "
     "(effect units, signed in the direction used; a magnitude when either, taken on the harder "
     "side where the two sides differ)",
@@ -109,11 +112,39 @@ METRICS: dict[str, str] = {
     "observed_power": "power at the observed effect: a transform of the p-value shown only to "
     "make that plain (Hoenig & Heisey 2001); never evidence about the study",
     "observed_power_from_p": "the same, computed from the reported observed_p alone",
+    # -- the reported p checked against the other reported numbers (audit/reported.py) --
+    "reported_p_recomputed": "the p-value the other reported numbers give (the test statistic, "
+    "else the estimate with its SE or interval, else the arm means, else d with the sizes), at "
+    "face value; null where no p was reported",
+    "reported_p_discrepancy": "how far the reported p is from the recomputed one once the "
+    "rounding of printed numbers is allowed for: 1 where they agree, else the factor between "
+    "the nearest ends of the two ranges",
+    "reported_p_as_given": "the reported p as read: p = x, p < x, p > x or n.s.",
+    "reported_p_recomputed_from": "which reported numbers reported_p_recomputed comes from",
 }
+
+#: Metrics computed over the portfolio after the per-design metrics (audit/portfolio.py): one
+#: pooled estimate per outcome family.
+PORTFOLIO_METRICS = ("power_at_pooled_effect",)
+
+#: Prefix of the metric columns of power at each reference effect (``reference_power_0.5``);
+#: the JSON gathers them into one object ``reference_power`` (audit/studyjson.py).
+REFERENCE_PREFIX = "reference_power_"
+
+#: Default reference effects, in each design's standardized unit (Cohen's small, medium and
+#: large d; the same numbers in every unit unless the run says otherwise).
+REFERENCE_EFFECTS = (0.2, 0.5, 0.8)
 
 #: Metrics whose values are text (all others are numbers).
 TEXT_METRICS = frozenset(
-    {"ci_verdict", "direction_used", "plan_reproduced_by", "plan_closest_method"}
+    {
+        "ci_verdict",
+        "direction_used",
+        "plan_reproduced_by",
+        "plan_closest_method",
+        "reported_p_as_given",
+        "reported_p_recomputed_from",
+    }
 )
 
 #: Metrics of the reproduction of the stated calculation (audit/plan_methods.py): null for the
@@ -143,6 +174,10 @@ RESULT_METRICS = (
     "ci_halfwidth_ratio_realized",
     "observed_power",
     "observed_power_from_p",
+    "reported_p_recomputed",
+    "reported_p_discrepancy",
+    "reported_p_as_given",
+    "reported_p_recomputed_from",
 )
 
 #: All metrics computed by :func:`_retro_metrics` (their null notes are made there).
@@ -273,8 +308,23 @@ def _explain_nulls(
     notes.add(positions[rest], f"{metric}: could not be computed from the values given")
 
 
+def reference_column(effect: float) -> str:
+    """The metric column of power at a reference effect: ``reference_power_0.5``."""
+    return f"{REFERENCE_PREFIX}{effect:g}"
+
+
+def reference_columns(columns: list[str] | pd.Index) -> list[tuple[str, str]]:
+    """``(key, column)`` of each reference-power column of a metric table, in order (the key
+    is the effect as the JSON object ``reference_power`` names it: ``"0.5"``)."""
+    return [(c[len(REFERENCE_PREFIX) :], c) for c in columns if c.startswith(REFERENCE_PREFIX)]
+
+
 def compute_metrics(
-    table: pd.DataFrame, valid: np.ndarray, *, plan_tolerance: float | None = None
+    table: pd.DataFrame,
+    valid: np.ndarray,
+    *,
+    plan_tolerance: float | None = None,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> MetricTable:
     """Compute every metric for the valid rows of a validated table.
 
@@ -286,6 +336,7 @@ def compute_metrics(
         reproduces the plan (``plan_reproduced_by``): the ``max_discrepancy`` of rule
         sample-size-not-reproducible in force, which the pipeline passes from the resolved
         rules (:func:`audit.plan_methods.tolerance_in_force`); default: the bundled rule's.
+    reference_effects : standardized effects (each design's unit) for ``reference_power_<x>``.
     """
     if plan_tolerance is None:
         plan_tolerance = plan_methods.bundled_tolerance()
@@ -296,11 +347,13 @@ def compute_metrics(
         name: np.full(n, None, dtype=object) if name in TEXT_METRICS else np.full(n, np.nan)
         for name in METRICS
     }
+    for effect in reference_effects:
+        columns[reference_column(effect)] = np.full(n, np.nan)
     # One group per design and effect measure (a design with one effect unit is one group).
     groups = design_groups(table, np.flatnonzero(valid))
     notes = _Notes()
     for (_, positions), (computed, group_notes) in zip(
-        groups, _group_metrics(table, groups, plan_tolerance), strict=True
+        groups, _group_metrics(table, groups, plan_tolerance, tuple(reference_effects)), strict=True
     ):
         notes.pos.extend(group_notes.pos)
         notes.text.extend(group_notes.text)
@@ -325,7 +378,10 @@ PARALLEL_METRICS_MIN = 20_000
 
 
 def _group_metrics(
-    table: pd.DataFrame, groups: list[tuple[Design, np.ndarray]], plan_tolerance: float
+    table: pd.DataFrame,
+    groups: list[tuple[Design, np.ndarray]],
+    plan_tolerance: float,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> list[tuple[dict[str, np.ndarray], _Notes]]:
     """Metrics and notes of each group of rows (rows of one design), in the order given.
 
@@ -339,7 +395,10 @@ def _group_metrics(
         for design, positions in parts:
             notes = _Notes()
             rows = table.iloc[positions]
-            out.append((_design_metrics(design, rows, positions, notes, plan_tolerance), notes))
+            computed = _design_metrics(
+                design, rows, positions, notes, plan_tolerance, reference_effects
+            )
+            out.append((computed, notes))
         return out
 
     if sum(len(p) for _, p in groups) < PARALLEL_METRICS_MIN or not parallel.can_fork():
@@ -374,6 +433,7 @@ def _design_metrics(
     positions: np.ndarray,
     notes: _Notes,
     plan_tolerance: float,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> dict[str, np.ndarray]:
     test = test_settings(rows, design)
     plan = design.scenario(rows, "planned")
@@ -439,7 +499,9 @@ def _design_metrics(
         notes.add(positions, f"{metric}: not applicable, {reason}")
     # Metrics defined only for other designs (events for survival, ICC for cluster trials): one
     # note lists them rather than one note each.
-    foreign = [m for m in METRICS if m not in out and m not in RETRO_METRICS]
+    foreign = [
+        m for m in METRICS if m not in out and m not in RETRO_METRICS and m not in PORTFOLIO_METRICS
+    ]
     if foreign:
         notes.add(positions, f"not applicable to {design.name}: {', '.join(foreign)}")
 
@@ -447,6 +509,13 @@ def _design_metrics(
     if reproduction is not None:
         more = _note_reproduction(notes, positions, rows, reproduction, planned_total)
     _note_nulls(design, rows, positions, notes, out, plan, real, effect, sesoi, test, more)
+    out.update(_reference_power(design, rows, positions, notes, real, test, reference_effects))
+    if "power_at_pooled_effect" not in design.not_applicable:
+        # Rows in a family are given their power when the family is pooled (audit/portfolio.py).
+        no_family = pd.isna(rows["outcome_family"]).to_numpy(dtype=bool)
+        notes.add(
+            positions[no_family], "power_at_pooled_effect: not computed, missing outcome_family"
+        )
     # Texts: one for all masked rows, or one per masked row.
     for mask, text in [*design.fallback_notes(rows), *design.ignored_notes(rows)]:
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
@@ -469,6 +538,84 @@ def _note_reproduction(
     for mask, text in texts:
         notes.add(positions[mask], text)
     return {"plan_reproduced_by": [(unmatched, reason)]}
+
+
+def _reference_power(
+    design: Design,
+    rows: pd.DataFrame,
+    positions: np.ndarray,
+    notes: _Notes,
+    real: Scenario,
+    test: TestSpec,
+    effects: tuple[float, ...],
+) -> dict[str, np.ndarray]:
+    """Design-based power of the realized design at each reference effect, given in the
+    design's standardized unit (d, d_z, h, r, f, f2 or log HR) and pointed in the direction
+    used; a row with no direction on a design whose two sides differ gets the harder side."""
+    out: dict[str, np.ndarray] = {}
+    n = len(rows)
+    # Portfolios repeat designs (the same sizes and test): each distinct one is computed once,
+    # distinct as the standardized effect sees it (a t design's SD does not matter).
+    with np.errstate(all="ignore"):
+        seen, _ = design.at_standardized(real, np.ones(n), test.direction)
+    first, codes = _distinct(
+        *(seen[k] for k in sorted(seen)), test.alpha, test.sides, test.direction, test.either
+    )
+    few = {k: v[first] for k, v in real.items()}
+    few_test = test.subset(first)
+    sc = few
+    for x in effects:
+        magnitude = np.full(len(first), float(x))
+        with np.errstate(all="ignore"):
+            sc, eff = design.at_standardized(few, magnitude, few_test.direction)
+            power = design.power(sc, eff, few_test)
+            if not design.symmetric and few_test.either.any():
+                flipped = few_test.with_direction(
+                    np.where(few_test.either, -few_test.direction, 1.0)
+                )
+                sc2, eff2 = design.at_standardized(few, magnitude, flipped.direction)
+                other = design.power(sc2, eff2, flipped)
+                power = np.where(few_test.either & (other < power), other, power)
+        out[reference_column(x)] = power[codes]
+    sc = {k: v[codes] for k, v in sc.items()}
+    if not effects:
+        return out
+    if design.standardized_as is None:
+        notes.add(
+            positions,
+            f"reference_power: not applicable, {design.name} has no standardized unit",
+        )
+        return out
+    null = np.zeros(n, dtype=bool)
+    for values in out.values():
+        null |= np.isnan(values)
+    src = design.sources("realized")
+    # The inputs power at a standardized effect needs (a t design's SD is not among them).
+    inputs = [(np.isnan(sc[k]), src[k]) for k in sc if k in src]
+    unreachable = (
+        np.ones(n, dtype=bool),
+        "the reference effect leaves the range the design allows (a proportion beyond [0, 1] "
+        "from the realized control rate)",
+    )
+    _explain_nulls(
+        notes, positions, "reference_power", np.where(null, np.nan, 0.0), inputs, [unreachable]
+    )
+    return out
+
+
+def _distinct(*arrays: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The first position of each distinct combination of the arrays' values, and each
+    position's combination (its index into those first positions)."""
+    columns = [np.asarray(a, dtype=float).reshape(-1) for a in arrays]
+    n = len(columns[0]) if columns else 0
+    if n < 64:
+        return np.arange(n), np.arange(n)
+    frame = pd.DataFrame(dict(enumerate(columns)))
+    codes = frame.groupby(list(frame.columns), sort=False, dropna=False).ngroup().to_numpy()
+    codes = codes.astype(np.intp)
+    first = np.empty(codes.max() + 1, dtype=np.intp)
+    first[codes[::-1]] = np.arange(n - 1, -1, -1)
+    return first, codes
 
 
 def _difference(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -699,14 +846,51 @@ def _retro_metrics(
     _result_from_counts(design, rows, positions, notes, reported)
     # A p printed as a bound ("< 0.001", "n.s.") is a reported result too.
     has_result = ~np.isnan(_col(rows, "observed_p_relation"))
-    for c in RESULT_COLUMNS:
+    for c in RESULT_COLUMNS:  # as reported, or filled in from events per arm
         has_result |= ~np.isnan(reported[c])
+    for c in reported_forms.RESULT_FORMS:
+        has_result |= ~np.isnan(_col(rows, c))
     res_out: dict[str, np.ndarray] = {}
 
+    to_a = design.to_analysis
+    with np.errstate(all="ignore"):
+        effect_a = to_a(effect)
+        sesoi_a = to_a(sesoi)
+        obs = {key: to_a(reported[f"observed_{key}"]) for key in ("effect", "ci_low", "ci_high")}
+    df_real = _finite_df(design.analysis_df(real))
+    df_plan = _finite_df(design.analysis_df(plan))
+    # A test statistic or arm means, read as the effect, SE and p they imply (audit/reported.py).
+    derived = reported_forms.derive_results(
+        design,
+        rows,
+        real,
+        test,
+        df_real,
+        {
+            "effect": obs["effect"],
+            "ci_low": obs["ci_low"],
+            "ci_high": obs["ci_high"],
+            "observed_se": reported["observed_se"],
+            "observed_p": reported["observed_p"],
+        },
+    )
+    check = reported_forms.check_reported_p(
+        design, rows, real, test, df_real, derived.statistic_info
+    )
+    res_out["reported_p_recomputed"] = check.recomputed
+    res_out["reported_p_discrepancy"] = check.discrepancy
+    res_out["reported_p_as_given"] = check.as_given
+    res_out["reported_p_recomputed_from"] = check.source
+    for mask, text in [*derived.notes, *check.notes]:
+        notes.add(positions[np.asarray(mask, dtype=bool)], _selected(mask, text))
+    _note_p_check(notes, positions, check, has_result | (not se_based), rows)
+
     if not se_based:
-        p = reported["observed_p"]
+        p = derived.p
         with np.errstate(invalid="ignore"):
-            sig = np.where(np.isnan(p), np.nan, (p < alpha).astype(float))
+            # The reported statistic decides over a reported p (the p is derived from it).
+            p_test = np.where(np.isfinite(derived.p_test), derived.p_test, p)
+            sig = np.where(np.isnan(p_test), np.nan, (p_test < alpha).astype(float))
         sig = np.where(np.isnan(sig), _significance_by_bound(rows, alpha), sig)
         res_out["result_p"] = p
         res_out["result_significant"] = sig
@@ -718,18 +902,12 @@ def _retro_metrics(
             f"not applicable to {design.name} (its test has no single signed effect and "
             f"standard error): {', '.join(na)}",
         )
-        no_p = np.isnan(p)
-        for m in ("result_p", "result_significant"):
-            notes.add(positions[no_p], f"{m}: not computed, missing observed_p")
+        for m, values in (("result_p", p), ("result_significant", sig)):
+            notes.add(
+                positions[np.isnan(values)],
+                f"{m}: not computed, missing observed_p (or observed_statistic)",
+            )
         return res_out
-
-    to_a = design.to_analysis
-    with np.errstate(all="ignore"):
-        effect_a = to_a(effect)
-        sesoi_a = to_a(sesoi)
-        obs = {key: to_a(reported[f"observed_{key}"]) for key in ("effect", "ci_low", "ci_high")}
-    df_real = _finite_df(design.analysis_df(real))
-    df_plan = _finite_df(design.analysis_df(plan))
 
     # Design analysis: Type S / M at the planned effect and at the SESOI, realized SE.
     with np.errstate(all="ignore"):
@@ -747,19 +925,31 @@ def _retro_metrics(
     res_out["ci_halfwidth_realized"] = q_real * out["se_realized"]
 
     # The reported result, completed.
+    df_result = _finite_df(derived.df)
     res = retro.complete_results(
-        obs["effect"],
-        reported["observed_se"],
+        np.where(np.isnan(obs["effect"]), derived.effect, obs["effect"]),
+        np.where(np.isnan(reported["observed_se"]), derived.se, reported["observed_se"]),
         obs["ci_low"],
         obs["ci_high"],
-        reported["observed_p"],
-        df=df_real,
+        derived.p,
+        df=df_result,
         alpha=alpha,
         sides=sides,
         direction=d,
         ci_level=_reported_level(reported["observed_ci_level"]),
     )
-    sig = retro.significant(res.ci_low, res.ci_high, res.p, alpha=alpha, sides=sides, direction=d)
+    by_interval = retro.significant(
+        res.ci_low, res.ci_high, res.p, alpha=alpha, sides=sides, direction=d
+    )
+    # A reported interval or SE decides; otherwise the study's own test does, through its most
+    # direct p (the statistic's, the arm means' t test, the reported p, the t test of d), which
+    # an interval derived from that p may not match exactly (a standardized difference's SE).
+    interval_given = np.isfinite(reported["observed_se"]) | (
+        np.isfinite(obs["ci_low"]) & np.isfinite(obs["ci_high"])
+    )
+    with np.errstate(invalid="ignore"):
+        by_test = (derived.p_test < alpha).astype(float)
+    sig = np.where(interval_given | np.isnan(derived.p_test), by_interval, by_test)
     sig = np.where(np.isnan(sig), _significance_by_bound(rows, alpha), sig)
     verdict = retro.ci_verdicts(
         res.ci_low, res.ci_high, sig, effect_a, sesoi_a, direction=d, either=test.either
@@ -781,13 +971,15 @@ def _retro_metrics(
         res_out["ci_halfwidth_observed"] = halfwidth
         res_out["ci_halfwidth_ratio_plan"] = halfwidth / res_out["ci_halfwidth_plan"]
         res_out["ci_halfwidth_ratio_realized"] = halfwidth / res_out["ci_halfwidth_realized"]
-        statistic = d * res.effect / res.se
+        statistic = np.where(
+            np.isfinite(derived.statistic), d * derived.statistic, d * res.effect / res.se
+        )
         statistic = np.where(
             np.isfinite(statistic),
             statistic,
-            retro.statistic_from_p(reported["observed_p"], df_real, sides),
+            retro.statistic_from_p(res.p, df_result, sides),
         )
-    res_out["observed_power"] = retro.observed_power(statistic, df_real, alpha, sides)
+    res_out["observed_power"] = retro.observed_power(statistic, df_result, alpha, sides)
     res_out["observed_power_from_p"] = retro.observed_power_from_p(
         reported["observed_p"], df_real, alpha, sides
     )
@@ -798,7 +990,7 @@ def _retro_metrics(
     _note_reported_power(notes, positions, reported["reported_power"], res_out)
 
     _note_retro(
-        _RetroRows(design, rows, positions, plan, real, effect, test, effect_a, sesoi_a, df_real),
+        _RetroRows(design, rows, positions, plan, real, effect, test, effect_a, sesoi_a, df_result),
         notes,
         res_out,
         res,
@@ -849,6 +1041,36 @@ def _result_from_counts(
         positions[partial],
         f"{design.count_columns()} incomplete: the result needs both arms' events and sizes; "
         "not used",
+    )
+
+
+def _selected(mask: np.ndarray, text: object) -> object:
+    """A note's text for the rows of ``mask``: one text, or the masked part of one per row."""
+    if isinstance(text, np.ndarray) and text.shape == np.shape(mask):
+        return text[np.asarray(mask, dtype=bool)]
+    return text
+
+
+def _note_p_check(
+    notes: _Notes,
+    positions: np.ndarray,
+    check: reported_forms.PCheck,
+    has_result: np.ndarray,
+    rows: pd.DataFrame,
+) -> None:
+    """Why ``reported_p_recomputed`` (and the other reported_p metrics) are null on a row that
+    reports a result."""
+    given = np.isfinite(_col(rows, "observed_p")) | np.isfinite(_col(rows, "observed_p_relation"))
+    notes.add(
+        positions[has_result & ~given],
+        "not computed (no p-value reported to check): reported_p_recomputed, "
+        "reported_p_discrepancy, reported_p_as_given, reported_p_recomputed_from",
+    )
+    notes.add(
+        positions[has_result & given & np.isnan(check.discrepancy)],
+        "not computed (no other reported form of the result to recompute the reported p from; "
+        "a test statistic, the estimate with its SE or interval, or arm means and SDs would "
+        "do): reported_p_recomputed, reported_p_discrepancy, reported_p_recomputed_from",
     )
 
 
@@ -1017,21 +1239,23 @@ def _note_retro(
     listed = [m for m in RESULT_METRICS if m not in skip]
     notes.add(
         positions[none],
-        "no result reported (observed_effect, observed_se, observed_ci_low/high, observed_p): "
-        "not computed: " + ", ".join(listed),
+        "no result reported (observed_effect, observed_se, observed_ci_low/high, observed_p, "
+        "observed_statistic, observed_mean1/2): not computed: " + ", ".join(listed),
     )
     some = has_result
     need_ci = "needs the effect with its SE, both CI limits, or the effect with observed_p"
     result_reasons = {
-        "result_effect": "needs observed_effect or both CI limits",
-        "result_se": "needs observed_se, both CI limits, or the effect with observed_p",
+        "result_effect": "needs observed_effect, both CI limits, the arm means or a signed test "
+        "statistic the realized design can scale",
+        "result_se": "needs observed_se, both CI limits, the arm SDs, or the effect with "
+        "observed_p or a test statistic",
         "result_ci_level": need_ci,
         "result_ci_low": need_ci,
         "result_ci_high": need_ci,
-        "result_p": "needs observed_p, or the effect with its SE or CI",
-        "result_significant": "needs a confidence interval or observed_p",
+        "result_p": "needs observed_p, a test statistic, or the effect with its SE or CI",
+        "result_significant": "needs a confidence interval, observed_p or a test statistic",
         "ci_halfwidth_observed": need_ci,
-        "observed_power": "needs the effect with its SE or CI, or observed_p",
+        "observed_power": "needs the effect with its SE or CI, observed_p or a test statistic",
         "observed_power_from_p": "observed_p not reported",
     }
     for metric, reason in result_reasons.items():

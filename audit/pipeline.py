@@ -25,9 +25,14 @@ import pandas as pd
 from audit import parallel
 from audit.caveats import caveats
 from audit.errors import ConfigError
-from audit.metrics import METRICS, compute_metrics
+from audit.metrics import METRICS, REFERENCE_EFFECTS, compute_metrics
 from audit.plan_methods import tolerance_in_force
-from audit.portfolio import EXCESS_DEFAULTS, ExcessSettings, portfolio_summary
+from audit.portfolio import (
+    EXCESS_DEFAULTS,
+    ExcessSettings,
+    pooled_effect_power,
+    portfolio_summary,
+)
 from audit.read import RawTable, raw_from_frame, read_table
 from audit.rules import Evaluation, Rule, RuleSet, evaluate_rules, resolve_rules
 from audit.schema import Validated, WholeTable, study_ids, validate
@@ -64,6 +69,7 @@ class AuditResult:
     rules : the enabled rules of the run, in listing order.
     rules_waiting : rule id -> metrics it needs that this run does not compute (no flags).
     rule_problems : ``rule``, ``severity``, ``problem``: rules that failed internally.
+    rules_judged : rule id -> audited rows its condition could judge (true or false).
     caveats : plain-language caveats that apply (``topic``, ``title``, ``text``), for the
         report's caveats section.
     """
@@ -83,6 +89,8 @@ class AuditResult:
         default_factory=lambda: pd.DataFrame(columns=["rule", "severity", "problem"])
     )
     caveats: list[dict[str, str]] = field(default_factory=list)
+    #: rule id -> audited rows on which the rule's condition was known (true or false).
+    rules_judged: dict[str, int] = field(default_factory=dict)
     #: JSON text of the studies from ``start`` on, being encoded by a forked child for
     #: :func:`audit.export.write_json` (set by ``audit_file(..., prepare_json=True)``).
     prepared_studies: PreparedStudies | None = field(default=None, repr=False, compare=False)
@@ -241,12 +249,64 @@ def _excess_settings(basis: str, method: str, pooling: str, min_studies: int) ->
     return settings
 
 
+def reference_effects_setting(values: Any) -> tuple[float, ...]:
+    """The reference effects of a run, checked: positive finite numbers, each once, in the
+    order given.
+
+    Raises
+    ------
+    ConfigError
+        Not a sequence of positive numbers (or a comma-separated text of them).
+    """
+    if isinstance(values, str):
+        values = [v for v in values.split(",") if v.strip()]
+    try:
+        effects = tuple(float(v) for v in values)
+    except (TypeError, ValueError):
+        raise ConfigError(
+            f"reference_effects must be positive numbers (standardized effects such as "
+            f"0.2,0.5,0.8), but got {values!r}."
+        ) from None
+    bad = [v for v in effects if not (math.isfinite(v) and v > 0)]
+    if bad or not effects:
+        raise ConfigError(
+            "reference_effects must be one or more positive numbers (standardized effects in "
+            f"each design's unit, such as 0.2,0.5,0.8), but got {values!r}."
+        )
+    return tuple(dict.fromkeys(effects))
+
+
+def _with_family_power(
+    table: pd.DataFrame,
+    metrics: pd.DataFrame,
+    notes: pd.DataFrame,
+    valid: np.ndarray,
+    pooling: str,
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """``power_at_pooled_effect`` filled in (one pooled estimate per outcome_family, over the
+    whole table) and its notes merged into the notes."""
+    power, family_notes = pooled_effect_power(table, metrics, valid, pooling)
+    if not len(family_notes) and not np.isfinite(power).any():
+        return metrics, notes
+    metrics = metrics.copy()
+    metrics["power_at_pooled_effect"] = power
+    notes = pd.concat([notes, family_notes], ignore_index=True)
+    notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
+    notes["text"] = notes["text"].astype(object)
+    return metrics, notes
+
+
+def _has_families(table: pd.DataFrame, valid: np.ndarray) -> bool:
+    return bool((valid & table["outcome_family"].notna().to_numpy(dtype=bool)).any())
+
+
 def audit_validated(
     validated: Validated,
     *,
     rules: Any = None,
     continuity_correction: bool = False,
     excess: ExcessSettings = EXCESS_DEFAULTS,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
     progress: Progress | None = None,
     prepare_json: bool = False,
 ) -> AuditResult:
@@ -257,9 +317,10 @@ def audit_validated(
     """
     ruleset = resolve_rules(rules)
     table, metrics, notes, status = _metrics_of(
-        validated, continuity_correction, progress, tolerance_in_force(ruleset)
+        validated, continuity_correction, progress, tolerance_in_force(ruleset), reference_effects
     )
     valid = validated.valid
+    metrics, notes = _with_family_power(table, metrics, notes, valid, excess.pooling)
     _announce(progress, "applying rules")
     prepared = None
     with contextlib.ExitStack() as cleanup:
@@ -285,6 +346,7 @@ def audit_validated(
             ruleset,
             continuity_correction=continuity_correction,
             excess=excess,
+            reference_effects=reference_effects,
             progress=progress,
         )
         if prepared is not None:
@@ -307,6 +369,7 @@ def _metrics_of(
     continuity_correction: bool,
     progress: Progress | None,
     plan_tolerance: float,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame, np.ndarray]:
     """The audited table (run defaults applied), its metrics, all notes by row, and status.
 
@@ -321,7 +384,9 @@ def _metrics_of(
     )
     valid = validated.valid
     _announce(progress, "computing metrics")
-    computed = compute_metrics(table, valid, plan_tolerance=plan_tolerance)
+    computed = compute_metrics(
+        table, valid, plan_tolerance=plan_tolerance, reference_effects=reference_effects
+    )
     metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
     notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
     notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
@@ -342,6 +407,7 @@ def _summarised(
     *,
     continuity_correction: bool,
     excess: ExcessSettings,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
     progress: Progress | None,
 ) -> AuditResult:
     """The result of an audit whose rows are done: the portfolio summary and the settings."""
@@ -349,7 +415,13 @@ def _summarised(
     findings = evaluation.findings
     _announce(progress, "summarising")
     portfolio = portfolio_summary(
-        table, metrics, valid, findings, blank_rows=len(validated.raw.blank_rows), excess=excess
+        table,
+        metrics,
+        valid,
+        findings,
+        blank_rows=len(validated.raw.blank_rows),
+        excess=excess,
+        judged=evaluation.judged,
     )
     enabled = ruleset.enabled()
     settings = {
@@ -368,6 +440,7 @@ def _summarised(
         "source": validated.raw.source,
         "sheet": validated.raw.sheet,
         "excess_significance": excess.as_dict(),
+        "reference_effects": list(reference_effects),
         "header_row": validated.raw.header_row,
         # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
         # title rows, merged or repeated headers).
@@ -387,6 +460,7 @@ def _summarised(
         rules_waiting=evaluation.waiting,
         rule_problems=evaluation.problems,
         caveats=caveats(metrics, portfolio),
+        rules_judged=dict(evaluation.judged),
     )
 
 
@@ -421,12 +495,13 @@ def _audit_share(
     ruleset: RuleSet,
     continuity_correction: bool,
     progress: Progress | None,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> _Share:
     """Validate, compute and apply the rules to the rows ``start`` to ``stop`` of ``raw``."""
     _announce(progress, "checking rows")
     validated = validate(_rows_of(raw, start, stop), WholeTable(ids, raw.rows, start))
     table, metrics, notes, status = _metrics_of(
-        validated, continuity_correction, progress, tolerance_in_force(ruleset)
+        validated, continuity_correction, progress, tolerance_in_force(ruleset), reference_effects
     )
     _announce(progress, "applying rules")
     evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
@@ -469,6 +544,7 @@ def _audit_in_shares(
     *,
     continuity_correction: bool,
     excess: ExcessSettings,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
     progress: Progress | None,
     prepare_json: bool,
 ) -> AuditResult:
@@ -489,7 +565,9 @@ def _audit_in_shares(
 
     def child(facts: IO[bytes], studies: IO[bytes], handover: Callable[[], None]) -> None:
         parallel.ENABLED = False  # this process has its core; it starts no child of its own
-        share = _audit_share(raw, start, n, ids, ruleset, continuity_correction, None)
+        share = _audit_share(
+            raw, start, n, ids, ruleset, continuity_correction, None, reference_effects
+        )
         pickle.dump(share, facts, protocol=pickle.HIGHEST_PROTOCOL)
         handover()
         if prepare_json and not len(share.evaluation.problems):
@@ -499,7 +577,9 @@ def _audit_in_shares(
         task = parallel.ChildTask(child, parts=2).start()
         cleanup.callback(task.close)
         with parallel.suspended():
-            mine = _audit_share(raw, 0, start, ids, ruleset, continuity_correction, progress)
+            mine = _audit_share(
+                raw, 0, start, ids, ruleset, continuity_correction, progress, reference_effects
+            )
             own = None
             if prepare_json and not len(mine.evaluation.problems):
                 # Done while the child finishes its share (this share is the smaller one).
@@ -512,7 +592,9 @@ def _audit_in_shares(
         theirs = pickle.load(facts) if facts is not None else None
         child_json = prepare_json and theirs is not None
         if theirs is None:  # no child, or it failed: its rows are audited here
-            theirs = _audit_share(raw, start, n, ids, ruleset, continuity_correction, None)
+            theirs = _audit_share(
+                raw, start, n, ids, ruleset, continuity_correction, None, reference_effects
+            )
         validated = Validated(
             table=_stacked(mine.table, theirs.table),
             failures=_stacked(mine.failures, theirs.failures, start),
@@ -527,12 +609,27 @@ def _audit_in_shares(
         notes = _stacked(mine.notes, theirs.notes, start)
         status = np.concatenate([mine.status, theirs.status])
         a, b = mine.evaluation, theirs.evaluation
-        if len(a.problems) or len(b.problems) or a.waiting != b.waiting:
+        # The families are pooled over the whole table: their powers and notes come now, so
+        # the shares' JSON text (made without them) is not used, and rules reading them are
+        # applied again.
+        families = _has_families(table, validated.valid)
+        if families:
+            metrics, notes = _with_family_power(
+                table, metrics, notes, validated.valid, excess.pooling
+            )
+            child_json = False
+        reads_family = families and any(
+            "power_at_pooled_effect" in rule.columns() for rule in ruleset.enabled()
+        )
+        if len(a.problems) or len(b.problems) or a.waiting != b.waiting or reads_family:
             # As one process would: the rule reports no findings at all.
             evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
             child_json = False
         else:
-            evaluation = dataclasses.replace(a, findings=_stacked(a.findings, b.findings, start))
+            judged = {k: a.judged.get(k, 0) + b.judged.get(k, 0) for k in {**a.judged, **b.judged}}
+            evaluation = dataclasses.replace(
+                a, findings=_stacked(a.findings, b.findings, start), judged=judged
+            )
         if list(mine.metrics.columns) != list(theirs.metrics.columns):
             metrics = metrics[[*METRICS, *[c for c in metrics if c not in METRICS]]]
             child_json = False  # the child's studies lack a metric the others have
@@ -546,6 +643,7 @@ def _audit_in_shares(
             ruleset,
             continuity_correction=continuity_correction,
             excess=excess,
+            reference_effects=reference_effects,
             progress=progress,
         )
         if child_json:
@@ -585,6 +683,7 @@ def audit_table(
     excess_method: str = "exact",
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
+    reference_effects: Any = REFERENCE_EFFECTS,
     progress: Progress | None = None,
     prepare_json: bool = False,
 ) -> AuditResult:
@@ -608,9 +707,15 @@ def audit_table(
     excess_method : {"exact", "chi2"}
         Exact Poisson-binomial p-value, or the chi-square form of Ioannidis & Trikalinos (2007).
     excess_pooling : {"fixed", "random"}
-        Pooled estimate for ``excess_basis="pooled"``: fixed-effect or random-effects.
+        How each ``outcome_family`` is pooled (fixed-effect, or random-effects with the
+        Paule-Mandel tau²): for ``power_at_pooled_effect``, the portfolio's ``families`` and
+        ``excess_basis="pooled"``.
     excess_min_studies : int
         Fewest studies with a result and a power for the test to run (default 5).
+    reference_effects : sequence of float, or text such as ``"0.2,0.5,0.8"``
+        Standardized effects, in each design's standardized unit (d, d_z, h, r, f, f2, log HR),
+        at which every study's design-based power is given (``reference_power_<x>``; the JSON
+        object ``reference_power``). Default 0.2, 0.5, 0.8.
     progress
         Called with each stage name of :data:`STAGES` as it starts.
     prepare_json : bool
@@ -624,6 +729,7 @@ def audit_table(
     """
     ruleset = resolve_rules(rules)  # a bad rules file fails before any work is done
     excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
+    references = reference_effects_setting(reference_effects)
     raw = df if isinstance(df, RawTable) else raw_from_frame(df)
     if _in_shares(raw):
         return _audit_in_shares(
@@ -631,6 +737,7 @@ def audit_table(
             ruleset,
             continuity_correction=continuity_correction,
             excess=excess,
+            reference_effects=references,
             progress=progress,
             prepare_json=prepare_json,
         )
@@ -640,6 +747,7 @@ def audit_table(
         rules=ruleset,
         continuity_correction=continuity_correction,
         excess=excess,
+        reference_effects=references,
         progress=progress,
         prepare_json=prepare_json,
     )
@@ -667,12 +775,14 @@ def audit_file(
     excess_method: str = "exact",
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
+    reference_effects: Any = REFERENCE_EFFECTS,
     progress: Progress | None = None,
     prepare_json: bool = False,
 ) -> AuditResult:
     """Read and audit a spreadsheet or CSV file (keyword arguments as :func:`audit_table`)."""
     ruleset = resolve_rules(rules)
     _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
+    reference_effects_setting(reference_effects)
     _announce(progress, "reading")
     return audit_table(
         read_table(path, sheet=sheet),
@@ -682,6 +792,7 @@ def audit_file(
         excess_method=excess_method,
         excess_pooling=excess_pooling,
         excess_min_studies=excess_min_studies,
+        reference_effects=reference_effects,
         progress=progress,
         prepare_json=prepare_json,
     )

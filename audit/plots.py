@@ -3,8 +3,13 @@
 * ``study_<id>.png`` — power against the true effect for the design as planned and as realized,
   with the planned effect, the SESOI and the MDE marked. Written for at most ``max_studies``
   studies: those with the most serious findings first, then in input order.
-* ``portfolio_power.png`` — distribution of design-based power at the planned effect.
+* ``portfolio_power.png`` — distribution of design-based power at the planned effect; where some
+  studies have no planned effect, their power at their family's pooled effect or else at the
+  middle reference effect is stacked on it (the legend says how many of each).
 * ``portfolio_mde.png`` — standardized MDE against realized size, one colour per design.
+* ``family_<name>.png`` — per pooled ``outcome_family``, each study's power across a range of true
+  effects on the family's analysis scale (standardized where the results are: d, d_z, Fisher z,
+  log HR), one curve per study, the pooled estimate marked (:func:`family_figures`).
 
 Curves are computed with the designs' own vectorised power functions over a grid (one call per
 design for all plotted studies). Rendering uses matplotlib's Agg backend: no display is needed.
@@ -27,7 +32,7 @@ from audit.metrics import test_settings
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
 
-__all__ = ["PALETTE", "power_curves", "write_plots"]
+__all__ = ["PALETTE", "family_curves", "family_figures", "power_curves", "write_plots"]
 
 #: The project's colours: planned design, realized design, markers, portfolio bars.
 PALETTE = {
@@ -37,6 +42,8 @@ PALETTE = {
     "sesoi": "#7A9A3A",
     "mde": "#8E4A8E",
     "bars": "#6E9C9A",
+    "bars_pooled": "#B8963A",
+    "bars_reference": "#A9A9C8",
     "grid": "#E3E3E3",
     "designs": ["#5B7DA8", "#C0612B", "#7A9A3A", "#8E4A8E", "#B8963A", "#3F8F8C", "#A8525E",
                 "#6B6B6B", "#4F6F3A", "#9C7BB5"],
@@ -227,27 +234,159 @@ def write_plots(
         written.append(path)
     if study is None:
         written.extend(_portfolio_plots(result, folder, fmt, plt))
+        for name, fig in family_figures(result):
+            path = folder / f"family_{_safe_name(name)}.{fmt}"
+            fig.savefig(path)
+            plt.close(fig)
+            written.append(path)
     return written
+
+
+def family_curves(
+    result: AuditResult, family: str, grid: int = _GRID
+) -> dict[str, np.ndarray] | None:
+    """Power of each study of a pooled outcome family over a grid of true effects.
+
+    Returns ``effect`` (the family's analysis scale, from no effect to twice the pooled
+    estimate or to the largest reference effect, in the pooled estimate's direction),
+    ``positions`` (row positions of the studies drawn) and ``power`` (one row per study), or
+    None where the family was not pooled. The powers are those of
+    :func:`audit.portfolio.family_power_grid`: the same computation as
+    ``power_at_pooled_effect``, so each curve passes through the study's power at the pooled
+    estimate.
+    """
+    from audit.portfolio import family_power_grid
+
+    block = result.portfolio.get("families", {}).get(family)
+    if not block or block["pooled_estimate"] is None:
+        return None
+    pooled = float(block["pooled_estimate"])
+    standardized = block["scale"] in _STANDARDIZED_SCALES
+    effects = result.settings.get("reference_effects") or []
+    reach = 2.0 * abs(pooled)
+    if standardized and effects:
+        reach = max(reach, 1.1 * max(effects))
+    if not reach > 0:
+        reach = 1.0
+    sign = -1.0 if pooled < 0 else 1.0
+    values = sign * np.linspace(0.0, reach, grid)
+    positions, power = family_power_grid(
+        result.table, result.metrics, result.valid, family, block, values
+    )
+    return {"effect": values, "positions": positions, "power": power}
+
+
+#: Analysis scales that are standardized effects (their x axis reaches the reference effects).
+_STANDARDIZED_SCALES = frozenset({"d", "d_z", "d (one sample)", "Fisher z", "log hazard ratio"})
+
+
+def family_figures(result: AuditResult, grid: int = _GRID) -> list[tuple[str, object]]:
+    """One matplotlib figure per pooled outcome family, ``(family, figure)`` in family order,
+    for ``--plots`` and for any report that embeds figures (the caller closes them)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    out = []
+    ids = result.table["study_id"].to_numpy(dtype=object)
+    for name, block in result.portfolio.get("families", {}).items():
+        curves = family_curves(result, name, grid)
+        if curves is None or not np.isfinite(curves["power"]).any():
+            continue
+        fig, ax = plt.subplots(figsize=(6.4, 4.4), dpi=110)
+        _style(ax)
+        many = len(curves["positions"]) > 12
+        for i, pos in enumerate(curves["positions"]):
+            colour = PALETTE["designs"][i % len(PALETTE["designs"])]
+            label = None if many else str(ids[pos])
+            ax.plot(
+                curves["effect"],
+                curves["power"][i],
+                color=PALETTE["realized"] if many else colour,
+                lw=1.0 if many else 1.6,
+                alpha=0.45 if many else 0.9,
+                label=label,
+            )
+        pooled = float(block["pooled_estimate"])
+        ax.axvline(
+            pooled,
+            color=PALETTE["planned_effect"],
+            lw=1.4,
+            ls="--",
+            label=f"pooled estimate {pooled:.3g}",
+        )
+        at = result.metrics["power_at_pooled_effect"].to_numpy(dtype=float)[curves["positions"]]
+        ax.plot(np.full(len(at), pooled), at, "o", color=PALETTE["planned_effect"], ms=3.5)
+        ax.axhline(0.8, color="#9A9A9A", lw=0.9, zorder=0)
+        ax.set_ylim(0, 1.02)
+        ax.set_xlabel(f"true effect on the family's scale: {block['scale']}")
+        ax.set_ylabel("design-based power (realized design)")
+        median = block["median_power_at_pooled_effect"]
+        title = f"{name}: {len(curves['positions'])} studies"
+        if median is not None:
+            title += f", median power {median:.2f} at the pooled estimate"
+        ax.set_title(textwrap.shorten(title, width=90, placeholder="…"), loc="left", fontsize=10)
+        ax.legend(frameon=False, fontsize=7, loc="lower right", ncol=2 if not many else 1)
+        fig.tight_layout()
+        out.append((name, fig))
+    return out
 
 
 def _portfolio_plots(result: AuditResult, folder: Path, fmt: str, plt) -> list[Path]:
     from matplotlib.ticker import FuncFormatter
 
+    from audit.portfolio import power_by_basis
+
     written = []
     metrics = result.metrics
-    power = metrics["power_at_planned_effect"].to_numpy(dtype=float)
-    power = power[np.isfinite(power)]
-    if len(power):
+    # Each study's power at its planned effect, else at its family's pooled estimate, else at
+    # the middle reference effect: the portfolio's own choice (audit.portfolio.power_by_basis).
+    values, basis, key = power_by_basis(metrics, result.valid)
+    spread = result.portfolio.get("power_distribution_by_basis") or {}
+    counts = spread.get("basis_counts") or {}
+    if np.isfinite(values).any():
         fig, ax = plt.subplots(figsize=(6.4, 3.8), dpi=110)
         _style(ax)
-        ax.hist(power, bins=np.linspace(0, 1, 21), color=PALETTE["bars"], edgecolor="white")
-        median = float(result.portfolio["median_power_at_planned_effect"])  # the summary's own
+        bins = np.linspace(0, 1, 21)
+        only_planned = not counts.get("pooled") and not counts.get("reference")
+        if only_planned:
+            power = values[basis == "planned"]
+            ax.hist(power, bins=bins, color=PALETTE["bars"], edgecolor="white")
+            median = float(result.portfolio["median_power_at_planned_effect"])
+            xlabel = "design-based power at the planned effect (realized design)"
+            title = f"Power at the planned effect, {len(power)} studies"
+        else:
+            kinds = [
+                ("planned", "at the planned effect", PALETTE["bars"]),
+                ("pooled", "at the family's pooled effect", PALETTE["bars_pooled"]),
+                ("reference", f"at the reference effect {key}", PALETTE["bars_reference"]),
+            ]
+            stacks = [(values[basis == k], f"{counts.get(k, 0)} {text}", c) for k, text, c in kinds]
+            stacks = [s for s in stacks if len(s[0])]
+            ax.hist(
+                [s[0] for s in stacks],
+                bins=bins,
+                stacked=True,
+                color=[s[2] for s in stacks],
+                label=[s[1] for s in stacks],
+                edgecolor="white",
+            )
+            median = float(spread["quartiles"][1])
+            xlabel = (
+                "design-based power (realized design) at the planned effect, else the pooled "
+                "or reference effect"
+            )
+            title = (
+                f"Design-based power of {int(np.isfinite(values).sum())} studies: at the planned "
+                "effect, else the pooled or a reference effect"
+            )
         ax.axvline(median, color=PALETTE["realized"], lw=1.6, label=f"median {median:.2f}")
         ax.axvline(0.8, color=PALETTE["planned_effect"], lw=1.0, ls=":", label="0.80")
-        ax.set_xlabel("design-based power at the planned effect (realized design)")
+        ax.set_xlabel(xlabel, fontsize=8 if not only_planned else None)
         ax.set_ylabel("studies")
-        ax.set_title(f"Power at the planned effect, {len(power)} studies", loc="left", fontsize=10)
-        ax.legend(frameon=False, fontsize=8)
+        ax.set_title(title, loc="left", fontsize=10)
+        ax.legend(frameon=False, fontsize=7 if not only_planned else 8)
         fig.tight_layout()
         path = folder / f"portfolio_power.{fmt}"
         fig.savefig(path)

@@ -25,7 +25,7 @@ from rich.theme import Theme
 
 from audit._format import format_number
 from audit.designs import design_of
-from audit.metrics import METRICS
+from audit.metrics import METRICS, REFERENCE_PREFIX
 from audit.rules import CONTRACT_METRICS, SEVERITIES, SEVERITY_RANK, Rule, RuleSet, known_columns
 from audit.schema import COLUMNS
 
@@ -111,6 +111,21 @@ class RuleCount:
     severity: str
     studies: int
     state: str  # "active", "waiting for ...", "failed: ..."
+    judged: int | None = None  # audited rows whose condition was known (true or false)
+
+
+@dataclass
+class FamilyLine:
+    """One outcome family as the report shows it (numbers from ``portfolio["families"]``)."""
+
+    name: str
+    studies: int
+    pooled: str
+    scale: str
+    median_power: str
+    reference: str
+    remarks: list[str]
+    tested: bool
 
 
 @dataclass
@@ -142,6 +157,9 @@ class Overview:
     problems: list[tuple[str, str, str]] = field(default_factory=list)
     results_lines: list[str] = field(default_factory=list)
     input_notes: list[str] = field(default_factory=list)
+    basis_line: str | None = None
+    reference_line: str | None = None
+    families: list[FamilyLine] = field(default_factory=list)
 
 
 def _results_lines(portfolio: dict) -> list[str]:
@@ -177,18 +195,25 @@ def _results_lines(portfolio: dict) -> list[str]:
 DEFICIT_LEVEL = 0.05
 
 
-def deficit_sentence(deficit: dict) -> str:
-    """What a shortfall of significant results says, in words."""
+def deficit_sentence(deficit: dict, basis: str = "planned") -> str:
+    """What a shortfall of significant results says, in words (``basis``: the effects the
+    powers were computed at, ``planned`` or ``pooled``)."""
     counts = (
         f"{_plural(deficit['observed'], 'significant result')} against "
         f"{deficit['expected']:.1f} expected; P(this few or fewer) = "
         f"{format_number(deficit['p_value'])}"
     )
     if deficit["p_value"] < DEFICIT_LEVEL:
+        why = (
+            "the pooled effect overstates what these studies could see (a pooled estimate "
+            "inflated by the largest or most selected results), or significant results went "
+            "unreported"
+            if basis == "pooled"
+            else "the planned effects look optimistic for these studies, or significant "
+            "results went unreported"
+        )
         return (
-            f"far fewer results are significant than the studies' powers predict ({counts}): "
-            "the planned effects look optimistic for these studies, or significant results "
-            "went unreported"
+            f"far fewer results are significant than the studies' powers predict ({counts}): " + why
         )
     return f"fewer results are significant than predicted ({counts}), within chance"
 
@@ -205,8 +230,11 @@ def key_numbers(result: AuditResult, pos: int) -> list[str]:
     target = result.table["target_power"].iat[pos]
     out = []
     power = m.get("power_at_planned_effect", np.nan)
+    pooled = m.get("power_at_pooled_effect", np.nan)
     if math.isfinite(power):
         out.append(f"power {power:.2f} (target {target:.2f})")
+    elif math.isfinite(pooled):
+        out.append(f"power {pooled:.2f} at the family's pooled effect")
     sesoi_power = m.get("power_at_sesoi", np.nan)
     if math.isfinite(sesoi_power):
         out.append(f"at SESOI {sesoi_power:.2f}")
@@ -257,7 +285,13 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
         else:
             state = "active"
         rule_counts.append(
-            RuleCount(rule.id, rule.severity, int(studies_per_rule.get(rule.id, 0)), state)
+            RuleCount(
+                rule.id,
+                rule.severity,
+                int(studies_per_rule.get(rule.id, 0)),
+                state,
+                result.rules_judged.get(rule.id),
+            )
         )
 
     n = len(table)
@@ -344,7 +378,88 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
         ],
         results_lines=_results_lines(p),
         input_notes=[str(n) for n in result.settings.get("input_notes", [])],
+        basis_line=_basis_line(p),
+        reference_line=_reference_line(p),
+        families=_family_lines(p),
     )
+
+
+def _basis_line(portfolio: dict) -> str | None:
+    """The power distribution that falls back on the pooled or a reference effect, in words
+    (only where some study has no planned effect)."""
+    spread = portfolio.get("power_distribution_by_basis")
+    if not spread or not spread.get("quartiles"):
+        return None
+    counts = spread["basis_counts"]
+    if not counts.get("pooled") and not counts.get("reference"):
+        return None
+    q1, med, q3 = spread["quartiles"]
+    parts = [f"{counts['planned']:,} at the planned effect"]
+    if counts.get("pooled"):
+        parts.append(f"{counts['pooled']:,} at their family's pooled effect")
+    if counts.get("reference"):
+        parts.append(
+            f"{counts['reference']:,} at the reference effect {spread['reference_effect']}"
+        )
+    return (
+        f"with the pooled or a reference effect where a study has no planned effect: median "
+        f"{med:.2f}, middle half {q1:.2f} – {q3:.2f} over {spread['studies']:,} studies "
+        f"({', '.join(parts)})"
+    )
+
+
+def _reference_line(portfolio: dict) -> str | None:
+    medians = portfolio.get("median_reference_power") or {}
+    shown = [f"{k}: {v:.2f}" for k, v in medians.items() if v is not None]
+    if not shown:
+        return None
+    return (
+        "median design-based power at the reference effects (each design's standardized unit): "
+        + " · ".join(shown)
+    )
+
+
+def _family_lines(portfolio: dict) -> list[FamilyLine]:
+    out = []
+    for name, f in (portfolio.get("families") or {}).items():
+        pooled = "-"
+        if f["pooled_estimate"] is not None:
+            pooled = f"{format_number(f['pooled_estimate'])} ± {format_number(f['pooled_se'])}"
+        power = f["median_power_at_pooled_effect"]
+        refs = [
+            "-" if v is None else f"{v:.2f}"
+            for v in (f.get("median_reference_power") or {}).values()
+        ]
+        remarks = []
+        if f["not_pooled"]:
+            remarks.append(f"not pooled: {f['not_pooled']}")
+        if f["pooling"] == "random" and f["tau2"] is not None:
+            remarks.append(
+                f"between-study variance tau² = {format_number(f['tau2'])} "
+                f"({f['results_pooled']} results pooled)"
+            )
+        excess = f.get("excess_significance")
+        if excess:
+            remarks.append(
+                f"excess significance: {_plural(excess['observed'], 'significant result')} "
+                f"observed, {excess['expected']:.1f} expected at the pooled effect; one-sided "
+                f"p = {format_number(excess['p_value'])}"
+            )
+            if excess.get("deficit"):
+                remarks.append(deficit_sentence(excess["deficit"], basis="pooled"))
+        out.append(
+            FamilyLine(
+                name=name,
+                studies=int(f["studies"]),
+                pooled=pooled,
+                scale=f["scale"] or "-",
+                median_power="-" if power is None else f"{power:.2f}",
+                reference="/".join(refs) or "-",
+                remarks=remarks,
+                tested=excess is not None,
+            )
+        )
+    return out
 
 
 # -- rendering ------------------------------------------------------------------------------------
@@ -428,6 +543,10 @@ def _render_portfolio(view: Overview, console: Console) -> None:
             bar = "█" * math.ceil(_BAR_WIDTH * count / top) if count else ""
             bands.add_row(label, f"{count:,}", Text(bar, style="audit.bar"))
         console.print(Padding(bands, (0, 0, 0, 3)))
+    if view.basis_line:
+        console.print(Padding(view.basis_line, (0, 1, 0, 3)))
+    if view.reference_line:
+        console.print(Padding(view.reference_line, (0, 1, 0, 3)))
     console.print()
     _subheading(console, "Standardized MDE", "at the target power, in each design's standard units")
     if view.mde_rows:
@@ -462,13 +581,26 @@ def _render_portfolio(view: Overview, console: Console) -> None:
     counts.add_column("rule", no_wrap=True)
     counts.add_column("severity", no_wrap=True)
     counts.add_column("studies", justify="right", no_wrap=True)
+    counts.add_column("judged", justify="right", no_wrap=True)
     for rc in view.rule_counts:
         if rc.state == "active":
             cell = Text(f"{rc.studies:,}")
+            judged = Text("" if rc.judged is None else f"{rc.judged:,}")
         else:
             cell = Text(rc.state.split(" ")[0], style="audit.waiting")
-        counts.add_row(rc.rule, _severity(rc.severity), cell)
+            judged = Text("")
+        counts.add_row(rc.rule, _severity(rc.severity), cell, judged)
     console.print(Padding(counts, (0, 0, 0, 3)))
+    console.print(
+        Padding(
+            Text(
+                "judged: audited studies on which the rule's condition could be decided (the "
+                "others lack a value it needs, such as a planned effect or a SESOI)",
+                "audit.muted",
+            ),
+            (0, 1, 0, 3),
+        )
+    )
     waiting = [rc for rc in view.rule_counts if rc.state.startswith("waiting")]
     if waiting:
         needs = "; ".join(
@@ -486,6 +618,72 @@ def _render_portfolio(view: Overview, console: Console) -> None:
     console.print(
         Padding(Text(f"audited studies by their most severe finding: {worst}"), (0, 1, 0, 3))
     )
+
+
+def _render_families(view: Overview, console: Console, references: str) -> None:
+    """The outcome families: each one's pooled estimate (± its SE, on its analysis scale), the
+    median power of its studies at it and at the reference effects, and remarks (why a family
+    was not pooled, its own test of excess significance)."""
+    if not view.families:
+        return
+    _section(console, f"Outcome families ({len(view.families):,})")
+    shown = view.families[:MAX_LISTED]
+    if console.width < NARROW:
+        for f in shown:
+            pooled = (
+                f"pooled {f.pooled} ({f.scale}) · power at it {f.median_power}"
+                if f.pooled != "-"
+                else "not pooled"
+            )
+            line = Text.assemble(
+                (f.name, "audit.header"),
+                f" · {_plural(f.studies, 'study', 'studies')} · {pooled} · at {references} "
+                f"{f.reference}",
+            )
+            console.print(Padding(line, (0, 1, 0, 3)))
+    table = Table(box=None, padding=(0, 1), pad_edge=False, header_style="audit.label")
+    table.add_column("family", min_width=10, ratio=3)
+    table.add_column("studies", justify="right", no_wrap=True)
+    table.add_column("pooled", justify="right", no_wrap=True)
+    table.add_column("scale", min_width=10, ratio=3)
+    table.add_column("at pooled", justify="right", no_wrap=True)
+    table.add_column(f"at {references}", justify="right", no_wrap=True)
+    for f in shown:
+        table.add_row(f.name, f"{f.studies:,}", f.pooled, f.scale, f.median_power, f.reference)
+    if console.width >= NARROW:
+        console.print(Padding(table, (0, 0, 0, 3)))
+    if len(view.families) > len(shown):
+        console.print(
+            f"[audit.muted]   {len(view.families) - len(shown):,} more families are not listed; "
+            "the JSON export (portfolio.families) holds them all.[/]"
+        )
+    console.print(
+        Padding(
+            Text(
+                "pooled: estimate ± SE on the family's analysis scale; at pooled, at 0.2/...: "
+                "median design-based power of its studies at the pooled estimate and at the "
+                "reference effects (standardized units)",
+                "audit.muted",
+            ),
+            (0, 1, 0, 3),
+        )
+    )
+    for f in shown:
+        for remark in f.remarks:
+            line = Text.assemble((f.name, "audit.header"), f": {remark}")
+            console.print(Padding(line, (0, 1, 0, 3)))
+    untested = [f for f in view.families if not f.tested and f.median_power != "-"]
+    if untested:
+        console.print(
+            Padding(
+                Text(
+                    f"{_plural(len(untested), 'pooled family', 'pooled families')} not tested "
+                    "for excess significance: too few studies with both a result and a power",
+                    "audit.muted",
+                ),
+                (0, 1, 0, 3),
+            )
+        )
 
 
 def _render_flagged(view: Overview, console: Console) -> None:
@@ -618,6 +816,8 @@ def render_report(
     view = build_overview(result, limit=limit)
     _render_header(view, console, fail_on)
     _render_portfolio(view, console)
+    effects = result.settings.get("reference_effects") or []
+    _render_families(view, console, "/".join(f"{e:g}" for e in effects) or "reference")
     _render_problems(view, console)
     _render_flagged(view, console)
     _render_invalid(view, console)
@@ -792,7 +992,8 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
         _section(console, "Metrics")
         metrics = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
         metrics.add_column("metric", no_wrap=True)
-        # Long texts (a method's name) wrap within the column rather than squeeze the meanings.
+        # Long texts (a method's name, reported_p_recomputed_from) wrap within the column
+        # rather than squeeze the meanings.
         metrics.add_column("value", justify="right", max_width=24, overflow="fold")
         metrics.add_column("meaning")
         not_applicable = _not_applicable(result, pos)
@@ -800,7 +1001,7 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
             value = result.metrics[name].iat[pos]
             if name in not_applicable and not _cell(value):
                 continue  # defined for other designs only; the notes list them
-            metrics.add_row(name, _cell(value) or "-", meanings.get(name, ""))
+            metrics.add_row(name, _cell(value) or "-", meanings.get(name, _meaning(name)))
         console.print(Padding(metrics, (0, 0, 0, 1)))
 
         _section(console, "Findings")
@@ -833,6 +1034,17 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
             style="audit.muted",
         )
     )
+
+
+def _meaning(name: str) -> str:
+    """The meaning of a metric column not in :data:`METRICS` (power at a reference effect)."""
+    if name.startswith(REFERENCE_PREFIX):
+        effect = name.removeprefix(REFERENCE_PREFIX)
+        return (
+            f"design-based power of the realized design at the standardized effect {effect} "
+            "(in the design's standardized unit: d, d_z, h, r, f, f2 or log hazard ratio)"
+        )
+    return ""
 
 
 def _paragraph(text: str) -> str:

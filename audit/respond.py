@@ -17,6 +17,7 @@ import numpy as np
 
 from audit._format import format_number
 from audit.designs import Design, design_of
+from audit.designs.means import standardized_rows
 from audit.errors import ConfigError
 from audit.metrics import directed_mde, test_settings
 
@@ -241,14 +242,15 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
     target = float(row["target_power"])
     refs = ["hoenig"]
     paragraphs: list[str] = []
-    standardized = row.get("effect_scale") == "d" and name in (
+    # effect_scale = d, or a row with nothing in outcome units, which is read as d.
+    standardized = name in (
         "one_mean",
         "paired_means",
         "two_means",
         "cluster_two_means",
         "crossover",
         "stepped_wedge",
-    )
+    ) and bool(standardized_rows(result.table.iloc[[pos]])[0])
     units = UNIT_NOUNS.get(name, "analysable units")
     either = m.get("direction_used") == "either"
     sesoi_used = float(m.get("sesoi_used", np.nan))

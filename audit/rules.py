@@ -990,11 +990,14 @@ class Evaluation:
     findings : ``pos``, ``rule``, ``severity``, ``message``, ordered by row then rule.
     problems : ``rule``, ``severity``, ``problem``: rules that failed internally (the run went on).
     waiting : rule id -> the metric columns it needs that this run does not have.
+    judged : rule id -> audited rows on which its condition was known (true or false, not
+        unknown for want of a value): the rows the rule could judge.
     """
 
     findings: pd.DataFrame
     problems: pd.DataFrame
     waiting: dict[str, list[str]]
+    judged: dict[str, int] = field(default_factory=dict)
 
 
 def evaluate_rules(
@@ -1017,6 +1020,7 @@ def evaluate_rules(
     problems: list[dict[str, str]] = []
     waiting: dict[str, list[str]] = {}
     fired: dict[str, np.ndarray] = {}
+    judged: dict[str, int] = {}
     enabled = ruleset.enabled()
     for order, rule in enumerate(enabled):
         if on_rule is not None:
@@ -1027,8 +1031,9 @@ def evaluate_rules(
             continue
         try:
             params = rule.param_values()
-            true, _ = rule.when.evaluate(data, params)
+            true, false = rule.when.evaluate(data, params)
             pos = np.flatnonzero(true & valid)
+            known = int(((true | false) & valid).sum())
             values = {
                 name: (np.full(len(pos), params[name]) if name in params else data.raw(name)[pos])
                 for name in rule.message.names()
@@ -1058,6 +1063,7 @@ def evaluate_rules(
             )
             continue
         fired[rule.id] = pos
+        judged[rule.id] = known
         parts.append(
             pd.DataFrame(
                 {
@@ -1086,4 +1092,4 @@ def evaluate_rules(
     # one message), so that evaluations of parts of a table concatenate to that of the whole.
     findings = findings.astype({c: object for c in ("rule", "severity", "message")})
     problem_frame = pd.DataFrame(problems, columns=["rule", "severity", "problem"])
-    return Evaluation(findings, problem_frame, waiting)
+    return Evaluation(findings, problem_frame, waiting, judged)

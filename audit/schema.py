@@ -225,6 +225,41 @@ COLUMNS: tuple[Column, ...] = (
         high_open=False,
     ),
     Column(
+        "observed_statistic",
+        "number",
+        "results",
+        "A reported test statistic (its kind in statistic_type): t or z signed as the "
+        "difference group 2 - group 1; F and chi2 not negative; r within (-1, 1).",
+    ),
+    Column(
+        "statistic_type",
+        "choice",
+        "results",
+        "Kind of observed_statistic: t, z, F, chi2 or r.",
+        choices=("t", "z", "f", "chi2", "r"),
+    ),
+    Column(
+        "statistic_df1",
+        "number",
+        "results",
+        "Degrees of freedom of the statistic: t's df, or F's and chi2's first df (blank for "
+        "chi2: 1).",
+        low=1.0,
+        low_open=False,
+    ),
+    Column(
+        "statistic_df2",
+        "number",
+        "results",
+        "Second degrees of freedom of an F statistic (the error df).",
+        low=1.0,
+        low_open=False,
+    ),
+    Column("observed_mean1", "number", "results", "Observed mean of group 1 (control)."),
+    Column("observed_mean2", "number", "results", "Observed mean of group 2 (intervention)."),
+    Column("observed_sd1", "number", "results", "Observed SD of group 1.", low=0.0),
+    Column("observed_sd2", "number", "results", "Observed SD of group 2.", low=0.0),
+    Column(
         "outcome_family",
         "text",
         "results",

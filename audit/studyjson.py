@@ -171,6 +171,7 @@ def study_chunks(
         _encode_records(findings, ("rule", "severity", "message")),
     )
     names = list(result.metrics.columns)
+    grouped = _object_metrics(names)
     # Columns as plain arrays once (texts as objects, None where not computed), sliced per chunk.
     columns = {
         name: (
@@ -198,17 +199,60 @@ def study_chunks(
             (_key("error_details", False), error_details.lists(start, stop)),
             (_key("notes", False), note_texts.lists(start, stop)),
         ]
-        for j, name in enumerate(names):
-            column = columns[name][start:stop]
-            if column.dtype == object:
-                texts = encode_objects(column)
+        j = 0
+        for name in names:
+            if name in grouped.members:
+                if name != grouped.first:
+                    continue
+                # The object-valued metric, in the place of its first column.
+                key, texts = grouped.key, grouped.objects(columns, start, stop)
             else:
-                texts = encode_numbers(column, integer=name in INTEGER_METRICS)
-            prefix = _key(name, j == 0)
+                key = name
+                column = columns[name][start:stop]
+                if column.dtype == object:
+                    texts = encode_objects(column)
+                else:
+                    texts = encode_numbers(column, integer=name in INTEGER_METRICS)
+            prefix = _key(key, j == 0)
             pieces.append((b',"metrics":' + prefix if j == 0 else prefix, texts))
+            j += 1
         flags_key = (b"}" if names else b',"metrics":{}') + _key("flags", False)
         pieces.append((flags_key, flags.lists(start, stop)))
         yield b",".join(_rows(pieces, b"}"))
+
+
+class _ObjectMetric:
+    """Metric columns the JSON shows as one object: ``reference_power_0.2``,
+    ``reference_power_0.5``, ... become ``"reference_power": {"0.2": p, "0.5": p}`` (the
+    contract's shape; CSV and workbook keep one column each). This is the one place where the
+    JSON's metric objects are assembled."""
+
+    def __init__(self, names: list[str]) -> None:
+        from audit.metrics import REFERENCE_PREFIX, reference_columns
+
+        self.key = REFERENCE_PREFIX.rstrip("_")
+        self.parts = reference_columns(names)
+        self.members = {column for _, column in self.parts}
+        self.first = self.parts[0][1] if self.parts else None
+
+    def objects(self, columns: dict[str, np.ndarray], start: int, stop: int) -> np.ndarray:
+        pieces = [
+            (_key(k, i == 0), encode_numbers(columns[c][start:stop]))
+            for i, (k, c) in enumerate(self.parts)
+        ]
+        out = np.empty(stop - start, dtype=object)
+        out[:] = _rows(pieces, b"}")
+        # Not computed at all (an invalid row, a design without a standardized unit): null, as
+        # every other metric that is not computed.
+        known = np.zeros(stop - start, dtype=bool)
+        for _, column in self.parts:
+            known |= np.isfinite(columns[column][start:stop])
+        out[~known] = _NULL
+        return out
+
+
+def _object_metrics(names: list[str]) -> _ObjectMetric:
+    return _ObjectMetric(names)
 
 
 def _encode_records(frame: pd.DataFrame, keys: tuple[str, ...]) -> np.ndarray:

@@ -201,12 +201,16 @@ def _portfolio_sheet(wb: Workbook, result: AuditResult) -> None:
     items: list[tuple[str, Any]] = []
     _flatten("", result.to_dict()["portfolio"], items)
     for key, value in items:
+        # Keys can hold the user's text (outcome_family names): string cells, never formulas.
+        label = _text_cell(ws, key)
         if isinstance(value, float):
             cell = WriteOnlyCell(ws, value=value)
             cell.number_format = "0.000"
-            ws.append([key, cell])
+            ws.append([label, cell])
+        elif isinstance(value, str):
+            ws.append([label, _text_cell(ws, value)])
         else:
-            ws.append([key, "-" if value is None else value])
+            ws.append([label, "-" if value is None else value])
 
 
 def _rule_rows(result: AuditResult) -> list[list[str]]:

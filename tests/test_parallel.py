@@ -67,8 +67,8 @@ def test_the_child_really_computes(monkeypatch):
     real = metrics._design_metrics
     parent = os.getpid()
 
-    def wrong_in_child(design, rows, *rest):
-        out = real(design, rows, *rest)
+    def wrong_in_child(design, rows, positions, notes, *settings):
+        out = real(design, rows, positions, notes, *settings)
         if os.getpid() != parent:
             out["mde"] = np.full(len(rows), -1.0)
         return out
@@ -178,10 +178,13 @@ def _shared_and_alone(monkeypatch, source, **kwargs):
     return shared, alone
 
 
-def _demo_with_repeats() -> pd.DataFrame:
+def _demo_with_repeats(families: bool = True) -> pd.DataFrame:
     """The demo portfolio with trouble across the cut: ids used in both shares, a blank id, a
-    bad value, and a row of a design no other row has."""
+    bad value, and a row of a design no other row has. ``families=False``: without
+    outcome_family (the shares' JSON text is used only where no family is pooled over both)."""
     demo = pd.read_csv(DEMO, dtype=object, keep_default_na=False).iloc[:37]  # the 37 of 2025
+    if not families:
+        demo = demo.drop(columns="outcome_family")
     repeats = demo.iloc[[0, 1, 30]].copy()
     repeats.loc[repeats.index[0], "study_id"] = ""
     repeats.loc[repeats.index[1], "alpha"] = "five per cent"
@@ -261,13 +264,15 @@ def test_a_rule_failing_on_a_share_reports_as_in_one_process(shares, monkeypatch
     _frames_equal(shared, alone)
 
 
-@pytest.mark.parametrize("trouble", [None, "rule fails"])
+@pytest.mark.parametrize("trouble", [None, "rule fails", "families"])
 def test_json_of_a_table_audited_in_shares_is_the_same_document(
     shares, monkeypatch, tmp_path, trouble
 ):
+    # With outcome families the pooled estimates span both shares: their powers and notes are
+    # added after the merge, and the shares' JSON text (made before) is not used.
     monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
     rules = _rules_failing_on({24}) if trouble == "rule fails" else None
-    table = _demo_with_repeats()
+    table = _demo_with_repeats(families=trouble == "families")
     monkeypatch.setattr(parallel, "ENABLED", False)
     export.write_json(audit.audit_table(table, rules=rules), tmp_path / "alone.json")
     monkeypatch.setattr(parallel, "ENABLED", True)
@@ -298,7 +303,7 @@ def test_the_shares_json_text_is_what_gets_written(shares, monkeypatch, tmp_path
         out.write(text)
 
     monkeypatch.setattr(pipeline, "_write_studies", marked)
-    result = audit.audit_table(_demo_with_repeats(), prepare_json=True)
+    result = audit.audit_table(_demo_with_repeats(families=False), prepare_json=True)
     export.write_json(result, tmp_path / "marked.json")
     document = json.loads((tmp_path / "marked.json").read_bytes())
     statuses = [study["status"] for study in document["studies"]]
@@ -309,7 +314,7 @@ def test_the_shares_json_text_is_what_gets_written(shares, monkeypatch, tmp_path
 
 def test_no_room_for_the_parents_json_text_costs_time_not_output(shares, monkeypatch, tmp_path):
     monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
-    table = _demo_with_repeats()
+    table = _demo_with_repeats(families=False)
     monkeypatch.setattr(parallel, "ENABLED", False)
     export.write_json(audit.audit_table(table), tmp_path / "alone.json")
     monkeypatch.setattr(parallel, "ENABLED", True)

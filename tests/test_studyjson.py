@@ -51,9 +51,20 @@ def _plain_studies(result: audit.AuditResult) -> list[dict]:
     flags = per_row(result.findings, lambda f: {k: f[k] for k in ("rule", "severity", "message")})
     studies = []
     for i in range(len(result.table)):
-        metrics = {
-            name: number(name, result.metrics[name].iloc[i]) for name in result.metrics.columns
-        }
+        metrics = {}
+        for name in result.metrics.columns:
+            value = number(name, result.metrics[name].iloc[i])
+            if name.startswith("reference_power_"):
+                # The contract's object: {"0.2": p, "0.5": p, ...} (DESIGN.md section 9.3).
+                metrics.setdefault("reference_power", {})[name.removeprefix("reference_power_")] = (
+                    value
+                )
+            else:
+                metrics[name] = value
+        if "reference_power" in metrics and all(
+            v is None for v in metrics["reference_power"].values()
+        ):
+            metrics["reference_power"] = None  # not computed at all, like any other metric
         studies.append(
             {
                 "study_id": result.table["study_id"].iloc[i],

@@ -125,6 +125,11 @@ COMMON_INPUTS = frozenset(
         "observed_p",
         "reported_power",
         "outcome_family",
+        # A reported test statistic (audit/reported.py); arm means are read by mean designs.
+        "observed_statistic",
+        "statistic_type",
+        "statistic_df1",
+        "statistic_df2",
     }
 )
 
@@ -278,6 +283,18 @@ class Design:
             if mask.any():
                 out.append((self.with_measure(measure), mask))
         return out
+    #: Kinds of reported test statistic (``statistic_type``) the design reads.
+    statistic_types: ClassVar[frozenset[str]] = frozenset({"t", "z", "f", "chi2"})
+    #: True where the standard error on the analysis scale follows from the sizes alone (Fisher's
+    #: z): a reported statistic then gives the effect, never the SE.
+    se_from_sizes: ClassVar[bool] = False
+    #: How :meth:`effect_from_statistic` turns a statistic into an effect (for the notes).
+    statistic_rule: ClassVar[str] = ""
+    #: Label of the analysis scale for pooling (None: results of this design are not pooled).
+    scale_label: ClassVar[str | None] = None
+    #: True where the design's results are on whatever scale the row's SE is (the estimate
+    #: design): in a family they take the scale of the family's other results.
+    scale_follows_family: ClassVar[bool] = False
 
     # -- reading --------------------------------------------------------------------------------
 
@@ -338,8 +355,12 @@ class Design:
         return out
 
     def _checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str | np.ndarray]]:
-        """:meth:`check_rows` for rows of this variant only."""
-        out = []
+        """:meth:`check_rows` for rows of this variant only: a reported test statistic, the
+        direction and the columns the design would ignore to a wrong result, then the design's
+        own :meth:`row_checks`."""
+        from audit.reported import statistic_checks  # a late import: it imports us
+
+        out = list(statistic_checks(self, rows))
         if self.has_direction and "direction" in rows.columns:
             given = _directions(rows)
             sign = self.effect_sign(self.planned_effect(rows))
@@ -484,6 +505,49 @@ class Design:
         """Notes about values assumed where a row left a column blank: ``(mask, text)``."""
         return []
 
+    def analysis_scale(self, rows: pd.DataFrame) -> np.ndarray:
+        """Per row, the name of the analysis scale its results are on (:attr:`scale_label`);
+        results are pooled only with results on a scale of the same name."""
+        return np.full(len(rows), self.scale_label, dtype=object)
+
+    # -- results as reported (audit/reported.py) -------------------------------------------------
+
+    def effect_from_statistic(
+        self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """The effect on the analysis scale, and its SE, that a reported test statistic implies.
+
+        ``statistic`` is a signed t (``df`` finite) or z (``df`` infinite) of the study's
+        comparison, positive for group 2 above group 1; ``sc`` is the realized design. nan
+        where the design cannot tell (this default: designs opt in).
+        """
+        nan = np.full(np.shape(statistic), np.nan)
+        return nan, nan.copy()
+
+    def _statistic_times_se(self, sc: Scenario, statistic: np.ndarray) -> tuple[np.ndarray, ...]:
+        """``effect = statistic x SE`` with the design's SE, for designs whose SE does not depend
+        on the effect: the test statistic is the estimate over that SE."""
+        se = self.se(sc, None)
+        with np.errstate(invalid="ignore"):
+            return np.asarray(statistic, dtype=float) * se, se
+
+    def effect_from_means(
+        self, rows: pd.DataFrame, sc: Scenario
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The effect on the analysis scale, its test's SE and df, from reported arm means and
+        SDs (``observed_mean1/2``, ``observed_sd1/2``); nan where the design reads none."""
+        nan = np.full(len(rows), np.nan)
+        return nan, nan.copy(), nan.copy()
+
+    def at_standardized(
+        self, sc: Scenario, magnitude: np.ndarray, direction: np.ndarray
+    ) -> tuple[Scenario, np.ndarray]:
+        """A scenario and an effect (effect units) for a standardized effect of ``magnitude``
+        (in :attr:`standardized_as` units) pointed in ``direction``, so that
+        ``power(*at_standardized(...), test)`` is the power at that standardized effect. nan
+        effects where the design has no standardized unit (this default)."""
+        return sc, np.full(np.shape(direction), np.nan)
+
     # -- maths ----------------------------------------------------------------------------------
 
     def total_size(self, sc: Scenario) -> np.ndarray:
@@ -544,9 +608,25 @@ class TDesign(Design):
     """
 
     standardized_as = "d"
+    statistic_rule = (
+        "effect = the statistic as a t (an F on 1 df: its square root) x the standard error of "
+        "the realized design (with its SD, or in SD units where effects are standardized)"
+    )
 
     def sd(self, sc: Scenario) -> np.ndarray:
         raise NotImplementedError
+
+    def effect_from_statistic(
+        self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        return self._statistic_times_se(sc, statistic)
+
+    def at_standardized(
+        self, sc: Scenario, magnitude: np.ndarray, direction: np.ndarray
+    ) -> tuple[Scenario, np.ndarray]:
+        # In SD units the SD is 1, so power at a standardized effect needs no SD at all.
+        direction = np.asarray(direction, dtype=float)
+        return {**sc, "sd": np.ones(direction.shape)}, direction * np.abs(magnitude)
 
     def df(self, sc: Scenario) -> np.ndarray:
         raise NotImplementedError

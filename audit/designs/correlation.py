@@ -49,6 +49,29 @@ class Correlation(Design):
     stage_keys = ("n1",)
     size_keys = ("n1",)
     one_group = True
+    statistic_types = frozenset({"t", "z", "f", "r"})
+    se_from_sizes = True
+    statistic_rule = "r = t / sqrt(t^2 + df) for a t; atanh r = z / sqrt(n - 3) for a z"
+    scale_label = "Fisher z"
+
+    def effect_from_statistic(
+        self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Fisher's z of r from the t test of r (``r = t / sqrt(t^2 + df)``, exact) or from the
+        z test on Fisher's scale (``atanh r = z / sqrt(n - 3)``); SE ``1 / sqrt(n - 3)``."""
+        se = self.se(sc)
+        t = np.asarray(statistic, dtype=float)
+        df = np.broadcast_to(np.asarray(df, dtype=float), t.shape)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            from_t = np.arctanh(t / np.sqrt(t * t + df))
+            effect = np.where(np.isfinite(df), from_t, t * se)
+        return effect, se
+
+    def at_standardized(
+        self, sc: Scenario, magnitude: np.ndarray, direction: np.ndarray
+    ) -> tuple[Scenario, np.ndarray]:
+        direction = np.asarray(direction, dtype=float)
+        return sc, direction * np.abs(magnitude)
 
     def to_analysis(self, effect: np.ndarray) -> np.ndarray:
         with np.errstate(divide="ignore", invalid="ignore"):

@@ -37,6 +37,10 @@ class Estimate(Design):
     stage_keys = ("se",)
     shared_keys = ("df",)
     size_keys = ()
+    statistic_types = frozenset({"t", "z", "f", "chi2"})
+    statistic_rule = "effect = statistic x realized_se"
+    scale_label = "the estimate's own scale"
+    scale_follows_family = True
     not_applicable: ClassVar[dict[str, str]] = {
         "mde_std": "the estimate design has no standardized scale",
         "n_required_plan": "the estimate design has no sample size",
@@ -52,6 +56,11 @@ class Estimate(Design):
 
     def analysis_df(self, sc: Scenario) -> np.ndarray:
         return sc["df"]
+
+    def effect_from_statistic(
+        self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        return self._statistic_times_se(sc, statistic)
 
     def total_size(self, sc: Scenario) -> np.ndarray:
         return np.full(len(sc["se"]), np.nan)

@@ -20,13 +20,51 @@ import pandas as pd
 
 from audit.designs._base import Scenario, TDesign, _column, allocation_ratio
 
-__all__ = ["OneMean", "PairedMeans", "TwoMeans"]
+__all__ = ["OneMean", "PairedMeans", "TwoMeans", "standardized_rows"]
+
+
+#: Columns that hold values in outcome units (or SDs of them) on a mean design's row.
+OUTCOME_UNIT_COLUMNS = (
+    "planned_sd",
+    "realized_sd",
+    "planned_effect",
+    "sesoi",
+    "observed_effect",
+    "observed_se",
+    "observed_ci_low",
+    "observed_ci_high",
+    "observed_mean1",
+    "observed_mean2",
+    "observed_sd1",
+    "observed_sd2",
+)
+
+#: Arm means and SDs, read by the designs that compare two groups (paired: the two means).
+ARM_COLUMNS = ("observed_mean1", "observed_mean2", "observed_sd1", "observed_sd2")
 
 
 def _standardized_rows(rows: pd.DataFrame) -> np.ndarray:
-    if "effect_scale" not in rows.columns:
-        return np.zeros(len(rows), dtype=bool)
-    return (rows["effect_scale"] == "d").to_numpy(dtype=bool, na_value=False)
+    """Rows whose effects are standardized: ``effect_scale = d``, or nothing in outcome units."""
+    declared = np.zeros(len(rows), dtype=bool)
+    if "effect_scale" in rows.columns:
+        declared = (rows["effect_scale"] == "d").to_numpy(dtype=bool, na_value=False)
+    return declared | _read_as_d(rows, declared)
+
+
+#: Public name: which rows of a mean design have standardized effects (d, d_z).
+standardized_rows = _standardized_rows
+
+
+def _read_as_d(rows: pd.DataFrame, declared: np.ndarray) -> np.ndarray:
+    """Rows left on the raw scale that give nothing in outcome units (no SD, effect, SESOI,
+    estimate, interval or arm means; a study known only by its sizes, test statistic or p).
+    Their only unit is the SD, so they are read as ``effect_scale = d``: their MDE, result and
+    pooled effects come out as standardized mean differences (a note says so)."""
+    nothing = ~declared
+    for column in OUTCOME_UNIT_COLUMNS:
+        if column in rows.columns:
+            nothing &= np.isnan(_column(rows, column))
+    return nothing
 
 
 class _MeanDesign(TDesign):
@@ -36,6 +74,13 @@ class _MeanDesign(TDesign):
     extra_inputs = ("effect_scale",)
     ratio_keys: ClassVar[dict[str, tuple[str, str]]] = {"sd_ratio": ("planned_sd", "realized_sd")}
     nuisance_keys = ("sd",)
+    #: Names of the analysis scale on the raw and on the standardized scale (for pooling).
+    raw_scale: ClassVar[str] = "mean difference (outcome units)"
+    std_scale: ClassVar[str] = "d"
+
+    def analysis_scale(self, rows: pd.DataFrame) -> np.ndarray:
+        std = _standardized_rows(rows)
+        return np.where(std, self.std_scale, self.raw_scale).astype(object)
 
     def scenario(self, rows: pd.DataFrame, stage: str) -> Scenario:
         sc = super().scenario(rows, stage)
@@ -59,11 +104,20 @@ class _MeanDesign(TDesign):
         real = _column(rows, "realized_sd")
         plan = _column(rows, "planned_sd")
         raw = ~_standardized_rows(rows)
+        declared = np.zeros(len(rows), dtype=bool)
+        if "effect_scale" in rows.columns:
+            declared = (rows["effect_scale"] == "d").to_numpy(dtype=bool, na_value=False)
         return [
             (
                 raw & np.isnan(real) & ~np.isnan(plan),
                 "realized_sd not reported: the planned SD is used for the realized design",
-            )
+            ),
+            (
+                _read_as_d(rows, declared),
+                "effect_scale read as d: the row gives nothing in outcome units (no SD, effect, "
+                "SESOI, estimate, interval or arm means), so its MDE and any result derived from "
+                "a test statistic are standardized mean differences",
+            ),
         ]
 
 
@@ -108,6 +162,8 @@ class OneMean(_OneGroup):
     title = "one mean against a fixed value (one-sample t test)"
     effect_unit = "difference from the null value (outcome units, or d)"
     standardized_as = "d"
+    raw_scale = "difference from the null value (outcome units)"
+    std_scale = "d (one sample)"
 
 
 class PairedMeans(_OneGroup):
@@ -122,6 +178,26 @@ class PairedMeans(_OneGroup):
     title = "paired means (t test on within-pair differences)"
     effect_unit = "mean within-pair difference (outcome units, or d_z)"
     standardized_as = "d_z"
+    std_scale = "d_z"
+    # The two means; their SDs do not give the SD of the differences (that needs the
+    # correlation), so observed_sd1/2 are not read (a note names them where given).
+    extra_inputs = ("effect_scale", "observed_mean1", "observed_mean2")
+
+    def effect_from_means(
+        self, rows: pd.DataFrame, sc: Scenario
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``mean2 - mean1`` with SE ``realized_sd / sqrt(n)`` (``realized_sd`` is the SD of the
+        within-pair differences); standardized: ``d_z = (mean2 - mean1) / realized_sd``."""
+        diff = _column(rows, "observed_mean2") - _column(rows, "observed_mean1")
+        sd_diff = _column(rows, "realized_sd")
+        n = sc["n1"]
+        std = _standardized_rows(rows)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            se = sd_diff / np.sqrt(n)
+            effect = np.where(std, diff / sd_diff, diff)
+            se = np.where(std, 1.0 / np.sqrt(n), se)
+        se = np.where(np.isfinite(sd_diff) & (sd_diff > 0), se, np.nan)
+        return effect, se, n - 1.0
 
 
 class _TwoGroups(_MeanDesign):
@@ -130,8 +206,37 @@ class _TwoGroups(_MeanDesign):
     Subclasses give ``df_spent``: n1 + n2 minus the test's df.
     """
 
+    extra_inputs = ("effect_scale", *ARM_COLUMNS)
+    # A point-biserial r is the two-sample t in other words: t = r sqrt(N - 2) / sqrt(1 - r^2).
+    statistic_types = frozenset({"t", "z", "f", "chi2", "r"})
+
     def df_spent(self, sc: Scenario) -> np.ndarray:
         raise NotImplementedError
+
+    def unadjusted(self, sc: Scenario) -> Scenario:
+        """The scenario of the comparison arm means describe (no covariate adjustment)."""
+        return sc
+
+    def effect_from_means(
+        self, rows: pd.DataFrame, sc: Scenario
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``mean2 - mean1`` and the SE of the unadjusted t test with the pooled SD
+        ``sqrt(((n1 - 1) sd1^2 + (n2 - 1) sd2^2) / (n1 + n2 - 2))`` (Borenstein et al. 2009,
+        eq. 4.3); standardized: ``d = (mean2 - mean1) / pooled SD`` with the t test's SE in SD
+        units. Sizes are the realized ones (units, or clusters with the design effect)."""
+        m1, m2 = _column(rows, "observed_mean1"), _column(rows, "observed_mean2")
+        s1, s2 = _column(rows, "observed_sd1"), _column(rows, "observed_sd2")
+        n1, n2 = sc["n1"], sc["n2"]
+        std = _standardized_rows(rows)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            pooled = np.sqrt(((n1 - 1.0) * s1**2 + (n2 - 1.0) * s2**2) / (n1 + n2 - 2.0))
+            pooled = np.where(pooled > 0, pooled, np.nan)
+            comparison = self.unadjusted({**sc, "sd": pooled})
+            se = self.se(comparison)
+            diff = m2 - m1
+            effect = np.where(std, diff / pooled, diff)
+            se = np.where(std, se / pooled, se)
+        return effect, se, self.df(comparison)
 
     def min_n1(self, sc: Scenario) -> np.ndarray:
         # At least one degree of freedom and one unit (or cluster) per group.
@@ -197,6 +302,10 @@ class TwoMeans(_TwoGroups):
 
     def df_spent(self, sc: Scenario) -> np.ndarray:
         return 2.0 + sc["covariates"]
+
+    def unadjusted(self, sc: Scenario) -> Scenario:
+        zero = np.zeros(len(sc["n1"]))
+        return {**sc, "covariates": zero, "covariate_r2": zero}
 
     def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         q = _column(rows, "covariates")

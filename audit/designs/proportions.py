@@ -232,6 +232,13 @@ class TwoProportions(Design):
     # The variance of a risk difference depends on where it lies: detecting a rise from p1 is
     # not as hard as detecting a fall of the same size.
     symmetric = False
+    # The z test of the design (chi2 on 1 df is its square).
+    statistic_types = frozenset({"z", "chi2"})
+    statistic_rule = (
+        "the risk difference whose z test (variance pooled under H0, continuity correction "
+        "as the row says) from realized_p1 and the realized group sizes equals the statistic"
+    )
+    scale_label = "risk difference"
 
     def __init__(self, measure: str = "risk_difference") -> None:
         if measure not in MEASURES:
@@ -523,6 +530,51 @@ class TwoProportions(Design):
     def standardize(self, sc: Scenario, effect: np.ndarray) -> np.ndarray:
         """Cohen's h between ``p1`` and the ``p2`` the effect implies (whatever the measure)."""
         return cohens_h(sc["p1"], self.intervention_rate(sc["p1"], effect))
+
+    def at_standardized(
+        self, sc: Scenario, magnitude: np.ndarray, direction: np.ndarray
+    ) -> tuple[Scenario, np.ndarray]:
+        """The risk difference from ``p1`` whose Cohen's h is ``direction x magnitude``:
+        ``p2 = sin^2(asin(sqrt(p1)) + h / 2)``; nan where that leaves [0, 1]."""
+        direction = np.asarray(direction, dtype=float)
+        with np.errstate(invalid="ignore"):
+            angle = np.arcsin(np.sqrt(sc["p1"])) + direction * np.abs(magnitude) / 2.0
+            p2 = np.sin(angle) ** 2
+        inside = (angle >= 0) & (angle <= np.pi / 2)
+        return sc, np.where(inside, p2 - sc["p1"], np.nan)
+
+    def effect_from_statistic(
+        self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """The risk difference ``D`` whose z statistic equals the one reported, and ``|D| / |z|``.
+
+        With ``w2 = n2 / (n1 + n2)``, ``k = 1/n1 + 1/n2``, the pooled proportion is
+        ``p1 + w2 D`` and the statistic ``z = (|D| - h) / sqrt(pbar (1 - pbar) k)`` (``h`` the
+        continuity correction, 0 without), so ``u = |D|`` solves the quadratic
+        ``(1 + c w2^2) u^2 - (2h + c w2 s (1 - 2 p1)) u + h^2 - c p1 (1 - p1) = 0`` with
+        ``c = z^2 k`` and ``s`` the sign of z; its larger root is the one (at least ``h``).
+        Needs the observed control rate ``realized_p1`` (the planned one would give a wrong
+        result). The SE is the one the test implies, so that the interval is dual to it.
+        """
+        z = np.asarray(statistic, dtype=float)
+        p1 = _column(rows, "realized_p1")
+        n1, n2 = sc["n1"], sc["n2"]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            k = 1.0 / n1 + 1.0 / n2
+            w2 = n2 / (n1 + n2)
+            h = np.where(sc["continuity_correction"] > 0, 0.5 * k, 0.0)
+            sign = np.sign(z)
+            c = z * z * k
+            a = 1.0 + c * w2 * w2
+            b = -(2.0 * h + c * w2 * sign * (1.0 - 2.0 * p1))
+            cc = h * h - c * p1 * (1.0 - p1)
+            u = (-b + np.sqrt(b * b - 4.0 * a * cc)) / (2.0 * a)
+            u = np.where(z == 0, 0.0, u)
+            effect = sign * u
+            p2 = p1 + effect
+            se = np.where(z != 0, u / np.abs(z), np.sqrt(p1 * (1.0 - p1) * k))
+        ok = np.isfinite(effect) & (p2 >= 0) & (p2 <= 1) & (u >= h)
+        return np.where(ok, effect, np.nan), np.where(ok, se, np.nan)
 
     def required_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:
         """Smallest total size reaching the target power, allocation kept, groups rounded up.

@@ -78,6 +78,22 @@ class Survival(Design):
     ratio_keys: ClassVar[dict[str, tuple[str, str]]] = {
         "events_ratio": ("planned_events", "realized_events"),
     }
+    # A Cox model's Wald z or a log-rank z (chi2 on 1 df is its square).
+    statistic_types = frozenset({"z", "chi2"})
+    statistic_rule = "log HR = z x Schoenfeld's SE 1 / sqrt(D p (1 - p)) at the realized events"
+    scale_label = "log hazard ratio"
+
+    def effect_from_statistic(
+        self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        return self._statistic_times_se(sc, statistic)
+
+    def at_standardized(
+        self, sc: Scenario, magnitude: np.ndarray, direction: np.ndarray
+    ) -> tuple[Scenario, np.ndarray]:
+        # The standardized unit is the log hazard ratio.
+        direction = np.asarray(direction, dtype=float)
+        return sc, np.exp(direction * np.abs(magnitude))
 
     is_ratio = True
     noun = "hazard ratio"

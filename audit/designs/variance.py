@@ -51,11 +51,14 @@ class _FDesign(Design):
     size_keys = ("n1",)
     has_direction = False
     one_group = True
+    # Only the p-value of a reported statistic is used (an omnibus test has no signed effect).
+    statistic_types = frozenset({"f", "chi2", "t", "z"})
     not_applicable: ClassVar[dict[str, str]] = {
         "direction_used": "an F test has no direction (effects are magnitudes)",
         "se_plan": _NO_SE,
         "se_realized": _NO_SE,
         "precision_ratio": _NO_SE,
+        "power_at_pooled_effect": "an omnibus F test has no signed effect to pool",
     }
 
     def f2(self, effect: np.ndarray) -> np.ndarray:
@@ -111,6 +114,12 @@ class _FDesign(Design):
 
     def standardize(self, sc: Scenario, effect: np.ndarray) -> np.ndarray:
         return np.asarray(effect, dtype=float)
+
+    def at_standardized(
+        self, sc: Scenario, magnitude: np.ndarray, direction: np.ndarray
+    ) -> tuple[Scenario, np.ndarray]:
+        # The standardized unit is the effect unit (f, or f^2); effects are magnitudes.
+        return sc, np.broadcast_to(np.abs(magnitude), np.shape(direction)).astype(float)
 
     def round_total(self, sc: Scenario, total: np.ndarray) -> np.ndarray:
         return np.ceil(total)
