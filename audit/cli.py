@@ -22,7 +22,7 @@ from audit import __version__
 from audit.errors import AuditError, ConfigError
 
 if TYPE_CHECKING:
-    from audit.pipeline import AuditResult
+    from audit.result import AuditResult
 
 __all__ = ["main"]
 
@@ -224,13 +224,18 @@ def _analysis(args: argparse.Namespace) -> dict[str, Any]:
 
 
 def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
-    from audit.export import write_csv, write_json
+    from audit.export import refuse_overwrite, write_csv, write_json
     from audit.pipeline import STAGES, audit_file
     from audit.report import make_console, render_report, render_study, study_ids_hint
     from audit.rules import load_rules
 
-    # The rules are checked before the (possibly long) read, so a typo fails at once.
+    # The rules are checked before the (possibly long) read, so a typo fails at once; so is
+    # an output that would replace a file the run reads.
     ruleset = load_rules(run.rule_files)
+    reads = [("the input file", run.path), *(("a rules file", f) for f in run.rule_files)]
+    for target in (run.json_out, run.csv_out, run.xlsx_out, run.report_out):
+        if target is not None:
+            refuse_overwrite(target, reads)
     to_stdout = "-" in (run.json_out, run.csv_out)
     exports = [
         ("writing JSON", run.json_out),
@@ -245,13 +250,8 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
             sheet=run.sheet,
             rules=ruleset,
             progress=progress,
-            prepare_json=bool(run.json_out),
             **run.analysis,
         )
-        report_text = None
-        if not run.quiet and run.study is None and result.prepared_studies is not None:
-            # The report is rendered while a child still encodes JSON; shown after the exports.
-            report_text = _rendered_report(result, to_stdout, run.fail_on)
         positions: list[int] = []
         if run.study is not None:
             positions = result.positions_of(run.study)
@@ -295,24 +295,11 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
             render_report(result, plain, fail_on=run.fail_on)
     if not run.quiet:
         console = make_console(stderr=to_stdout)
-        if report_text is not None:
-            console.file.write(report_text)
-            console.file.flush()
-        elif run.study is not None:
+        if run.study is not None:
             render_study(result, console, positions)
         else:
             render_report(result, console, fail_on=run.fail_on)
     return exit_status(result, run.fail_on), result
-
-
-def _rendered_report(result: AuditResult, to_stdout: bool, fail_on: str | None) -> str:
-    """The terminal report as the console would print it (styles included), not yet shown."""
-    from audit.report import make_console, render_report
-
-    console = make_console(stderr=to_stdout)
-    with console.capture() as capture:
-        render_report(result, console, fail_on=fail_on)
-    return capture.get()
 
 
 class _NoProgress:
@@ -436,10 +423,12 @@ def _template(args: argparse.Namespace) -> int:
 
 
 def _respond(args: argparse.Namespace) -> int:
-    from audit.export import atomic_output
+    from audit.export import atomic_output, refuse_overwrite
     from audit.pipeline import audit_file
     from audit.respond import respond_text
 
+    if args.out is not None:
+        refuse_overwrite(args.out, [("the input file", args.file)])
     result = audit_file(args.file, sheet=args.sheet, **_analysis(args))
     text = respond_text(result, args.study_id, effect=args.effect)
     if args.out is None:

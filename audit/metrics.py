@@ -7,14 +7,12 @@ left blank, or the condition that makes it undefined. Rows are processed one *de
 
 from __future__ import annotations
 
-import pickle
 from dataclasses import dataclass
-from typing import IO
 
 import numpy as np
 import pandas as pd
 
-from audit import parallel, retro
+from audit import retro
 from audit.designs import DESIGNS, Design, Scenario, TestSpec
 
 __all__ = ["METRICS", "compute_metrics", "test_settings"]
@@ -166,7 +164,9 @@ class _Notes:
     def frame(self) -> pd.DataFrame:
         if not self.pos:
             return pd.DataFrame({"pos": np.empty(0, dtype=int), "text": np.empty(0, dtype=object)})
-        return pd.DataFrame({"pos": np.concatenate(self.pos), "text": np.concatenate(self.text)})
+        # An object column: pandas would otherwise convert every text to its string type.
+        text = pd.Series(np.concatenate(self.text), dtype=object)
+        return pd.DataFrame({"pos": np.concatenate(self.pos), "text": text})
 
 
 def _missing_labels(parts: list[tuple[np.ndarray, str]], size: int) -> np.ndarray:
@@ -251,51 +251,15 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
     return MetricTable(values, notes.frame())
 
 
-#: From this many rows the metrics are computed by two processes (audit.parallel).
-PARALLEL_METRICS_MIN = 20_000
-
-
 def _group_metrics(
     table: pd.DataFrame, groups: list[tuple[Design, np.ndarray]]
 ) -> list[tuple[dict[str, np.ndarray], _Notes]]:
-    """Metrics and notes of each group of rows (rows of one design), in the order given.
-
-    For a large portfolio every group is cut in two: a forked child computes the second parts
-    while this process computes the first ones (so both do about half of every design's work),
-    and the child sends its results back pickled; if it fails, its parts are computed here.
-    """
-
-    def compute(parts: list[tuple[Design, np.ndarray]]) -> list[tuple[dict, _Notes]]:
-        out = []
-        for design, positions in parts:
-            notes = _Notes()
-            out.append((_design_metrics(design, table.iloc[positions], positions, notes), notes))
-        return out
-
-    if sum(len(p) for _, p in groups) < PARALLEL_METRICS_MIN or not parallel.can_fork():
-        return compute(groups)
-    first = [(design, positions[: len(positions) // 2]) for design, positions in groups]
-    second = [(design, positions[len(positions) // 2 :]) for design, positions in groups]
-
-    def child(out: IO[bytes]) -> None:
-        pickle.dump(compute(second), out, protocol=pickle.HIGHEST_PROTOCOL)
-
-    with parallel.ChildTask(child) as task:
-        mine = compute(first)
-        found = task.result()
-        theirs = pickle.load(found) if found is not None else compute(second)
-    merged = []
-    for (_, positions), (a, notes_a), (b, notes_b) in zip(groups, mine, theirs, strict=True):
-        cut = len(positions) // 2
-        computed = {}
-        for metric in a:
-            column = np.empty(len(positions), dtype=np.result_type(a[metric], b[metric]))
-            column[:cut], column[cut:] = a[metric], b[metric]
-            computed[metric] = column
+    """Metrics and notes of each group of rows (rows of one design), in the order given."""
+    out = []
+    for design, positions in groups:
         notes = _Notes()
-        notes.pos, notes.text = notes_a.pos + notes_b.pos, notes_a.text + notes_b.text
-        merged.append((computed, notes))
-    return merged
+        out.append((_design_metrics(design, table.iloc[positions], positions, notes), notes))
+    return out
 
 
 def _design_metrics(

@@ -8,28 +8,21 @@
 
 from __future__ import annotations
 
-import contextlib
-import dataclasses
-import math
-import pickle
-import tempfile
-import weakref
-from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from collections.abc import Callable
 from pathlib import Path
-from typing import IO, Any
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from audit import parallel
 from audit.caveats import caveats
 from audit.errors import ConfigError
 from audit.metrics import METRICS, compute_metrics
 from audit.portfolio import EXCESS_DEFAULTS, ExcessSettings, portfolio_summary
 from audit.read import RawTable, raw_from_frame, read_table
-from audit.rules import Evaluation, Rule, RuleSet, evaluate_rules, resolve_rules
-from audit.schema import Validated, WholeTable, study_ids, validate
+from audit.result import AuditResult
+from audit.rules import Evaluation, RuleSet, evaluate_rules, resolve_rules
+from audit.schema import Validated, validate
 
 __all__ = ["STAGES", "AuditResult", "audit_file", "audit_table"]
 
@@ -43,193 +36,6 @@ Progress = Callable[[str], None]
 def _announce(progress: Progress | None, stage: str) -> None:
     if progress is not None:
         progress(stage)
-
-
-@dataclass
-class AuditResult:
-    """Everything one audit produced, as tables; exports and reports only render it.
-
-    Attributes
-    ----------
-    table : the validated input (typed contract columns, ``_row``, unknown columns).
-    metrics : one column per metric, aligned with ``table``; nan where not computed.
-    status : ``"audited"`` or ``"invalid"`` per row.
-    errors : failures of invalid rows (``pos``, ``row``, ``column``, ``value``, ``reason``).
-    notes : ``pos``, ``text``: why metrics are null and what was assumed.
-    findings : ``pos``, ``rule``, ``severity``, ``message``: rule flags, by row then rule.
-    portfolio : the portfolio block of the JSON contract.
-    settings : what the run used (rules in force, defaults, source, excess-significance test).
-    raw : the table as read, for exports that give the user's columns back untouched.
-    rules : the enabled rules of the run, in listing order.
-    rules_waiting : rule id -> metrics it needs that this run does not compute (no flags).
-    rule_problems : ``rule``, ``severity``, ``problem``: rules that failed internally.
-    caveats : plain-language caveats that apply (``topic``, ``title``, ``text``), for the
-        report's caveats section.
-    """
-
-    table: pd.DataFrame
-    metrics: pd.DataFrame
-    status: np.ndarray
-    errors: pd.DataFrame
-    notes: pd.DataFrame
-    findings: pd.DataFrame
-    portfolio: dict[str, Any]
-    settings: dict[str, Any]
-    raw: RawTable
-    rules: list[Rule] = field(default_factory=list)
-    rules_waiting: dict[str, list[str]] = field(default_factory=dict)
-    rule_problems: pd.DataFrame = field(
-        default_factory=lambda: pd.DataFrame(columns=["rule", "severity", "problem"])
-    )
-    caveats: list[dict[str, str]] = field(default_factory=list)
-    #: JSON text of the studies from ``start`` on, being encoded by a forked child for
-    #: :func:`audit.export.write_json` (set by ``audit_file(..., prepare_json=True)``).
-    prepared_studies: PreparedStudies | None = field(default=None, repr=False, compare=False)
-
-    @property
-    def valid(self) -> np.ndarray:
-        return self.status == "audited"
-
-    def metric_names(self) -> list[str]:
-        return list(self.metrics.columns)
-
-    def positions_of(self, study_id: str) -> list[int]:
-        """Row positions whose ``study_id`` is ``study_id`` (trimmed; exact match)."""
-        ids = self.table["study_id"].to_numpy(dtype=object)
-        wanted = str(study_id).strip()
-        return [i for i, v in enumerate(ids) if v is not None and str(v).strip() == wanted]
-
-    def by_row(self, frame: pd.DataFrame, column: str) -> list[list[Any]]:
-        """Group a long (pos, ...) table into one list per input row."""
-        n = len(self.table)
-        if not len(frame):
-            return [[] for _ in range(n)]
-        # Sort once (stable: the order within a row is kept), then slice a plain list per row.
-        positions = frame["pos"].to_numpy(dtype=np.int64)
-        order = np.argsort(positions, kind="stable")
-        values = frame[column].to_numpy(dtype=object)[order].tolist()
-        ends = np.cumsum(np.bincount(positions, minlength=n)).tolist()
-        starts = [0, *ends[:-1]]
-        return [values[a:b] for a, b in zip(starts, ends, strict=True)]
-
-    def error_sentences(self) -> np.ndarray:
-        """One sentence per failure (row of ``errors``): column, value as written, reason."""
-        e = self.errors
-        if not len(e):
-            return np.array([], dtype=object)
-        value = e["value"].astype(str)
-        text = (
-            e["column"].astype(str)
-            + np.where(value == "", " (blank)", " = '" + value + "'")
-            + ": "
-            + e["reason"].astype(str)
-        )
-        return text.to_numpy(dtype=object)
-
-    def error_texts(self) -> list[list[str]]:
-        """The failure sentences of each input row (empty for audited rows)."""
-        if not len(self.errors):
-            return [[] for _ in range(len(self.table))]
-        frame = pd.DataFrame({"pos": self.errors["pos"], "text": self.error_sentences()})
-        return self.by_row(frame, "text")
-
-    def document_head(self) -> dict[str, Any]:
-        """The keys of the JSON document that come before ``studies``."""
-        from audit import __version__
-
-        return {"tool": "study-audit", "version": __version__, "settings": self.settings}
-
-    def document_tail(self) -> dict[str, Any]:
-        """The keys of the JSON document that come after ``studies``."""
-        return {"portfolio": _jsonable(self.portfolio), "caveats": self.caveats}
-
-    def study_json(
-        self, chunk: int = 10_000, start: int = 0, stop: int | None = None
-    ) -> Iterator[bytes]:
-        """The ``studies`` of the JSON document as JSON text, in input order, ``chunk`` studies
-        at a time (comma-separated objects; see :mod:`audit.studyjson`), for the studies at
-        positions ``start`` to ``stop`` (default: all)."""
-        from audit.studyjson import study_chunks
-
-        return study_chunks(self, chunk, start, stop)
-
-    def to_dict(self) -> dict[str, Any]:
-        """The JSON document of the output contract (DESIGN.md section 5)."""
-        import orjson
-
-        studies = orjson.loads(b"[" + b",".join(self.study_json()) + b"]")
-        return {**self.document_head(), "studies": studies, **self.document_tail()}
-
-
-@dataclass
-class PreparedStudies:
-    """JSON text of studies encoded during the audit, for :func:`audit.export.write_json`: the
-    studies from ``start`` on by a forked child (``task.result()``; None if it failed), and,
-    where ``own`` is given, those before ``start``, encoded by this process into that file."""
-
-    start: int
-    task: parallel.ChildTask
-    own: IO[bytes] | None = None
-
-    def close(self) -> None:
-        """Stop the child if it still runs, and drop the text (again: a no-op)."""
-        self.task.close()
-        if self.own is not None:
-            self.own.close()
-
-
-def _prepare_studies(
-    ruleset: RuleSet,
-    validated: Validated,
-    table: pd.DataFrame,
-    metrics: pd.DataFrame,
-    notes: pd.DataFrame,
-    status: np.ndarray,
-) -> PreparedStudies:
-    """Start a child on the JSON text of the last studies (a share of 1 - PARENT_SHARE).
-
-    The child applies the rules to its rows itself (rules look at one row at a time, so the
-    findings are those of the whole run), then encodes the studies. This process applies the
-    rules to all rows meanwhile, as the report and summary need them; the overlap costs less
-    than waiting. A rule that fails on the child's rows makes the child give up: the parent
-    then encodes those studies from its own findings.
-    """
-    from audit import export
-
-    start = int(len(table) * export.PARENT_SHARE)
-    valid = validated.valid
-
-    def child(out: IO[bytes]) -> None:
-        part = evaluate_rules(ruleset, table.iloc[start:], metrics.iloc[start:], valid[start:])
-        if len(part.problems):
-            raise RuntimeError("a rule failed on the child's rows")
-        view = AuditResult(
-            table=table,
-            metrics=metrics,
-            status=status,
-            errors=validated.failures,
-            notes=notes,
-            findings=part.findings.assign(pos=part.findings["pos"] + start),
-            portfolio={},
-            settings={},
-            raw=validated.raw,
-        )
-        for i, text in enumerate(view.study_json(start=start)):
-            out.write(b"," + text if i else text)
-
-    return PreparedStudies(start, parallel.ChildTask(child).start())
-
-
-def _jsonable(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return None if not math.isfinite(float(value)) else float(value)
-    return value
 
 
 def _excess_settings(basis: str, method: str, pooling: str, min_studies: int) -> ExcessSettings:
@@ -247,56 +53,24 @@ def audit_validated(
     continuity_correction: bool = False,
     excess: ExcessSettings = EXCESS_DEFAULTS,
     progress: Progress | None = None,
-    prepare_json: bool = False,
 ) -> AuditResult:
-    """Audit an already validated table (see :func:`audit_table`).
-
-    ``prepare_json``: the result is about to be written as JSON (:func:`audit.export.write_json`);
-    for a large portfolio a forked child starts encoding part of it now.
-    """
+    """Audit an already validated table (see :func:`audit_table`)."""
     ruleset = resolve_rules(rules)
     table, metrics, notes, status = _metrics_of(validated, continuity_correction, progress)
-    valid = validated.valid
     _announce(progress, "applying rules")
-    prepared = None
-    with contextlib.ExitStack() as cleanup:
-        if prepare_json and len(table) >= _json_split_min() and parallel.can_fork():
-            prepared = _prepare_studies(ruleset, validated, table, metrics, notes, status)
-            # Stopped if anything below fails (an interrupted run leaves no child behind).
-            cleanup.callback(prepared.task.close)
-            evaluation = evaluate_rules(ruleset, table, metrics, valid)
-            if len(evaluation.problems):
-                # A failing rule reports no findings at all, which the child, seeing only its
-                # rows, cannot know: write_json encodes every study here instead.
-                prepared.task.close()
-                prepared = None
-        else:
-            evaluation = evaluate_rules(ruleset, table, metrics, valid)
-        result = _summarised(
-            validated,
-            table,
-            metrics,
-            notes,
-            status,
-            evaluation,
-            ruleset,
-            continuity_correction=continuity_correction,
-            excess=excess,
-            progress=progress,
-        )
-        if prepared is not None:
-            _hand_over(result, prepared, cleanup)
-    return result
-
-
-def _hand_over(
-    result: AuditResult, prepared: PreparedStudies, cleanup: contextlib.ExitStack
-) -> None:
-    """Give ``result`` the studies' JSON text being encoded; their child and files then live
-    as long as the result (a library caller that never writes JSON stops the child with it)."""
-    result.prepared_studies = prepared
-    weakref.finalize(result, prepared.close)
-    cleanup.pop_all()
+    evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
+    return _summarised(
+        validated,
+        table,
+        metrics,
+        notes,
+        status,
+        evaluation,
+        ruleset,
+        continuity_correction=continuity_correction,
+        excess=excess,
+        progress=progress,
+    )
 
 
 def _metrics_of(
@@ -314,8 +88,8 @@ def _metrics_of(
     metrics = computed.values[[*METRICS, *[c for c in computed.values if c not in METRICS]]]
     notes = pd.concat([validated.notes, computed.notes], ignore_index=True)
     notes = notes.sort_values("pos", kind="stable").reset_index(drop=True)
-    # Texts as objects whatever the parts were (pandas infers a str type for some of them).
-    notes["text"] = notes["text"].astype(object)
+    # Each distinct text once (a portfolio repeats a few thousand notes over many rows).
+    notes["text"] = pd.Categorical(notes["text"].to_numpy(dtype=object))
     status = np.where(valid, "audited", "invalid").astype(object)
     return table, metrics, notes, status
 
@@ -376,190 +150,6 @@ def _summarised(
     )
 
 
-#: From this many rows a table is audited by two processes, each taking a share of the rows
-#: (see :func:`_audit_in_shares`).
-SHARE_MIN = 20_000
-#: The share of the rows this process audits when a child audits the others. The child's share
-#: is the larger: this process also merges, summarises and writes the outputs.
-PARENT_SHARE = 0.44
-
-
-@dataclass
-class _Share:
-    """The row-by-row audit of some rows of a table (positions counted from its first row)."""
-
-    table: pd.DataFrame
-    metrics: pd.DataFrame
-    notes: pd.DataFrame
-    status: np.ndarray
-    failures: pd.DataFrame
-    valid: np.ndarray
-    evaluation: Evaluation
-    file_notes: list[str]
-    extra_columns: list[str]
-
-
-def _audit_share(
-    raw: RawTable,
-    start: int,
-    stop: int,
-    ids: pd.Series,
-    ruleset: RuleSet,
-    continuity_correction: bool,
-    progress: Progress | None,
-) -> _Share:
-    """Validate, compute and apply the rules to the rows ``start`` to ``stop`` of ``raw``."""
-    _announce(progress, "checking rows")
-    validated = validate(_rows_of(raw, start, stop), WholeTable(ids, raw.rows, start))
-    table, metrics, notes, status = _metrics_of(validated, continuity_correction, progress)
-    _announce(progress, "applying rules")
-    evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
-    return _Share(
-        table=table,
-        metrics=metrics,
-        notes=notes,
-        status=status,
-        failures=validated.failures,
-        valid=validated.valid,
-        evaluation=evaluation,
-        file_notes=validated.file_notes,
-        extra_columns=validated.extra_columns,
-    )
-
-
-def _rows_of(raw: RawTable, start: int, stop: int) -> RawTable:
-    """The rows ``start`` to ``stop`` of ``raw`` as a table of their own (positions from 0)."""
-    return dataclasses.replace(
-        raw,
-        data=raw.data.iloc[start:stop].reset_index(drop=True),
-        rows=raw.rows[start:stop],
-        row_notes=[(p - start, t) for p, t in raw.row_notes if start <= p < stop],
-        cell_problems=[(p - start, c, r) for p, c, r in raw.cell_problems if start <= p < stop],
-    )
-
-
-def _stacked(first: pd.DataFrame, second: pd.DataFrame, shift: int | None = None) -> pd.DataFrame:
-    """``first`` above ``second`` (its ``pos`` moved by ``shift``), renumbered. An empty part is
-    left out, as its column types may be those of an empty frame."""
-    if shift is not None and len(second):
-        second = second.assign(pos=second["pos"] + shift)
-    parts = [part for part in (first, second) if len(part)] or [first]
-    return pd.concat(parts, ignore_index=True)
-
-
-def _audit_in_shares(
-    raw: RawTable,
-    ruleset: RuleSet,
-    *,
-    continuity_correction: bool,
-    excess: ExcessSettings,
-    progress: Progress | None,
-    prepare_json: bool,
-) -> AuditResult:
-    """Audit a large table in two processes: a forked child audits the last rows (a share of
-    1 - :data:`PARENT_SHARE`) while this process audits the first ones, then hands its results
-    over pickled and, for ``prepare_json``, goes on to encode its studies' JSON text.
-
-    Rows are audited one at a time, except that a study_id used twice is looked for in the
-    whole table (both processes know all ids). The result equals that of one process; where
-    the child fails, its rows are audited here. A rule that fails on either share is applied
-    again to the whole table (it then reports no findings at all, as in one process) and the
-    shares' JSON text is not used. Rules look at one row at a time (the rule language makes
-    them so): a rule failing on the whole table fails on a share too.
-    """
-    n = len(raw.data)
-    start = min(max(int(n * PARENT_SHARE), 1), n - 1)
-    ids = study_ids(raw)
-
-    def child(facts: IO[bytes], studies: IO[bytes], handover: Callable[[], None]) -> None:
-        parallel.ENABLED = False  # this process has its core; it starts no child of its own
-        share = _audit_share(raw, start, n, ids, ruleset, continuity_correction, None)
-        pickle.dump(share, facts, protocol=pickle.HIGHEST_PROTOCOL)
-        handover()
-        if prepare_json and not len(share.evaluation.problems):
-            _write_studies(share, raw, studies)
-
-    with contextlib.ExitStack() as cleanup:
-        task = parallel.ChildTask(child, parts=2).start()
-        cleanup.callback(task.close)
-        with parallel.suspended():
-            mine = _audit_share(raw, 0, start, ids, ruleset, continuity_correction, progress)
-            own = None
-            if prepare_json and not len(mine.evaluation.problems):
-                # Done while the child finishes its share (this share is the smaller one).
-                try:
-                    own = cleanup.enter_context(tempfile.TemporaryFile())
-                    _write_studies(mine, raw, own)
-                except OSError:  # no room for it: write_json encodes these studies itself
-                    own = None
-        facts = task.first()
-        theirs = pickle.load(facts) if facts is not None else None
-        child_json = prepare_json and theirs is not None
-        if theirs is None:  # no child, or it failed: its rows are audited here
-            theirs = _audit_share(raw, start, n, ids, ruleset, continuity_correction, None)
-        validated = Validated(
-            table=_stacked(mine.table, theirs.table),
-            failures=_stacked(mine.failures, theirs.failures, start),
-            notes=pd.DataFrame({"pos": np.zeros(0, dtype=int), "text": np.zeros(0, dtype=object)}),
-            valid=np.concatenate([mine.valid, theirs.valid]),
-            extra_columns=mine.extra_columns,
-            raw=raw,
-            file_notes=mine.file_notes,
-        )
-        table = validated.table
-        metrics = _stacked(mine.metrics, theirs.metrics)
-        notes = _stacked(mine.notes, theirs.notes, start)
-        status = np.concatenate([mine.status, theirs.status])
-        a, b = mine.evaluation, theirs.evaluation
-        if len(a.problems) or len(b.problems) or a.waiting != b.waiting:
-            # As one process would: the rule reports no findings at all.
-            evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
-            child_json = False
-        else:
-            evaluation = dataclasses.replace(a, findings=_stacked(a.findings, b.findings, start))
-        if list(mine.metrics.columns) != list(theirs.metrics.columns):
-            metrics = metrics[[*METRICS, *[c for c in metrics if c not in METRICS]]]
-            child_json = False  # the child's studies lack a metric the others have
-        result = _summarised(
-            validated,
-            table,
-            metrics,
-            notes,
-            status,
-            evaluation,
-            ruleset,
-            continuity_correction=continuity_correction,
-            excess=excess,
-            progress=progress,
-        )
-        if child_json:
-            _hand_over(result, PreparedStudies(start, task, own), cleanup)
-    return result
-
-
-def _write_studies(share: _Share, raw: RawTable, out: IO[bytes]) -> None:
-    """The JSON text of a share's studies (as in ``studies``, comma-separated) into ``out``."""
-    view = AuditResult(
-        table=share.table,
-        metrics=share.metrics,
-        status=share.status,
-        errors=share.failures,
-        notes=share.notes,
-        findings=share.evaluation.findings,
-        portfolio={},
-        settings={},
-        raw=raw,
-    )
-    for i, text in enumerate(view.study_json()):
-        out.write(b"," + text if i else text)
-
-
-def _json_split_min() -> int:
-    from audit import export
-
-    return export.PARALLEL_JSON_MIN
-
-
 def audit_table(
     df: pd.DataFrame | RawTable,
     *,
@@ -570,7 +160,6 @@ def audit_table(
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
     progress: Progress | None = None,
-    prepare_json: bool = False,
 ) -> AuditResult:
     """Audit a table of studies given as a DataFrame (one row per study, contract columns).
 
@@ -597,9 +186,6 @@ def audit_table(
         Fewest studies with a result and a power for the test to run (default 5).
     progress
         Called with each stage name of :data:`STAGES` as it starts.
-    prepare_json : bool
-        The result will be written with :func:`audit.export.write_json` straight away: a large
-        portfolio starts part of that work in a forked child (Linux, two or more cores).
 
     Raises
     ------
@@ -609,15 +195,6 @@ def audit_table(
     ruleset = resolve_rules(rules)  # a bad rules file fails before any work is done
     excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
     raw = df if isinstance(df, RawTable) else raw_from_frame(df)
-    if _in_shares(raw):
-        return _audit_in_shares(
-            raw,
-            ruleset,
-            continuity_correction=continuity_correction,
-            excess=excess,
-            progress=progress,
-            prepare_json=prepare_json,
-        )
     _announce(progress, "checking rows")
     return audit_validated(
         validate(raw),
@@ -625,19 +202,6 @@ def audit_table(
         continuity_correction=continuity_correction,
         excess=excess,
         progress=progress,
-        prepare_json=prepare_json,
-    )
-
-
-def _in_shares(raw: RawTable) -> bool:
-    """Whether :func:`_audit_in_shares` audits ``raw``: a large table with the columns every
-    study needs (validate reports their absence), where a child can be forked."""
-    columns = raw.data.columns
-    return (
-        len(raw.data) >= SHARE_MIN
-        and "study_id" in columns
-        and "design" in columns
-        and parallel.can_fork()
     )
 
 
@@ -652,7 +216,6 @@ def audit_file(
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
     progress: Progress | None = None,
-    prepare_json: bool = False,
 ) -> AuditResult:
     """Read and audit a spreadsheet or CSV file (keyword arguments as :func:`audit_table`)."""
     ruleset = resolve_rules(rules)
@@ -667,5 +230,4 @@ def audit_file(
         excess_pooling=excess_pooling,
         excess_min_studies=excess_min_studies,
         progress=progress,
-        prepare_json=prepare_json,
     )

@@ -400,31 +400,17 @@ def _distinct_texts(cells: np.ndarray) -> Distinct | None:
     (portfolios repeat designs, choices and numbers), by a C-level hash of the column, and
     mapped back by the codes.
     """
-    if _StringHashTable is not None:
-        # The hash table pd.factorize uses for a column of strings, called directly: it skips
-        # pd.factorize's pass over the cells checking that all are strings, and gives any cell
-        # that is not one code -1 (looked at below).
-        table = _StringHashTable(len(cells))
-        texts, codes = table.factorize(cells, na_sentinel=-1, ignore_na=True)
-        codes = codes.astype(np.intp, copy=False)
-    else:
-        try:
-            codes, texts = pd.factorize(cells)
-        except TypeError:  # an unhashable cell (a list in a frame built in Python)
-            return None
-        if len(texts) and pd.api.types.infer_dtype(texts, skipna=False) != "string":
-            return None
+    try:
+        codes, texts = pd.factorize(cells)
+    except TypeError:  # an unhashable cell (a list in a frame built in Python)
+        return None
+    if len(texts) and pd.api.types.infer_dtype(texts, skipna=False) != "string":
+        return None
     # Every cell with code -1 must be an empty cell (None), not a number or a missing-value
     # marker of another kind.
     if not all(v is None for v in cells[codes < 0]):
         return None
     return codes, texts.astype(object, copy=False)
-
-
-try:
-    from pandas._libs.hashtable import StringHashTable as _StringHashTable
-except ImportError:  # a pandas version that moved it: pd.factorize and a check of the texts
-    _StringHashTable = None
 
 
 def _take(per_text: np.ndarray, codes: np.ndarray, empty: object) -> np.ndarray:

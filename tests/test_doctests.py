@@ -14,7 +14,6 @@ MODULES = [
     "audit.designs.proportions",
     "audit.designs.survival",
     "audit.designs.variance",
-    "audit.parallel",
     "audit.pipeline",
 ]
 

@@ -368,41 +368,6 @@ def test_usable_file_is_audited(name, corpus, tmp_path, capsys):
         assert (s["status"] == "invalid") == bool(s["errors"])
 
 
-@pytest.mark.parametrize("name", sorted(USABLE))
-def test_usable_file_audited_in_two_shares_is_the_same(name, corpus, monkeypatch):
-    # Any table, however small, split between two processes (pipeline._audit_in_shares) gives
-    # what one process gives: cut rows, the reader's row notes and cell problems, duplicate
-    # columns and ids all cross the cut.
-    from audit import parallel, pipeline
-
-    if not parallel.can_fork():
-        pytest.skip("needs fork (Linux) and more than one core")
-    raw = read_table(corpus[name])
-    if len(raw.data) < 2:
-        pytest.skip("a single row cannot be shared")
-    monkeypatch.setattr(pipeline, "SHARE_MIN", 2)
-    monkeypatch.setattr(parallel, "ENABLED", False)
-    alone = audit.audit_table(raw)
-    monkeypatch.setattr(parallel, "ENABLED", True)
-    shared = audit.audit_table(raw)
-    # Metrics may differ in the last bits (a setting solved directly in one run is read off
-    # the interpolant in the other; the two agree to about 1e-11).
-    pd.testing.assert_frame_equal(shared.metrics, alone.metrics, check_exact=False, rtol=1e-11)
-    for frame in ("table", "errors", "notes", "findings"):
-        pd.testing.assert_frame_equal(getattr(shared, frame), getattr(alone, frame), obj=frame)
-
-    def rounded(value: object) -> object:
-        if isinstance(value, float):
-            return float(f"{value:.11g}")
-        if isinstance(value, dict):
-            return {k: rounded(v) for k, v in value.items()}
-        if isinstance(value, list):
-            return [rounded(v) for v in value]
-        return value
-
-    assert rounded(shared.to_dict()) == rounded(alone.to_dict())
-
-
 # -- bad values -----------------------------------------------------------------------------------
 
 #: study_id -> (status, column or None, fragment of the reason / check on the validated row)

@@ -257,3 +257,26 @@ def test_check_writes_workbook_and_plots(tmp_path):
     assert code == 0
     assert (tmp_path / "w.xlsx").stat().st_size > 0
     assert (tmp_path / "p" / "portfolio_power.png").exists()
+
+
+def test_a_lone_carriage_return_cannot_start_a_csv_row(tmp_path):
+    # Issue 13: a quoted cell holding a carriage return alone was written unquoted; a
+    # spreadsheet program then read a new row starting with the live formula after it. The
+    # csv module reads like one here: a carriage return outside quotes ends a row.
+    source = tmp_path / "in.csv"
+    source.write_bytes(
+        b"study_id,title,design,realized_se\n"
+        b"A,\"harmless\r=cmd|' /C calc'!A0\",estimate,1\n"
+        b'B,"two\r\nlines",estimate,2\n'
+        b"C,plain,estimate,3\n"
+    )
+    out = tmp_path / "out.csv"
+    assert main(["check", str(source), "--quiet", "--csv", str(out)]) == 0
+    with out.open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.reader(handle))
+    assert [r[0] for r in rows] == ["study_id", "A", "B", "C"]
+    assert rows[1][1] == "harmless\r=cmd|' /C calc'!A0"
+    assert rows[2][1] == "two\r\nlines"
+    assert not any(cell.startswith("=") for row in rows for cell in row)
+    # Rows without a carriage return are written as before: unquoted where plain.
+    assert out.read_bytes().splitlines()[-1].startswith(b"C,plain,estimate,3")

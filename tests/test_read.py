@@ -175,3 +175,36 @@ def test_large_plain_sheets_read_the_same_with_the_fast_reader(monkeypatch):
             assert a.fillna("").astype(str).tolist() == b.fillna("").astype(str).tolist(), column
         else:
             np.testing.assert_array_equal(a.to_numpy(), b.to_numpy(), err_msg=column)
+
+
+def test_a_quoted_cell_may_span_lines_and_hold_the_separator(tmp_path):
+    # Issue 13: "Effect of X, Y" over two lines is a properly quoted cell, not a quote that
+    # swallowed lines; the row is audited.
+    path = _write(
+        tmp_path,
+        "multi.csv",
+        'study_id,title,design,realized_se\nA,"Effect of X, Y\non Z",estimate,1\n'
+        'B,"a ""quoted"" word,\r\nand more",estimate,2\nC,plain,estimate,3\n',
+    )
+    result = audit.audit_file(path)
+    assert list(result.status) == ["audited"] * 3
+    assert result.raw.data["title"].tolist()[:2] == [
+        "Effect of X, Y\non Z",
+        'a "quoted" word,\r\nand more',
+    ]
+
+
+def test_a_quote_that_swallows_lines_up_to_a_later_quote_is_still_reported(tmp_path):
+    # The stray quote of U-2 closes at the quote of U-4's first cell: the lines between were
+    # read into one cell, which says so. A proper multi-line cell before it stays audited.
+    path = _write(
+        tmp_path,
+        "stray.csv",
+        'study_id,title,design,realized_se\nU-1,"fine, and\nmultiline",estimate,1\n'
+        'U-2,"stray,estimate,1\nU-3,x,estimate,1\n"U-4",y,estimate,1\n',
+    )
+    result = audit.audit_file(path)
+    status = dict(zip(result.table["study_id"], result.status, strict=True))
+    assert status["U-1"] == "audited"
+    assert status["U-2"] == "invalid"
+    assert any("quote mark is probably unbalanced" in e for e in result.error_sentences())

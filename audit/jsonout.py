@@ -1,18 +1,21 @@
-"""The ``studies`` array of the JSON contract, encoded column by column.
+"""The JSON document of the output contract, encoded column by column.
 
 A study object holds about sixty values (identity, status, messages and forty metrics). Built as
 one Python dict per study and then encoded, a 100k-study portfolio spends seconds creating and
 discarding dicts. Here each column is encoded for a whole chunk of studies in one call (orjson
-encodes a numpy float array in C; a column of repeated texts is encoded once per distinct text),
-the pieces are laid out row by row in one object array, and the chunk is joined once. Messages
-per study (errors, notes, flags) are grouped by row from their long tables.
+encodes a numpy float array in C; a column of texts is encoded once per distinct text, each text
+by orjson on its own, so no content of a cell can change the document's structure), the pieces
+are laid out row by row with one ``bytes % tuple`` per study, and the chunk is joined once.
+Messages per study (errors, notes, flags) are grouped by row from their long tables.
 
-The output is the same document :meth:`audit.pipeline.AuditResult.to_dict` returns (that method
-decodes it): one encoder, so the streamed file and the in-memory document cannot disagree.
+The JSON file and :meth:`audit.result.AuditResult.to_dict` (which decodes this text) come from
+this one encoder, so they cannot disagree. This module reads a result; it imports nothing of the
+pipeline.
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator, Sequence
 from typing import TYPE_CHECKING
 
@@ -21,9 +24,19 @@ import orjson
 import pandas as pd
 
 if TYPE_CHECKING:
-    from audit.pipeline import AuditResult
+    from audit.result import AuditResult
 
-__all__ = ["INTEGER_METRICS", "json_default", "study_chunks"]
+__all__ = [
+    "INTEGER_METRICS",
+    "JSON_INDENT_LIMIT",
+    "document_bytes",
+    "document_parts",
+    "json_default",
+    "study_chunks",
+]
+
+#: Up to this many studies the JSON is indented for reading; beyond, it is compact.
+JSON_INDENT_LIMIT = 2_000
 
 #: Metrics written as JSON integers (sizes).
 INTEGER_METRICS = frozenset({"n_required_plan", "n_required_realized", "events_required_plan"})
@@ -45,26 +58,28 @@ def _dumps(value: object) -> bytes:
 
 
 def encode_objects(values: Sequence[object] | np.ndarray) -> np.ndarray:
-    """JSON text of each value (texts, or None/nan as null).
+    """JSON text of each value (texts, or None/nan as null), one orjson call per distinct value.
 
-    A column of texts none of which holds a double quote is encoded in one call and cut at the
-    ``","`` between its members (inside such texts that sequence cannot occur). Any other
-    column is encoded once per distinct value.
+    Each text is encoded on its own: nothing in a cell (quotes, ``","``, backslashes, control
+    characters) can reach the structure of the document.
     """
-    cells = values.tolist() if isinstance(values, np.ndarray) else list(values)
-    if cells and set(map(type, cells)) == {str}:
-        text = orjson.dumps(cells)
-        if b'\\"' not in text:
-            # JSON text never holds a raw NUL byte (control characters are escaped): it marks
-            # the cuts, and each member keeps its quotes.
-            out = np.empty(len(cells), dtype=object)
-            out[:] = text[1:-1].replace(b'","', b'"\x00"').split(b"\x00")
-            return out
-    codes, uniques = pd.factorize(np.asarray(cells, dtype=object), use_na_sentinel=True)
+    cells = np.asarray(values, dtype=object) if not isinstance(values, pd.Categorical) else values
+    codes, uniques = pd.factorize(cells, use_na_sentinel=True)
     table = np.empty(len(uniques) + 1, dtype=object)
-    table[:-1] = [_dumps(u) for u in uniques]
+    table[:-1] = [_dumps(u) for u in np.asarray(uniques, dtype=object).tolist()]
     table[-1] = _NULL  # code -1: missing
     return table[codes]
+
+
+def encode_texts(column: pd.Series) -> np.ndarray:
+    """:func:`encode_objects` of a column; a categorical one is encoded once per category."""
+    if isinstance(column.dtype, pd.CategoricalDtype):
+        categories = column.cat.categories.to_numpy(dtype=object)
+        table = np.empty(len(categories) + 1, dtype=object)
+        table[:-1] = [_dumps(u) for u in categories.tolist()]
+        table[-1] = _NULL
+        return table[column.cat.codes.to_numpy()]
+    return encode_objects(column.to_numpy(dtype=object))
 
 
 def encode_numbers(values: np.ndarray, *, integer: bool = False) -> np.ndarray:
@@ -154,9 +169,7 @@ def study_chunks(
     error_texts = RowLists(error_pos, encode_objects(in_range["_sentence"].to_numpy(dtype=object)))
     error_details = RowLists(error_pos, _encode_records(errors, ("column", "value", "reason")))
     notes = within(result.notes)
-    note_texts = RowLists(
-        notes["pos"].to_numpy(dtype=np.int64), encode_objects(notes["text"].to_numpy(dtype=object))
-    )
+    note_texts = RowLists(notes["pos"].to_numpy(dtype=np.int64), encode_texts(notes["text"]))
     findings = within(result.findings)
     flags = RowLists(
         findings["pos"].to_numpy(dtype=np.int64),
@@ -214,3 +227,53 @@ def _encode_records(frame: pd.DataFrame, keys: tuple[str, ...]) -> np.ndarray:
     out = np.empty(len(frame), dtype=object)
     out[:] = _rows(pieces, b"}")
     return out
+
+
+def _jsonable(value: object) -> object:
+    """Portfolio values as JSON values: numpy scalars as numbers, nan and infinities as null."""
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return None if not math.isfinite(float(value)) else float(value)
+    return value
+
+
+def _encode(document: dict[str, object], *, indent: bool = False) -> bytes:
+    option = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+    if indent:
+        option |= orjson.OPT_INDENT_2
+    return orjson.dumps(document, default=json_default, option=option)
+
+
+def _head(result: AuditResult) -> bytes:
+    """The keys before ``studies`` (compact), without the closing brace."""
+    from audit import __version__
+
+    head = {"tool": "study-audit", "version": __version__, "settings": result.settings}
+    return _encode(head)[:-1]
+
+
+def _tail(result: AuditResult) -> bytes:
+    """The keys after ``studies`` (compact), without the opening brace."""
+    tail = {"portfolio": _jsonable(result.portfolio), "caveats": result.caveats}
+    return _encode(tail)[1:]
+
+
+def document_parts(result: AuditResult, chunk: int = 10_000) -> Iterator[bytes]:
+    """The compact JSON document in pieces: head, ``chunk`` studies at a time, tail."""
+    yield _head(result) + b',"studies":['
+    for i, part in enumerate(study_chunks(result, chunk)):
+        yield b"," + part if i else part
+    yield b"]," + _tail(result)
+
+
+def document_bytes(result: AuditResult, *, indent: bool = False) -> bytes:
+    """The whole JSON document; ``indent`` lays it out for reading (two spaces)."""
+    compact = b"".join(document_parts(result))
+    if not indent:
+        return compact
+    return _encode(orjson.loads(compact), indent=True)
