@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 import re
+import unicodedata
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Literal
@@ -270,6 +271,15 @@ _THOUSANDS_COMMA = re.compile(r"^[+-]?\d{1,3}(\.\d{3})+(,\d+)?$")
 _DOT_GROUPS = re.compile(r"^[+-]?[1-9]\d{0,2}(\.\d{3})+$")
 
 
+def _ascii_digits(text: str) -> str:
+    """``text`` with every decimal digit of any script (Unicode category Nd) as 0-9; other
+    characters unchanged (so a full-width '１２' is '12', and a stray letter stays a letter)."""
+    return _ANY_DIGIT.sub(lambda m: str(unicodedata.decimal(m.group(0))), text)
+
+
+_ANY_DIGIT = re.compile(r"\d")  # in a str pattern, \d is any Unicode decimal digit
+
+
 def parse_numbers(
     values: pd.Series, *, decimal_comma: bool, whole: bool = False
 ) -> tuple[pd.Series, pd.Series]:
@@ -478,6 +488,10 @@ def _parse_texts(
         s = text[~plain].astype(str).str.strip().str.replace("\u00a0", "", regex=False)
         # The typographic minus (U+2212) and dashes pasted from documents mean a minus sign.
         s = s.str.replace(" ", "", regex=False).str.replace(_MINUS_SIGNS, "-", regex=True)
+        # Digits of other scripts (Arabic-Indic, full-width, ...) are the digits they are.
+        foreign = ~s.map(str.isascii).astype(bool)
+        if foreign.any():
+            s = s.where(~foreign, s[foreign].map(_ascii_digits))
         missing = s.str.lower().isin(MISSING_TOKENS)
         s = s[~missing]
         percent = s.str.endswith("%")
@@ -499,7 +513,8 @@ def _parse_texts(
         parsed = pd.to_numeric(body.where(ok), errors="coerce")
         parsed = parsed.where(~percent, parsed / 100.0)
         out[parsed.index] = parsed
-        bad = ~ok
+        # A text that looked like a number but did not parse is rejected, never blank.
+        bad = ~ok | parsed.isna().to_numpy()
         if bad.any():
             low = s[bad].str.lower()
             reason = pd.Series("not a number", index=low.index, dtype=object)
