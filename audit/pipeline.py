@@ -20,6 +20,7 @@ from audit.errors import ConfigError
 from audit.metrics import METRICS, compute_metrics
 from audit.portfolio import EXCESS_DEFAULTS, ExcessSettings, portfolio_summary
 from audit.read import RawTable, raw_from_frame, read_table
+from audit.reaudit import set_aside_output_columns
 from audit.result import AuditResult
 from audit.rules import Evaluation, RuleSet, evaluate_rules, resolve_rules
 from audit.schema import Validated, validate
@@ -194,7 +195,7 @@ def audit_table(
     """
     ruleset = resolve_rules(rules)  # a bad rules file fails before any work is done
     excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
-    raw = df if isinstance(df, RawTable) else raw_from_frame(df)
+    raw = set_aside_output_columns(df if isinstance(df, RawTable) else raw_from_frame(df))
     _announce(progress, "checking rows")
     return audit_validated(
         validate(raw),
