@@ -32,6 +32,7 @@ __all__ = [
     "document_bytes",
     "document_parts",
     "json_default",
+    "portfolio_document",
     "study_chunks",
 ]
 
@@ -240,6 +241,11 @@ def _jsonable(value: object) -> object:
     if isinstance(value, (float, np.floating)):
         return None if not math.isfinite(float(value)) else float(value)
     return value
+
+
+def portfolio_document(result: AuditResult) -> dict[str, object]:
+    """The ``portfolio`` block as the JSON document holds it (plain JSON values)."""
+    return orjson.loads(_encode({"p": _jsonable(result.portfolio)}))["p"]
 
 
 def _encode(document: dict[str, object], *, indent: bool = False) -> bytes:
