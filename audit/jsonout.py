@@ -16,7 +16,7 @@ pipeline.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -72,17 +72,6 @@ def encode_objects(values: Sequence[object] | np.ndarray) -> np.ndarray:
     return table[codes]
 
 
-def encode_texts(column: pd.Series) -> np.ndarray:
-    """:func:`encode_objects` of a column; a categorical one is encoded once per category."""
-    if isinstance(column.dtype, pd.CategoricalDtype):
-        categories = column.cat.categories.to_numpy(dtype=object)
-        table = np.empty(len(categories) + 1, dtype=object)
-        table[:-1] = [_dumps(u) for u in categories.tolist()]
-        table[-1] = _NULL
-        return table[column.cat.codes.to_numpy()]
-    return encode_objects(column.to_numpy(dtype=object))
-
-
 def encode_numbers(values: np.ndarray, *, integer: bool = False) -> np.ndarray:
     """JSON text of each number; nan and infinities as null, ``integer`` ones without a point.
 
@@ -104,14 +93,16 @@ def encode_numbers(values: np.ndarray, *, integer: bool = False) -> np.ndarray:
 
 
 class RowLists:
-    """JSON arrays per row from a long table: ``items[k]`` (encoded) belongs to row
-    ``positions[k]``. Sorted by row once (stably: the order of a row's items is kept), then
-    cut for any range of rows."""
+    """JSON arrays per row from a long table (``pos`` and the items' fields): sorted by row
+    once (stably: the order of a row's items is kept), then, for any range of rows, the items
+    of those rows encoded by ``encode(order)`` (``order``: the table's row numbers, in order).
+    Only one range's items are encoded at a time, so the text of a large portfolio's millions
+    of notes never exists all at once."""
 
-    def __init__(self, positions: np.ndarray, items: np.ndarray) -> None:
-        order = np.argsort(positions, kind="stable")
-        self._pos = positions[order]
-        self._items = items[order]
+    def __init__(self, positions: np.ndarray, encode: Callable[[np.ndarray], np.ndarray]) -> None:
+        self._order = np.argsort(positions, kind="stable")
+        self._pos = positions[self._order]
+        self._encode = encode
 
     def lists(self, start: int, stop: int) -> np.ndarray:
         """``[...]`` for each row ``start`` to ``stop`` (``[]`` where a row has no items)."""
@@ -119,7 +110,8 @@ class RowLists:
         lo, hi = np.searchsorted(self._pos, [start, stop])
         if lo == hi:
             return out
-        pos, values = self._pos[lo:hi], self._items[lo:hi].tolist()
+        pos = self._pos[lo:hi]
+        values = self._encode(self._order[lo:hi]).tolist()
         # Rows with items: where each row's run begins and ends in the sorted table.
         rows, first = np.unique(pos, return_index=True)
         ends = np.append(first[1:], len(pos)).tolist()
@@ -127,6 +119,35 @@ class RowLists:
             b"[" + b",".join(values[a:b]) + b"]" for a, b in zip(first.tolist(), ends, strict=True)
         ]
         return out
+
+
+def _texts_by_code(column: pd.Series) -> Callable[[np.ndarray], np.ndarray]:
+    """An encoder of some cells of a text column (by row number): a categorical column's texts
+    are encoded once per category, up front; others per distinct text of the rows asked for."""
+    if isinstance(column.dtype, pd.CategoricalDtype):
+        categories = column.cat.categories.to_numpy(dtype=object)
+        table = np.empty(len(categories) + 1, dtype=object)
+        table[:-1] = [_dumps(u) for u in categories.tolist()]
+        table[-1] = _NULL
+        codes = column.cat.codes.to_numpy()
+        return lambda rows: table[codes[rows]]
+    cells = column.to_numpy(dtype=object)
+    return lambda rows: encode_objects(cells[rows])
+
+
+def _records_by_row(
+    frame: pd.DataFrame, keys: tuple[str, ...]
+) -> Callable[[np.ndarray], np.ndarray]:
+    """An encoder of some rows of ``frame`` as JSON objects with the text fields ``keys``."""
+    fields = [(k, _texts_by_code(frame[k])) for k in keys]
+
+    def encode(rows: np.ndarray) -> np.ndarray:
+        pieces = [(_key(k, i == 0), texts(rows)) for i, (k, texts) in enumerate(fields)]
+        out = np.empty(len(rows), dtype=object)
+        out[:] = _rows(pieces, b"}")
+        return out
+
+    return encode
 
 
 def _key(name: str, first: bool) -> bytes:
@@ -160,21 +181,20 @@ def study_chunks(
     n = len(table)
     first, last = start, n if stop is None else min(stop, n)
 
-    def within(frame: pd.DataFrame) -> pd.DataFrame:
-        pos = frame["pos"].to_numpy(dtype=np.int64)
-        return frame[(pos >= first) & (pos < last)]
+    def positions(frame: pd.DataFrame) -> np.ndarray:
+        return frame["pos"].to_numpy(dtype=np.int64)
 
-    in_range = within(result.errors.assign(_sentence=result.error_sentences()))
-    errors = in_range.drop(columns="_sentence")
-    error_pos = errors["pos"].to_numpy(dtype=np.int64)
-    error_texts = RowLists(error_pos, encode_objects(in_range["_sentence"].to_numpy(dtype=object)))
-    error_details = RowLists(error_pos, _encode_records(errors, ("column", "value", "reason")))
-    notes = within(result.notes)
-    note_texts = RowLists(notes["pos"].to_numpy(dtype=np.int64), encode_texts(notes["text"]))
-    findings = within(result.findings)
+    errors = result.errors
+    sentences = pd.Series(result.error_sentences(), dtype=object)
+    error_texts = RowLists(positions(errors), _texts_by_code(sentences))
+    error_details = RowLists(
+        positions(errors), _records_by_row(errors, ("column", "value", "reason"))
+    )
+    notes = result.notes
+    note_texts = RowLists(positions(notes), _texts_by_code(notes["text"]))
+    findings = result.findings
     flags = RowLists(
-        findings["pos"].to_numpy(dtype=np.int64),
-        _encode_records(findings, ("rule", "severity", "message")),
+        positions(findings), _records_by_row(findings, ("rule", "severity", "message"))
     )
     names = list(result.metrics.columns)
     # Columns as plain arrays once (texts as objects, None where not computed), sliced per chunk.
@@ -215,19 +235,6 @@ def study_chunks(
         flags_key = (b"}" if names else b',"metrics":{}') + _key("flags", False)
         pieces.append((flags_key, flags.lists(start, stop)))
         yield b",".join(_rows(pieces, b"}"))
-
-
-def _encode_records(frame: pd.DataFrame, keys: tuple[str, ...]) -> np.ndarray:
-    """One JSON object per row of ``frame`` with the fields ``keys`` (all texts)."""
-    if not len(frame):
-        return np.array([], dtype=object)
-    pieces = [
-        (_key(k, i == 0), encode_objects(frame[k].to_numpy(dtype=object)))
-        for i, k in enumerate(keys)
-    ]
-    out = np.empty(len(frame), dtype=object)
-    out[:] = _rows(pieces, b"}")
-    return out
 
 
 def _jsonable(value: object) -> object:
