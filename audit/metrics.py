@@ -214,7 +214,7 @@ def compute_metrics(table: pd.DataFrame, valid: np.ndarray) -> MetricTable:
 
     Parameters
     ----------
-    table : the ``table`` of :class:`audit.schema.Validated`.
+    table : the ``table`` of :class:`audit.validate.Validated`.
     valid : which rows passed validation; other rows get null metrics and no notes.
     """
     n = len(table)

@@ -23,7 +23,7 @@ from audit.read import RawTable, raw_from_frame, read_table
 from audit.reaudit import set_aside_output_columns
 from audit.result import AuditResult
 from audit.rules import Evaluation, RuleSet, evaluate_rules, resolve_rules
-from audit.schema import Validated, validate
+from audit.validate import Validated, validate
 
 __all__ = ["STAGES", "AuditResult", "audit_file", "audit_table"]
 

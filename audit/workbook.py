@@ -30,7 +30,8 @@ import xlsxwriter
 from audit.export import CAUTION, ILLEGAL_XLSX, atomic_output, refuse_input
 from audit.jsonout import portfolio_document
 from audit.metrics import METRICS
-from audit.schema import SPECS, parse_numbers
+from audit.numbers import parse_numbers
+from audit.schema import SPECS
 
 if TYPE_CHECKING:
     from audit.result import AuditResult

@@ -131,7 +131,7 @@ def _stage_worker(path: str) -> None:
     from audit.export import write_json
     from audit.pipeline import audit_validated
     from audit.read import read_table
-    from audit.schema import validate
+    from audit.validate import validate
 
     marks: list[tuple[str, float]] = []
     t0 = time.perf_counter()
@@ -206,7 +206,7 @@ def statsmodels_loop(path: Path, sample: int = 60) -> dict[str, object]:
     from audit.designs import DESIGNS
     from audit.metrics import test_settings
     from audit.read import read_table
-    from audit.schema import validate
+    from audit.validate import validate
 
     warnings.simplefilter("ignore")
     validated = validate(read_table(path))

@@ -14,6 +14,7 @@ MODULES = [
     "audit.designs.proportions",
     "audit.designs.survival",
     "audit.designs.variance",
+    "audit.numbers",
     "audit.pipeline",
 ]
 

@@ -25,6 +25,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import audit
+import audit.validate
 from audit import export
 from audit.cli import main
 from audit.errors import InputError, OutputError
@@ -115,10 +116,10 @@ def test_entities_refused_by_defusedxml_too(corpus, monkeypatch):
     # defusedxml when it is importable) refuses the entity declarations.
     import openpyxl
 
-    import audit.read as read
+    import audit.sheets as sheets
 
     assert openpyxl.DEFUSEDXML is True
-    monkeypatch.setattr(read, "_scan_archive", lambda path, archive: {})
+    monkeypatch.setattr(sheets, "scan_archive", lambda path, archive: {})
     for name in ("entity_expansion.xlsx", "external_entity.xlsx"):
         with pytest.raises(InputError, match="XML entities or external references; refused"):
             read_table(corpus[name])
@@ -126,7 +127,7 @@ def test_entities_refused_by_defusedxml_too(corpus, monkeypatch):
 
 def _read_outcome(path: Path) -> tuple:
     """What reading ``path`` gives: the error sentence, or the typed table in plain text."""
-    from audit.schema import validate
+    from audit.validate import validate
 
     try:
         raw = read_table(path)
@@ -142,19 +143,19 @@ def test_every_workbook_reads_the_same_when_calamine_may_read_it(corpus, monkeyp
     # archive is scanned; the outcome must not change: hostile files are still refused with
     # the same sentence, and sheets with formulas, hidden rows or merges still take the
     # careful path.
-    import audit.read as read
+    import audit.sheets as sheets
 
     books = sorted(name for name in corpus if name.endswith(".xlsx"))
     careful = {name: _read_outcome(corpus[name]) for name in books}
-    monkeypatch.setattr(read, "FAST_READ_MIN_BYTES", 0)
+    monkeypatch.setattr(sheets, "FAST_READ_MIN_BYTES", 0)
     parsed = []
-    original = read._calamine_rows
+    original = sheets._calamine_rows
 
     def spy(path: Path, name: str) -> list:
         parsed.append(path.name)
         return original(path, name)
 
-    monkeypatch.setattr(read, "_calamine_rows", spy)
+    monkeypatch.setattr(sheets, "_calamine_rows", spy)
     for name in books:
         assert _read_outcome(corpus[name]) == careful[name], name
     # calamine did parse, the hostile files among them (refused after the scan all the same).
@@ -635,7 +636,7 @@ def _read_or_refuse(path: Path) -> None:
         return
     validated = None
     try:
-        validated = audit.schema.validate(raw)
+        validated = audit.validate.validate(raw)
     except InputError:
         return
     # Every data row the reader kept reaches the output, in order.
@@ -832,7 +833,7 @@ def test_no_runtime_warning_escapes_the_corpus(corpus):
 
 def test_archive_limit_constants_are_documented():
     text = (Path(__file__).parents[1] / "DEVELOPERS.md").read_text()
-    from audit import read
+    from audit import rawtable
 
     for name in (
         "MAX_ROWS",
@@ -843,7 +844,7 @@ def test_archive_limit_constants_are_documented():
         "MAX_ARCHIVE_MEMBERS",
     ):
         assert name in text, name
-        assert getattr(read, name) > 0
+        assert getattr(rawtable, name) > 0
 
 
 def test_zip_directory_sizes_are_checked_before_parsing(corpus, monkeypatch):

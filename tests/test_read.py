@@ -106,9 +106,9 @@ def test_xlsx_formula_cached_and_uncached(tmp_path, monkeypatch, fast_reader_siz
     # with a formula goes to openpyxl even when it is large enough for the fast reader
     # (fast_reader_size 0), which would read the cell as blank.
     if fast_reader_size is not None:
-        from audit import read
+        from audit import sheets
 
-        monkeypatch.setattr(read, "FAST_READ_MIN_BYTES", fast_reader_size)
+        monkeypatch.setattr(sheets, "FAST_READ_MIN_BYTES", fast_reader_size)
     path = _xlsx(
         tmp_path,
         [["study_id", "design", "realized_se"], ["A", "estimate", "=1/2"], ["B", "estimate", 0.5]],
@@ -150,22 +150,22 @@ def test_large_plain_sheets_read_the_same_with_the_fast_reader(monkeypatch):
     # typed table: the fast reader is an implementation detail, not a different reading.
     import numpy as np
 
-    from audit import read
+    from audit import sheets
     from audit.resources import bundled_dir
-    from audit.schema import validate
+    from audit.validate import validate
 
     path = bundled_dir("demo_data") / "demo_portfolio.xlsx"
     careful = validate(read_table(path))
     calls = []
-    original = read._fast_worksheet
+    original = sheets._fast_worksheet
 
     def spy(*args, **kwargs):
         sheet = original(*args, **kwargs)
         calls.append(sheet is not None)
         return sheet
 
-    monkeypatch.setattr(read, "FAST_READ_MIN_BYTES", 0)
-    monkeypatch.setattr(read, "_fast_worksheet", spy)
+    monkeypatch.setattr(sheets, "FAST_READ_MIN_BYTES", 0)
+    monkeypatch.setattr(sheets, "_fast_worksheet", spy)
     fast = validate(read_table(path))
     assert calls == [True]
     assert list(fast.valid) == list(careful.valid)
