@@ -12,6 +12,7 @@ Exit status (DESIGN.md section 7):
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -224,8 +225,8 @@ def _analysis(args: argparse.Namespace) -> dict[str, Any]:
 
 
 def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
-    from audit.export import refuse_overwrite, write_csv, write_json
-    from audit.pipeline import STAGES, audit_file
+    from audit.export import refuse_overwrite, write_json
+    from audit.pipeline import STAGES
     from audit.report import make_console, render_report, render_study, study_ids_hint
     from audit.rules import load_rules
 
@@ -245,13 +246,7 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
     ]
     stages = [*STAGES, *(stage for stage, target in exports if target)]
     with _progress(run.path, stages, show=not run.quiet) as progress:
-        result = audit_file(
-            run.path,
-            sheet=run.sheet,
-            rules=ruleset,
-            progress=progress,
-            **run.analysis,
-        )
+        result = _audit_with_exports(run, ruleset, reads, progress)
         positions: list[int] = []
         if run.study is not None:
             positions = result.positions_of(run.study)
@@ -263,14 +258,6 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         if run.json_out:
             progress("writing JSON")
             write_json(result, run.json_out)
-        if run.csv_out:
-            progress("writing CSV")
-            write_csv(result, run.csv_out)
-        if run.xlsx_out:
-            from audit.workbook import write_workbook
-
-            progress("writing workbook")
-            write_workbook(result, run.xlsx_out)
         if run.plots_dir is not None:
             from audit.plots import write_plots
 
@@ -326,6 +313,56 @@ def _progress(path: Path, stages: Sequence[str], *, show: bool) -> Any:
     if show and large and sys.stderr.isatty():
         return StageBar(make_console(stderr=True), stages)
     return _NoProgress()
+
+
+def _audit_with_exports(
+    run: CheckRun, ruleset: Any, reads: list[tuple[str, Any]], progress: Any
+) -> AuditResult:
+    """Audit the file a part of the studies at a time, the CSV and workbook exports written as
+    the parts come (the file's cells are let go once written: see pipeline.stream_file)."""
+    from audit.export import CsvExport, write_csv
+    from audit.pipeline import audit_file, stream_file
+    from audit.workbook import WorkbookExport, write_workbook
+
+    with contextlib.ExitStack() as exports:
+        sinks: list[Any] = []
+        if run.csv_out:
+            sinks.append(exports.enter_context(CsvExport(run.csv_out, reads)))
+        workbook = None
+        if run.xlsx_out:
+            workbook = exports.enter_context(WorkbookExport(run.xlsx_out, reads))
+            sinks.append(workbook)
+
+        def on_part(part: AuditResult) -> None:
+            for sink in sinks:
+                sink.add(part)
+
+        result = stream_file(
+            run.path,
+            sheet=run.sheet,
+            rules=ruleset,
+            progress=progress,
+            on_part=on_part if sinks else None,
+            **run.analysis,
+        )
+        if sinks and result.settings.get("rules_reapplied"):
+            # A rule failed on a later part: the parts written carry findings a failing rule
+            # does not have. The exports are written again from the whole file (rare: a bug).
+            exports.pop_all()
+            for sink in sinks:
+                sink.__exit__(RuntimeError, RuntimeError("rewritten"), None)
+            full = audit_file(run.path, sheet=run.sheet, rules=ruleset, **run.analysis)
+            if run.csv_out:
+                write_csv(full, run.csv_out)
+            if run.xlsx_out:
+                write_workbook(full, run.xlsx_out)
+            return result
+        if run.csv_out:
+            progress("writing CSV")
+        if workbook is not None:
+            progress("writing workbook")
+            workbook.finish(result)
+    return result
 
 
 def exit_status(result: AuditResult, fail_on: str | None) -> int:

@@ -30,8 +30,11 @@ if TYPE_CHECKING:
 
 __all__ = [
     "CAUTION",
+    "CsvExport",
     "atomic_output",
+    "files_read",
     "neutralise_formula",
+    "refuse_overwrite",
     "studies_frame",
     "write_csv",
     "write_json",
@@ -254,7 +257,14 @@ def _whole_numbers(values: np.ndarray) -> pd.Series:
 
 
 def write_csv(result: AuditResult, path: str | Path) -> None:
-    """The per-study table as CSV, formula-like text made inert.
+    """The per-study table as CSV, formula-like text made inert (see :class:`CsvExport`)."""
+    with CsvExport(path, files_read(result)) as export:
+        export.add(result)
+
+
+class CsvExport:
+    """The per-study table as CSV, written one part of the studies at a time (``add``), the
+    file put in place when the context closes without an error.
 
     Written with the ``csv`` module from one plain list per column (numbers as Python floats
     and ints, written as ``repr`` writes them; blanks as None): three times faster than
@@ -266,20 +276,43 @@ def write_csv(result: AuditResult, path: str | Path) -> None:
     ``"harmless\\r=cmd..."`` would start a new row with a live formula. Rows with such a cell are
     written by a writer whose line ends hold ``\\r`` too (so it quotes them), then ended with
     ``\\n`` like the others.
+
+    Raises
+    ------
+    OutputError
+        ``path`` is a file the run reads (``reads``, see :func:`refuse_overwrite`) or a folder.
     """
-    refuse_input(result, path)
-    frame = studies_frame(result)
-    header = [neutralise_formula(str(c)) for c in frame.columns]
-    columns, returns = zip(*(_csv_cells(frame[c]) for c in frame.columns), strict=True)
-    with atomic_output(path) as handle:
-        writer = csv.writer(handle, lineterminator="\n")
-        _write_rows(handle, writer, [header], np.array(["\r" in h for h in header]))
+
+    def __init__(self, path: str | Path, reads: Iterable[tuple[str, str | Path | None]]) -> None:
+        refuse_overwrite(path, reads)
+        self._path = path
+        self._stack = contextlib.ExitStack()
+        self._header: list[str] | None = None
+
+    def __enter__(self) -> CsvExport:
+        self._handle = self._stack.enter_context(atomic_output(self._path))
+        self._writer = csv.writer(self._handle, lineterminator="\n")
+        return self
+
+    def __exit__(self, *exc: object) -> bool | None:
+        return self._stack.__exit__(*exc)  # type: ignore[arg-type]
+
+    def add(self, result: AuditResult) -> None:
+        """Append the studies of ``result`` (the header with the first ones)."""
+        frame = studies_frame(result)
+        header = [neutralise_formula(str(c)) for c in frame.columns]
+        if self._header is None:
+            self._header = header
+            _write_rows(self._handle, self._writer, [header], np.array(["\r" in h for h in header]))
+        elif header != self._header:
+            raise ValueError("a part of the studies has other columns than the first")
+        columns, returns = zip(*(_csv_cells(frame[c]) for c in frame.columns), strict=True)
         rows = list(zip(*columns, strict=True))
         carriage = np.zeros(len(rows), dtype=bool)
         for mask in returns:
             if mask is not None:
                 carriage |= mask
-        _write_rows(handle, writer, rows, carriage)
+        _write_rows(self._handle, self._writer, rows, carriage)
 
 
 def _write_rows(handle: IO[str], writer: Any, rows: list, carriage: np.ndarray) -> None:

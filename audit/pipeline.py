@@ -8,7 +8,9 @@
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -23,9 +25,18 @@ from audit.read import RawTable, raw_from_frame, read_table
 from audit.reaudit import set_aside_output_columns
 from audit.result import AuditResult
 from audit.rules import Evaluation, RuleSet, evaluate_rules, resolve_rules
-from audit.validate import Validated, validate
+from audit.schema import SPECS
+from audit.validate import Validated, WholeTable, validate, whole_table
 
-__all__ = ["STAGES", "AuditResult", "audit_file", "audit_table"]
+__all__ = [
+    "CHUNK_ROWS",
+    "STAGES",
+    "AuditResult",
+    "audit_file",
+    "audit_stream",
+    "audit_table",
+    "stream_file",
+]
 
 #: The steps of an audit, in order, as announced to a ``progress`` callback.
 STAGES = ("reading", "checking rows", "computing metrics", "applying rules", "summarising")
@@ -165,7 +176,8 @@ def audit_table(
     """Audit a table of studies given as a DataFrame (one row per study, contract columns).
 
     Cells may be numbers or text as in a spreadsheet (``"5%"``, ``"1,234"``). Rows are numbered
-    as if the frame were a sheet with its header on row 1.
+    as if the frame were a sheet with its header on row 1. Rows are validated, computed and
+    checked against the rules :data:`CHUNK_ROWS` at a time; the result holds them all.
 
     Parameters
     ----------
@@ -195,15 +207,255 @@ def audit_table(
     """
     ruleset = resolve_rules(rules)  # a bad rules file fails before any work is done
     excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
-    raw = set_aside_output_columns(df if isinstance(df, RawTable) else raw_from_frame(df))
-    _announce(progress, "checking rows")
-    return audit_validated(
-        validate(raw),
+    raw = df if isinstance(df, RawTable) else raw_from_frame(df)
+    return audit_stream(
+        raw,
         rules=ruleset,
         continuity_correction=continuity_correction,
         excess=excess,
         progress=progress,
     )
+
+
+#: Rows audited together. Rows are independent apart from a study_id used twice (looked for in
+#: the whole table) and the portfolio statistics (computed once, on all rows), so validation,
+#: metrics and rules run on one chunk of rows at a time and their working memory stays that of
+#: a chunk however large the file.
+CHUNK_ROWS = 50_000
+
+
+@dataclass
+class Part:
+    """The row-by-row audit of the rows ``start`` to ``start + len(table)`` of a table.
+
+    Positions in ``failures``, ``notes`` and the findings count from the part's first row;
+    ``raw`` holds the part's cells as read (None once handed on, see :func:`audit_stream`).
+    """
+
+    start: int
+    raw: RawTable | None
+    table: pd.DataFrame
+    metrics: pd.DataFrame
+    notes: pd.DataFrame
+    status: np.ndarray
+    failures: pd.DataFrame
+    valid: np.ndarray
+    evaluation: Evaluation
+    file_notes: list[str]
+
+    def result(self, source: RawTable) -> AuditResult:
+        """The part as a result of its own, for exports written a part at a time."""
+        assert self.raw is not None
+        return AuditResult(
+            table=self.table,
+            metrics=self.metrics,
+            status=self.status,
+            errors=self.failures,
+            notes=self.notes,
+            findings=self.evaluation.findings,
+            portfolio={},
+            settings={"source": source.source},
+            raw=self.raw,
+        )
+
+
+def _audit_part(
+    rows: RawTable,
+    start: int,
+    whole: WholeTable | None,
+    ruleset: RuleSet,
+    continuity_correction: bool,
+    progress: Progress | None,
+) -> Part:
+    """Validate, compute and apply the rules to ``rows``, the rows from ``start`` on of a table
+    (``whole``: what validation needs to know of that table; None: ``rows`` is all of it)."""
+    _announce(progress, "checking rows")
+    validated = validate(rows, whole)
+    table, metrics, notes, status = _metrics_of(validated, continuity_correction, progress)
+    _announce(progress, "applying rules")
+    evaluation = evaluate_rules(ruleset, table, metrics, validated.valid)
+    return Part(
+        start=start,
+        raw=rows,
+        table=table,
+        metrics=metrics,
+        notes=notes,
+        status=status,
+        failures=validated.failures,
+        valid=validated.valid,
+        evaluation=evaluation,
+        file_notes=validated.file_notes,
+    )
+
+
+def _header_only(raw: RawTable) -> RawTable:
+    """``raw`` without its rows (a copy: a view of no rows would keep all the cells alive)."""
+    return dataclasses.replace(raw, data=raw.data.iloc[:0].copy())
+
+
+def _rows_of(raw: RawTable, start: int, stop: int, data: pd.DataFrame | None) -> RawTable:
+    """The rows ``start`` to ``stop`` of ``raw`` as a table of their own (positions from 0);
+    ``data``: their cells, where they were cut out already."""
+    return dataclasses.replace(
+        raw,
+        data=raw.data.iloc[start:stop].reset_index(drop=True) if data is None else data,
+        rows=raw.rows[start:stop],
+        row_notes=[(p - start, t) for p, t in raw.row_notes if start <= p < stop],
+        cell_problems=[(p - start, c, r) for p, c, r in raw.cell_problems if start <= p < stop],
+    )
+
+
+def audit_stream(
+    raw: RawTable,
+    *,
+    rules: Any = None,
+    continuity_correction: bool = False,
+    excess: ExcessSettings = EXCESS_DEFAULTS,
+    progress: Progress | None = None,
+    on_part: Callable[[AuditResult], None] | None = None,
+    consume: bool = False,
+    chunk_rows: int | None = None,
+) -> AuditResult:
+    """Audit ``raw`` a chunk of rows at a time; the whole result at the end.
+
+    ``on_part`` is called with each part's result as it is done (an export written a part at a
+    time). ``consume``: the cells of ``raw`` are let go once their part is audited and handed
+    on (the result's ``raw`` then holds the header only), so a large file's text does not stay
+    in memory beside its results. Whether a rule failed on a part is known only at the end: a
+    rule that failed anywhere is applied again to the whole table (it then reports no findings
+    at all), and the result's ``settings["rules_reapplied"]`` says so; parts handed on before
+    then carry that rule's findings.
+    """
+    ruleset = resolve_rules(rules)
+    raw = set_aside_output_columns(raw)
+    missing = [c for c in ("study_id", "design") if c not in raw.data.columns]
+    if missing:
+        validate(raw)  # raises the whole-file error naming the missing columns
+    size = CHUNK_ROWS if chunk_rows is None else max(int(chunk_rows), 1)
+    n = len(raw.data)
+    whole = whole_table(raw) if n > size else None
+    bounds = [(start, min(n, start + size)) for start in range(0, max(n, 1), size)]
+    pieces: list[pd.DataFrame | None] = []
+    if consume and whole is not None:
+        # The cells cut into one frame per part (a copy of the references, not of the texts),
+        # so that each part's texts are freed as soon as it is done.
+        pieces = [raw.data.iloc[a:b].reset_index(drop=True).copy() for a, b in bounds]
+        raw = _header_only(raw)
+    parts: list[Part] = []
+    for k, (start, stop) in enumerate(bounds):
+        chunk = None if whole is None else dataclasses.replace(whole, start=start)
+        # Each stage is announced once, by the first part.
+        announce = progress if not parts else None
+        rows = raw
+        if chunk is not None:
+            rows = _rows_of(raw, start, stop, pieces[k] if pieces else None)
+        if pieces:
+            pieces[k] = None
+        part = _audit_part(rows, start, chunk, ruleset, continuity_correction, announce)
+        del rows
+        if on_part is not None:
+            on_part(part.result(raw))
+        part.raw = None
+        parts.append(part)
+    return _merged(
+        _header_only(raw) if consume else raw,
+        parts,
+        ruleset,
+        continuity_correction=continuity_correction,
+        excess=excess,
+        progress=progress,
+    )
+
+
+def _stacked(frames: list[pd.DataFrame], shifts: list[int] | None = None) -> pd.DataFrame:
+    """The frames one above the other (``pos`` moved by ``shifts``), renumbered. Empty frames
+    are left out, as their column types may be those of an empty frame."""
+    if shifts is not None:
+        frames = [
+            f.assign(pos=f["pos"] + s) if len(f) and s else f
+            for f, s in zip(frames, shifts, strict=True)
+        ]
+    if len(frames) == 1:
+        return frames[0]
+    kept = [f for f in frames if len(f)] or frames[:1]
+    return pd.concat(kept, ignore_index=True)
+
+
+def _united(columns: list[pd.Series]) -> pd.Categorical:
+    """One categorical of the values of categorical columns, each distinct text once."""
+    categories = [c.cat.categories.to_numpy(dtype=object) for c in columns]
+    united = pd.Index(np.concatenate(categories), dtype=object).unique()
+    codes = []
+    for column, own in zip(columns, categories, strict=True):
+        mapped = np.append(united.get_indexer(own), -1)  # code -1 (missing) stays -1
+        codes.append(mapped[column.cat.codes.to_numpy()])
+    return pd.Categorical.from_codes(np.concatenate(codes), categories=united)
+
+
+def _merged(
+    raw: RawTable,
+    parts: list[Part],
+    ruleset: RuleSet,
+    *,
+    continuity_correction: bool,
+    excess: ExcessSettings,
+    progress: Progress | None,
+) -> AuditResult:
+    """One result from the parts of a table (each frame stacked once, then let go)."""
+    starts = [p.start for p in parts]
+    first = parts[0]
+    metric_names = [list(p.metrics.columns) for p in parts]
+    table = _stacked([p.table for p in parts])
+    for p in parts:  # each part's copy let go as soon as it is stacked
+        p.table = p.table.iloc[:0].copy()
+    metrics = _stacked([p.metrics for p in parts])
+    for p in parts:
+        p.metrics = p.metrics.iloc[:0].copy()
+    same_metrics = all(names == metric_names[0] for names in metric_names)
+    if not same_metrics:  # a design's own metrics in some parts only: contract order first
+        metrics = metrics[[*METRICS, *[c for c in metrics if c not in METRICS]]]
+    texts = [p.notes["text"] for p in parts]
+    notes = _stacked([p.notes for p in parts], starts)
+    if len(parts) > 1:  # the parts' categories united, each text still stored once
+        notes["text"] = _united(texts)
+    failures = _stacked([p.failures for p in parts], starts)
+    valid = np.concatenate([p.valid for p in parts])
+    status = np.concatenate([p.status for p in parts])
+    evaluations = [p.evaluation for p in parts]
+    problems = any(len(e.problems) for e in evaluations)
+    waiting = [e.waiting for e in evaluations]
+    if problems or not same_metrics or any(w != waiting[0] for w in waiting):
+        # As one pass would: a failing rule reports no findings at all (and supersedes none).
+        evaluation = evaluate_rules(ruleset, table, metrics, valid)
+        reapplied = len(parts) > 1
+    else:
+        findings = _stacked([e.findings for e in evaluations], starts)
+        evaluation = dataclasses.replace(evaluations[0], findings=findings)
+        reapplied = False
+    validated = Validated(
+        table=table,
+        failures=failures,
+        notes=notes.iloc[:0],
+        valid=valid,
+        extra_columns=[c for c in table.columns if c not in SPECS and c != "_row"],
+        raw=raw,
+        file_notes=first.file_notes,
+    )
+    result = _summarised(
+        validated,
+        table,
+        metrics,
+        notes,
+        status,
+        evaluation,
+        ruleset,
+        continuity_correction=continuity_correction,
+        excess=excess,
+        progress=progress,
+    )
+    if reapplied:
+        result.settings["rules_reapplied"] = True
+    return result
 
 
 def audit_file(
@@ -231,4 +483,35 @@ def audit_file(
         excess_pooling=excess_pooling,
         excess_min_studies=excess_min_studies,
         progress=progress,
+    )
+
+
+def stream_file(
+    path: str | Path,
+    *,
+    sheet: str | None = None,
+    rules: Any = None,
+    on_part: Callable[[AuditResult], None] | None = None,
+    continuity_correction: bool = False,
+    excess_basis: str = "planned",
+    excess_method: str = "exact",
+    excess_pooling: str = "fixed",
+    excess_min_studies: int = 5,
+    progress: Progress | None = None,
+) -> AuditResult:
+    """Read and audit a file as the command line does: each part of the studies is handed to
+    ``on_part`` as it is audited (exports written a part at a time) and the file's cells are let
+    go once handed on, so the result's ``raw`` holds the header only. For the whole result,
+    cells included, use :func:`audit_file`."""
+    ruleset = resolve_rules(rules)
+    excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
+    _announce(progress, "reading")
+    return audit_stream(
+        read_table(path, sheet=sheet),
+        rules=ruleset,
+        continuity_correction=continuity_correction,
+        excess=excess,
+        progress=progress,
+        on_part=on_part,
+        consume=True,
     )

@@ -31,7 +31,7 @@ from audit.pvalues import p_value_bounds
 from audit.read import UNCACHED, RawTable, normalise_header
 from audit.schema import COLUMNS, FLAG_VALUES, MISSING_TOKENS, SPECS, Column
 
-__all__ = ["Validated", "WholeTable", "study_ids", "validate"]
+__all__ = ["Validated", "WholeTable", "study_ids", "validate", "whole_table"]
 
 
 @dataclass
@@ -62,12 +62,19 @@ class Validated:
 @dataclass(frozen=True)
 class WholeTable:
     """What :func:`validate` needs to know of a larger table when it checks a slice of it: the
-    typed ``study_id`` of every row of the whole (:func:`study_ids`), their spreadsheet rows,
-    and the position in the whole of the slice's first row."""
+    positions (in the whole, in order) of the rows whose study_id another row uses too, the
+    note for each, and the position in the whole of the slice's first row. Made once for the
+    table by :func:`whole_table`."""
 
-    ids: pd.Series
-    rows: np.ndarray
-    start: int
+    duplicate_pos: np.ndarray
+    duplicate_notes: np.ndarray
+    start: int = 0
+
+
+def whole_table(raw: RawTable) -> WholeTable:
+    """The :class:`WholeTable` of ``raw`` (its study_ids typed as :func:`validate` types them)."""
+    pos, text = _duplicate_ids(study_ids(raw), raw.rows)
+    return WholeTable(pos, text)
 
 
 def study_ids(raw: RawTable) -> pd.Series:
@@ -282,9 +289,9 @@ def _check_ids(table: pd.DataFrame, whole: WholeTable | None, found: _Findings) 
     if whole is None:
         pos, text = _duplicate_ids(sid, table["_row"].to_numpy())
     else:
-        pos, text = _duplicate_ids(whole.ids, whole.rows)
-        mine = (pos >= whole.start) & (pos < whole.start + len(table))
-        pos, text = pos[mine] - whole.start, text[mine]
+        lo, hi = np.searchsorted(whole.duplicate_pos, [whole.start, whole.start + len(table)])
+        pos = whole.duplicate_pos[lo:hi] - whole.start
+        text = whole.duplicate_notes[lo:hi]
     if len(pos):
         found.notes_pos.append(pos)
         found.notes_text.append(text)

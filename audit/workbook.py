@@ -18,8 +18,10 @@ back exactly as the audit read them.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import math
+from collections.abc import Iterable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -27,7 +29,7 @@ import numpy as np
 import pandas as pd
 import xlsxwriter
 
-from audit.export import CAUTION, ILLEGAL_XLSX, atomic_output, refuse_input
+from audit.export import CAUTION, ILLEGAL_XLSX, atomic_output, files_read, refuse_overwrite
 from audit.jsonout import portfolio_document
 from audit.metrics import METRICS
 from audit.numbers import parse_numbers
@@ -36,7 +38,7 @@ from audit.schema import SPECS
 if TYPE_CHECKING:
     from audit.result import AuditResult
 
-__all__ = ["SEVERITY_FILLS", "write_workbook"]
+__all__ = ["SEVERITY_FILLS", "WorkbookExport", "write_workbook"]
 
 #: Fill colours of the severity cell; the severity is also written as text.
 SEVERITY_FILLS = {"serious": "#E8A0A0", "warning": "#F5D58C", "note": "#CFE0F1"}
@@ -163,15 +165,42 @@ def _by_row_text(result: AuditResult, frame: pd.DataFrame, column: str) -> list[
     return ["\n".join(str(v) for v in items) for items in result.by_row(frame, column)]
 
 
-def _audit_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
-    ws = wb.add_worksheet("audit")
-    user_names, user_values = _user_columns(result)
+class _AuditSheet:
+    """The ``audit`` sheet, written one part of the studies at a time."""
+
+    def __init__(self, wb: xlsxwriter.Workbook, styles: _Styles) -> None:
+        self.ws = wb.add_worksheet("audit")
+        self.styles = styles
+        self.next_row = 1
+        self.columns: list[str] | None = None
+
+    def add(self, result: AuditResult) -> None:
+        """Append the studies of ``result`` (the header with the first ones)."""
+        ws, styles = self.ws, self.styles
+        user_names, user_values = _user_columns(result)
+        metric_names = list(result.metrics.columns)
+        ours = ["row", "status", "highest severity", "findings", *metric_names, "errors", "notes"]
+        if self.columns is None:
+            self.columns = [*user_names, *ours]
+            _header(ws, self.columns, len(user_names), styles)
+            ws.freeze_panes(1, 1)
+        elif self.columns != [*user_names, *ours]:
+            raise ValueError("a part of the studies has other columns than the first")
+        _audit_rows(ws, result, self.next_row, len(user_names), user_values, styles)
+        self.next_row += len(result.table)
+
+
+def _audit_rows(
+    ws: Any,
+    result: AuditResult,
+    first_row: int,
+    ours_at: int,
+    user_values: list[np.ndarray],
+    styles: _Styles,
+) -> None:
+    """The rows of ``result``'s studies, from sheet row ``first_row`` (0-based) on."""
     metrics = result.metrics
     metric_names = list(metrics.columns)
-    ours = ["row", "status", "highest severity", "findings", *metric_names, "errors", "notes"]
-    _header(ws, [*user_names, *ours], len(user_names), styles)
-    ws.freeze_panes(1, 1)
-
     n = len(result.table)
     findings = result.findings
     worst = np.full(n, "", dtype=object)
@@ -197,7 +226,7 @@ def _audit_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) 
     worst_list = worst.tolist()
     # Per metric: its column, its values (None where not computed) and its format; numbers
     # are Python floats so that the writer does no conversion per cell.
-    first = len(user_names) + 4
+    first = ours_at + 4
     metric_columns = []
     for j, name in enumerate(metric_names):
         values = metrics[name].to_numpy()
@@ -212,10 +241,9 @@ def _audit_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) 
     write_number, write_string = ws.write_number, ws.write_string
     # Each user column prepared once: its text cleaned and checked per distinct value.
     user = [(j, *_prepared(values, styles)) for j, values in enumerate(user_values)]
-    ours_at = len(user_names)
     invalid = styles.invalid
     for i in range(n):
-        r = i + 1
+        r = first_row + i
         for j, cells, formats, text in user:
             v = cells[i]
             if v is not None:
@@ -367,24 +395,51 @@ def _readme_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles)
 
 
 def write_workbook(result: AuditResult, path: str | Path) -> None:
-    """Write the annotated workbook to ``path`` (atomically), streamed: xlsxwriter's
-    constant-memory mode writes each row as it comes, with formats made once.
+    """Write the annotated workbook to ``path`` (atomically; see :class:`WorkbookExport`).
 
     Raises
     ------
     OutputError
         ``path`` is the input file, a rules file of the run, or a folder.
     """
-    refuse_input(result, path)
-    with atomic_output(path, "wb") as handle:
-        wb = xlsxwriter.Workbook(
+    with WorkbookExport(path, files_read(result)) as export:
+        export.add(result)
+        export.finish(result)
+
+
+class WorkbookExport:
+    """The annotated workbook, streamed: xlsxwriter's constant-memory mode writes each row as
+    it comes, with formats made once. The ``audit`` sheet takes the studies one part at a time
+    (``add``); ``finish`` writes the other sheets from the whole result. The file is put in
+    place when the context closes without an error.
+    """
+
+    def __init__(self, path: str | Path, reads: Iterable[tuple[str, str | Path | None]]) -> None:
+        refuse_overwrite(path, reads)
+        self._path = path
+        self._stack = contextlib.ExitStack()
+
+    def __enter__(self) -> WorkbookExport:
+        handle = self._stack.enter_context(atomic_output(self._path, "wb"))
+        self._wb = xlsxwriter.Workbook(
             handle,
             {"constant_memory": True, "strings_to_formulas": False, "strings_to_urls": False},
         )
-        styles = _Styles(wb)
-        _audit_sheet(wb, result, styles)
-        _portfolio_sheet(wb, result, styles)
-        _rules_sheet(wb, result, styles)
-        _invalid_sheet(wb, result, styles)
-        _readme_sheet(wb, result, styles)
-        wb.close()
+        self._styles = _Styles(self._wb)
+        self._audit = _AuditSheet(self._wb, self._styles)
+        return self
+
+    def __exit__(self, *exc: object) -> bool | None:
+        return self._stack.__exit__(*exc)  # type: ignore[arg-type]
+
+    def add(self, result: AuditResult) -> None:
+        """Append the studies of ``result`` to the ``audit`` sheet."""
+        self._audit.add(result)
+
+    def finish(self, result: AuditResult) -> None:
+        """The portfolio, rules, invalid-rows and read-me sheets of the whole ``result``."""
+        _portfolio_sheet(self._wb, result, self._styles)
+        _rules_sheet(self._wb, result, self._styles)
+        _invalid_sheet(self._wb, result, self._styles)
+        _readme_sheet(self._wb, result, self._styles)
+        self._wb.close()
