@@ -342,6 +342,7 @@ def audit_stream(
         pieces = [raw.data.iloc[a:b].reset_index(drop=True).copy() for a, b in bounds]
         raw = _header_only(raw)
     parts: list[Part] = []
+    tables, metrics = (_Columns(n), _Columns(n)) if len(bounds) > 1 else (None, None)
     for k, (start, stop) in enumerate(bounds):
         chunk = None if whole is None else dataclasses.replace(whole, start=start)
         # Each stage is announced once, by the first part.
@@ -356,15 +357,60 @@ def audit_stream(
         if on_part is not None:
             on_part(part.result(raw))
         part.raw = None
+        if tables is not None and metrics is not None:
+            tables.put(start, part.table)
+            metrics.put(start, part.metrics)
+            part.table, part.metrics = part.table.iloc[:0].copy(), part.metrics.iloc[:0].copy()
         parts.append(part)
     return _merged(
         _header_only(raw) if consume else raw,
         parts,
+        tables,
+        metrics,
         ruleset,
         continuity_correction=continuity_correction,
         excess=excess,
         progress=progress,
     )
+
+
+class _Columns:
+    """The columns of a frame of ``n`` rows, filled a part at a time: the parts' own frames go as
+    soon as they are copied in, and no frame is stacked at the end (which would need the
+    memory of both)."""
+
+    def __init__(self, n: int) -> None:
+        self.n = n
+        self.columns: dict[str, np.ndarray] = {}
+
+    def put(self, start: int, frame: pd.DataFrame) -> None:
+        for name in frame.columns:
+            values = frame[name].to_numpy()
+            column = self.columns.get(name)
+            if column is not None and column.dtype != values.dtype:
+                column = self.columns[name] = column.astype(object)
+                values = values.astype(object)
+            if column is None:
+                # Rows of earlier parts without this column are blank (as in one pass).
+                fill = np.nan if values.dtype.kind == "f" else None
+                dtype = values.dtype if values.dtype.kind in "fO" else object
+                column = self.columns[name] = np.full(self.n, fill, dtype=dtype)
+                if values.dtype.kind in "iub" and start == 0:
+                    column = self.columns[name] = np.empty(self.n, dtype=values.dtype)
+            column[start : start + len(values)] = values
+
+    def frame(self) -> pd.DataFrame:
+        """The filled columns as one frame (object columns kept as objects)."""
+        return pd.DataFrame(
+            {
+                name: pd.Series(values, dtype=object, copy=False)
+                if values.dtype == object
+                else values
+                for name, values in self.columns.items()
+            },
+            index=pd.RangeIndex(self.n),
+            copy=False,
+        )
 
 
 def _stacked(frames: list[pd.DataFrame], shifts: list[int] | None = None) -> pd.DataFrame:
@@ -395,6 +441,8 @@ def _united(columns: list[pd.Series]) -> pd.Categorical:
 def _merged(
     raw: RawTable,
     parts: list[Part],
+    tables: _Columns | None,
+    columns: _Columns | None,
     ruleset: RuleSet,
     *,
     continuity_correction: bool,
@@ -405,12 +453,10 @@ def _merged(
     starts = [p.start for p in parts]
     first = parts[0]
     metric_names = [list(p.metrics.columns) for p in parts]
-    table = _stacked([p.table for p in parts])
-    for p in parts:  # each part's copy let go as soon as it is stacked
-        p.table = p.table.iloc[:0].copy()
-    metrics = _stacked([p.metrics for p in parts])
-    for p in parts:
-        p.metrics = p.metrics.iloc[:0].copy()
+    if tables is None or columns is None:  # one part: its own frames
+        table, metrics = first.table, first.metrics
+    else:
+        table, metrics = tables.frame(), columns.frame()
     same_metrics = all(names == metric_names[0] for names in metric_names)
     if not same_metrics:  # a design's own metrics in some parts only: contract order first
         metrics = metrics[[*METRICS, *[c for c in metrics if c not in METRICS]]]

@@ -111,6 +111,7 @@ def read_table(path: str | Path, sheet: str | None = None) -> RawTable:
     delimiter = "\t" if suffix == ".tsv" else sniff_delimiter(text)
     with _collector_paused():
         cells, problems = parse_delimited(text, delimiter, path)
+        del text  # no longer needed: the records hold the cells
         table = to_raw(
             Sheet(cells, list(range(1, len(cells) + 1))),
             str(path),
