@@ -322,7 +322,6 @@ def _audit_with_exports(
     the parts come (the file's cells are let go once written: see pipeline.stream_file)."""
     from audit.export import CsvExport, write_csv
     from audit.pipeline import audit_file, stream_file
-    from audit.workbook import WorkbookExport, write_workbook
 
     with contextlib.ExitStack() as exports:
         sinks: list[Any] = []
@@ -330,6 +329,8 @@ def _audit_with_exports(
             sinks.append(exports.enter_context(CsvExport(run.csv_out, reads)))
         workbook = None
         if run.xlsx_out:
+            from audit.workbook import WorkbookExport  # xlsxwriter only when a workbook is asked
+
             workbook = exports.enter_context(WorkbookExport(run.xlsx_out, reads))
             sinks.append(workbook)
 
@@ -355,6 +356,8 @@ def _audit_with_exports(
             if run.csv_out:
                 write_csv(full, run.csv_out)
             if run.xlsx_out:
+                from audit.workbook import write_workbook
+
                 write_workbook(full, run.xlsx_out)
             return result
         if run.csv_out:
