@@ -220,8 +220,10 @@ def audit_table(
 #: Rows audited together. Rows are independent apart from a study_id used twice (looked for in
 #: the whole table) and the portfolio statistics (computed once, on all rows), so validation,
 #: metrics and rules run on one chunk of rows at a time and their working memory stays that of
-#: a chunk however large the file.
-CHUNK_ROWS = 50_000
+#: a chunk however large the file. Each chunk has fixed costs (a setting's solves, thread start-up
+#: for the large special-function calls): 100,000 rows measured faster than 50,000 at 100k and 1M
+#: studies (benchmarks/run.py), for about 10 MB more at the peak.
+CHUNK_ROWS = 100_000
 
 
 @dataclass

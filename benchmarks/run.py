@@ -61,15 +61,17 @@ def _tree_pss_mb(pid: int) -> float:
     """Proportional set size of process ``pid`` and its descendants, in MB (Linux; 0 elsewhere).
 
     Pages two processes share after a fork count half to each, so the sum is the memory the
-    whole command holds."""
+    whole command holds. A process's children are listed per thread (``task/*/children``): a
+    child forked from any thread counts."""
     total, todo = 0, [pid]
     while todo:
         current = todo.pop()
         try:
             with open(f"/proc/{current}/smaps_rollup") as f:
                 total += sum(int(line.split()[1]) for line in f if line.startswith("Pss:"))
-            with open(f"/proc/{current}/task/{current}/children") as f:
-                todo.extend(int(child) for child in f.read().split())
+            for task in os.listdir(f"/proc/{current}/task"):
+                with open(f"/proc/{current}/task/{task}/children") as f:
+                    todo.extend(int(child) for child in f.read().split())
         except (OSError, ValueError):
             continue  # ended meanwhile, or no /proc
     return total / 1024.0
@@ -92,7 +94,12 @@ def run_child(*args: str, old: str | None = None) -> tuple[float, float, str]:
         env = None
         if old is not None:  # the earlier engine's package first on the path
             env = {**os.environ, "PYTHONPATH": old}
-        proc = subprocess.Popen([sys.executable, *args], stdout=out_file, stderr=err_file, env=env)
+        # Run from the data folder: "python -c" and "-m" put the working folder first on the
+        # path, and from the repository root that is this checkout's package, whatever the
+        # PYTHONPATH.
+        proc = subprocess.Popen(
+            [sys.executable, *args], stdout=out_file, stderr=err_file, env=env, cwd=DATA
+        )
         sampled = [0.0]
         ended = threading.Event()
 
@@ -167,6 +174,12 @@ def check_cli(
     args = ["-m", "audit", "check", str(path), "--quiet", *(extra or ("--json", str(out)))]
     wall, peak, _ = run_child(*args, old=old)
     return wall, peak
+
+
+def engine_of(old: str | None) -> str:
+    """The folder of the package a child runs (to be sure ``--old`` runs the old engine)."""
+    code = "import audit, pathlib; print(pathlib.Path(audit.__file__).resolve().parent.parent)"
+    return run_child("-c", code, old=old)[2].strip()
 
 
 def paired(path: Path, old: str | None, repeat: int) -> dict[str, object]:
@@ -382,6 +395,13 @@ def main() -> None:
         f"study-audit benchmark on {os.cpu_count()} CPUs, Python {platform.python_version()}, "
         f"load average {load[0]:.1f} (a busy machine slows every figure alike)"
     )
+    DATA.mkdir(exist_ok=True)
+    if args.old:
+        engines = engine_of(None), engine_of(args.old)
+        results["engines"] = engines
+        print(f"new engine from {engines[0]}, old engine from {engines[1]}")
+        if Path(engines[1]) != Path(args.old).resolve():
+            raise SystemExit(f"--old {args.old}: the children import {engines[1]} instead")
     for rows in sizes:
         csv_path = portfolio(rows, "csv")
         s = stages(csv_path)
@@ -423,6 +443,10 @@ def main() -> None:
         wall, peak = check_cli(path)
         million: dict[str, object] = {"json_wall_s": wall, "json_peak_mb": peak}
         million["same_as_one_pass"] = same_as_one_pass(path)
+        if args.old:
+            old_wall, old_peak = check_cli(path, old=args.old, out=DATA / "old.audit.json")
+            million.update({"old_json_wall_s": old_wall, "old_json_peak_mb": old_peak})
+            print(f"  old engine, same run: {old_wall:.1f} s wall, peak {old_peak:.0f} MB")
         results["1000000"] = million
         print(
             f"\n1,000,000 rows: check --json --quiet {wall:.1f} s wall, peak {peak:.0f} MB; "
