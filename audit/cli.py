@@ -12,6 +12,7 @@ Exit status (DESIGN.md section 7):
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -22,7 +23,7 @@ from audit import __version__
 from audit.errors import AuditError, ConfigError, OutputError
 
 if TYPE_CHECKING:
-    from audit.pipeline import AuditResult
+    from audit.result import AuditResult
 
 __all__ = ["main"]
 
@@ -257,13 +258,18 @@ def _analysis(args: argparse.Namespace) -> dict[str, Any]:
 
 
 def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
-    from audit.export import write_csv, write_json
-    from audit.pipeline import STAGES, audit_file
+    from audit.export import refuse_overwrite, write_json
+    from audit.pipeline import STAGES
     from audit.report import make_console, render_report, render_study, study_ids_hint
     from audit.rules import load_rules
 
-    # The rules are checked before the (possibly long) read, so a typo fails at once.
+    # The rules are checked before the (possibly long) read, so a typo fails at once; so is
+    # an output that would replace a file the run reads.
     ruleset = load_rules(run.rule_files)
+    reads = [("the input file", run.path), *(("a rules file", f) for f in run.rule_files)]
+    for target in (run.json_out, run.csv_out, run.xlsx_out, run.report_out):
+        if target is not None:
+            refuse_overwrite(target, reads)
     to_stdout = "-" in (run.json_out, run.csv_out)
     exports = [
         ("writing JSON", run.json_out),
@@ -273,18 +279,7 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
     ]
     stages = [*STAGES, *(stage for stage, target in exports if target)]
     with _progress(run.path, stages, show=not run.quiet) as progress:
-        result = audit_file(
-            run.path,
-            sheet=run.sheet,
-            rules=ruleset,
-            progress=progress,
-            prepare_json=bool(run.json_out),
-            **run.analysis,
-        )
-        report_text = None
-        if not run.quiet and run.study is None and result.prepared_studies is not None:
-            # The report is rendered while a child still encodes JSON; shown after the exports.
-            report_text = _rendered_report(result, to_stdout, run.fail_on)
+        result = _audit_with_exports(run, ruleset, reads, progress)
         positions: list[int] = []
         for study in run.study or ():
             found = result.positions_of(study)
@@ -297,14 +292,6 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         if run.json_out:
             progress("writing JSON")
             write_json(result, run.json_out)
-        if run.csv_out:
-            progress("writing CSV")
-            write_csv(result, run.csv_out)
-        if run.xlsx_out:
-            from audit.workbook import write_workbook
-
-            progress("writing workbook")
-            write_workbook(result, run.xlsx_out)
         if run.plots_dir is not None:
             from audit.plots import write_plots
 
@@ -329,24 +316,11 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
             render_report(result, plain, fail_on=run.fail_on)
     if not run.quiet:
         console = make_console(stderr=to_stdout)
-        if report_text is not None:
-            console.file.write(report_text)
-            console.file.flush()
-        elif run.study is not None:
+        if run.study is not None:
             render_study(result, console, positions)
         else:
             render_report(result, console, fail_on=run.fail_on)
     return exit_status(result, run.fail_on), result
-
-
-def _rendered_report(result: AuditResult, to_stdout: bool, fail_on: str | None) -> str:
-    """The terminal report as the console would print it (styles included), not yet shown."""
-    from audit.report import make_console, render_report
-
-    console = make_console(stderr=to_stdout)
-    with console.capture() as capture:
-        render_report(result, console, fail_on=fail_on)
-    return capture.get()
 
 
 class _NoProgress:
@@ -373,6 +347,59 @@ def _progress(path: Path, stages: Sequence[str], *, show: bool) -> Any:
     if show and large and sys.stderr.isatty():
         return StageBar(make_console(stderr=True), stages)
     return _NoProgress()
+
+
+def _audit_with_exports(
+    run: CheckRun, ruleset: Any, reads: list[tuple[str, Any]], progress: Any
+) -> AuditResult:
+    """Audit the file a part of the studies at a time, the CSV and workbook exports written as
+    the parts come (the file's cells are let go once written: see pipeline.stream_file)."""
+    from audit.export import CsvExport, write_csv
+    from audit.pipeline import audit_file, stream_file
+
+    with contextlib.ExitStack() as exports:
+        sinks: list[Any] = []
+        if run.csv_out:
+            sinks.append(exports.enter_context(CsvExport(run.csv_out, reads)))
+        workbook = None
+        if run.xlsx_out:
+            from audit.workbook import WorkbookExport  # xlsxwriter only when a workbook is asked
+
+            workbook = exports.enter_context(WorkbookExport(run.xlsx_out, reads))
+            sinks.append(workbook)
+
+        def on_part(part: AuditResult) -> None:
+            for sink in sinks:
+                sink.add(part)
+
+        result = stream_file(
+            run.path,
+            sheet=run.sheet,
+            rules=ruleset,
+            progress=progress,
+            on_part=on_part if sinks else None,
+            **run.analysis,
+        )
+        if sinks and result.settings.get("rules_reapplied"):
+            # A rule failed on a later part: the parts written carry findings a failing rule
+            # does not have. The exports are written again from the whole file (rare: a bug).
+            exports.pop_all()
+            for sink in sinks:
+                sink.__exit__(RuntimeError, RuntimeError("rewritten"), None)
+            full = audit_file(run.path, sheet=run.sheet, rules=ruleset, **run.analysis)
+            if run.csv_out:
+                write_csv(full, run.csv_out)
+            if run.xlsx_out:
+                from audit.workbook import write_workbook
+
+                write_workbook(full, run.xlsx_out)
+            return result
+        if run.csv_out:
+            progress("writing CSV")
+        if workbook is not None:
+            progress("writing workbook")
+            workbook.finish(result)
+    return result
 
 
 def exit_status(result: AuditResult, fail_on: str | None) -> int:
@@ -475,10 +502,12 @@ def _template(args: argparse.Namespace) -> int:
 
 
 def _respond(args: argparse.Namespace) -> int:
-    from audit.export import atomic_output
+    from audit.export import atomic_output, refuse_overwrite
     from audit.pipeline import audit_file
     from audit.respond import respond_text
 
+    if args.out is not None:
+        refuse_overwrite(args.out, [("the input file", args.file)])
     result = audit_file(args.file, sheet=args.sheet, **_analysis(args))
     text = respond_text(result, args.study_id, effect=args.effect)
     if args.out is None:

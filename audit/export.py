@@ -1,4 +1,4 @@
-"""Write an :class:`~audit.pipeline.AuditResult` to files: JSON (the contract), CSV and XLSX.
+"""Write an :class:`~audit.result.AuditResult` to files: JSON (the contract) and CSV.
 
 Files are written atomically: to a temporary file in the target folder, then renamed over the
 target, so an interrupted run never leaves a half-written file where a good one was. No export
@@ -10,28 +10,31 @@ from __future__ import annotations
 
 import contextlib
 import csv
+import io
 import os
 import re
 import sys
 import tempfile
-from collections.abc import Callable, Iterator
+from collections.abc import Iterable, Iterator
 from pathlib import Path
-from typing import IO, TYPE_CHECKING
+from typing import IO, TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
 from audit.errors import OutputError
-from audit.parallel import ChildTask, can_fork
-from audit.studyjson import INTEGER_METRICS
+from audit.jsonout import INTEGER_METRICS, JSON_INDENT_LIMIT, document_bytes, document_parts
 
 if TYPE_CHECKING:
-    from audit.pipeline import AuditResult
+    from audit.result import AuditResult
 
 __all__ = [
     "CAUTION",
+    "CsvExport",
     "atomic_output",
+    "files_read",
     "neutralise_formula",
+    "refuse_overwrite",
     "studies_frame",
     "write_csv",
     "write_json",
@@ -88,17 +91,43 @@ def _umask() -> int:
     return mask
 
 
-def refuse_input(result: AuditResult, path: str | Path) -> None:
-    """An export must never replace the file that was audited."""
-    source = result.settings.get("source")
-    if str(path) == "-" or not source:
+def refuse_overwrite(path: str | Path, reads: Iterable[tuple[str, str | Path | None]]) -> None:
+    """No output may replace a file the run reads: ``reads`` pairs a description ("the input
+    file", "the rules file") with a path. The same file under another name or through a link
+    counts.
+
+    Raises
+    ------
+    OutputError
+        ``path`` is one of the files read.
+    """
+    if str(path) == "-":
         return
-    with contextlib.suppress(OSError):
-        if Path(path).exists() and Path(source).exists() and os.path.samefile(path, source):
+    target = Path(path)
+    for what, source in reads:
+        if source is None or str(source) in ("", "-"):
+            continue
+        try:
+            same = target.exists() and Path(source).exists() and os.path.samefile(target, source)
+        except OSError:
+            same = False
+        if same:
             raise OutputError(
-                f"{path} is the input file; choose another name for the export (the input is "
-                "never overwritten)."
+                f"{path} is {what} this run reads; choose another name for the output (no "
+                "output replaces a file the run reads)."
             )
+
+
+def files_read(result: AuditResult) -> list[tuple[str, str | Path | None]]:
+    """The files a result was made from: its input and the rules files given by the user."""
+    reads: list[tuple[str, str | Path | None]] = [("the input file", result.settings.get("source"))]
+    reads += [("a rules file", f) for f in result.settings.get("rule_files", [])]
+    return reads
+
+
+def refuse_input(result: AuditResult, path: str | Path) -> None:
+    """An export must never replace the file that was audited, nor a rules file of the run."""
+    refuse_overwrite(path, files_read(result))
 
 
 def neutralise_formula(value: object) -> object:
@@ -118,110 +147,25 @@ def neutralise_formula(value: object) -> object:
     return value
 
 
-#: Up to this many studies the JSON is indented for reading; beyond, it is compact.
-JSON_INDENT_LIMIT = 2_000
-
-
-def json_bytes(document: dict[str, object], *, indent: bool) -> bytes:
-    """Encode the contract document with orjson (NaN becomes null, numpy scalars are numbers)."""
-    import orjson
-
-    from audit.studyjson import json_default
-
-    option = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
-    if indent:
-        option |= orjson.OPT_INDENT_2
-    return orjson.dumps(document, default=json_default, option=option)
-
-
 def write_json(result: AuditResult, path: str | Path) -> None:
-    """The contract JSON document (DESIGN.md section 5), UTF-8.
+    """The contract JSON document (DESIGN.md section 5), UTF-8, from :mod:`audit.jsonout`.
 
-    Indented for portfolios of up to :data:`JSON_INDENT_LIMIT` studies. Larger documents are
-    compact and streamed: studies are encoded a chunk at a time while a second thread writes the
-    previous chunk (file writes release the interpreter lock), so memory stays bounded and the
-    disk works while the next chunk is encoded. From :data:`PARALLEL_JSON_MIN` studies, where
-    the platform can fork, a child process encodes the last studies meanwhile
-    (:class:`audit.parallel.ChildTask`). A result of ``audit_file(..., prepare_json=True)``
-    comes with text encoded during the audit already (:class:`audit.pipeline.PreparedStudies`:
-    the child's studies and, from an audit in two shares, the parent's), which is used as is.
+    Indented for portfolios of up to :data:`~audit.jsonout.JSON_INDENT_LIMIT` studies. Larger
+    documents are compact and streamed: studies are encoded a chunk at a time while a second
+    thread writes the previous chunk (file writes release the interpreter lock), so the memory
+    the text takes stays bounded.
     """
     refuse_input(result, path)
-    n = len(result.table)
-    prepared, result.prepared_studies = result.prepared_studies, None
-    if n <= JSON_INDENT_LIMIT:
-        if prepared is not None:
-            prepared.close()
-        data = json_bytes(result.to_dict(), indent=True)
+    if len(result.table) <= JSON_INDENT_LIMIT:
+        data = document_bytes(result, indent=True)
         with atomic_output(path, "wb") as handle:
             handle.write(data)
             handle.write(b"\n")
         return
-    head = json_bytes(result.document_head(), indent=False)
-    tail = json_bytes(result.document_tail(), indent=False)
-    if prepared is not None:  # started by the audit (audit_file(..., prepare_json=True))
-        half = prepared.start
-    else:
-        # The child takes a little more: this process also writes the file and appends the
-        # child's part to it (a forked child, on the other hand, runs some 25 % slower: its
-        # first writes to memory shared with this process copy pages).
-        half = int(n * PARENT_SHARE) if n >= PARALLEL_JSON_MIN and can_fork() else n
-
-    def second_half() -> Iterator[bytes]:
-        for i, part in enumerate(result.study_json(start=half)):
-            yield b"," + part if i else part
-
-    folder = None if str(path) == "-" else Path(path).resolve().parent
-    with atomic_output(path, "wb") as handle:
-        # The child starts before the writer thread: a forked child has only the forking thread.
-        own = None
-        if prepared is not None:
-            started: contextlib.AbstractContextManager = contextlib.closing(prepared)
-            child, own = prepared.task, prepared.own
-        elif half < n:
-            started = child = ChildTask(lambda out: out.writelines(second_half()), folder)
-        else:
-            started = contextlib.nullcontext()
-        with started, _BackgroundWriter(handle) as writer:
-            writer.write(head[:-1] + b',"studies":[')
-            if own is not None:  # encoded by the audit already
-                writer.write(lambda handle: _append_file(handle, own))
-            else:
-                for i, part in enumerate(result.study_json(stop=half)):
-                    writer.write((b"," if i else b"") + part)
-            if half < n:
-                writer.write(b",")
-                done = child.result()
-                if done is not None:
-                    writer.write(lambda handle: _append_file(handle, done))
-                else:  # no child, or it failed: encode the second half here
-                    for part in second_half():
-                        writer.write(part)
-            writer.write(b"]," + tail[1:] + b"\n")
-
-
-#: From this many studies the JSON encoding is split over two processes (see audit.parallel).
-PARALLEL_JSON_MIN = 20_000
-#: The share of the studies this process encodes when a child encodes the rest (measured best
-#: between 0.45 and 0.5 on two cores).
-PARENT_SHARE = 0.47
-
-
-def _append_file(handle: IO[bytes], source: IO[bytes]) -> None:
-    """Append all of ``source`` (a regular file) to ``handle``: copied by the kernel where it
-    can (sendfile), else read and written."""
-    handle.flush()
-    size = os.fstat(source.fileno()).st_size
-    offset = 0
-    with contextlib.suppress(OSError, AttributeError, ValueError):
-        while offset < size:
-            sent = os.sendfile(handle.fileno(), source.fileno(), offset, size - offset)
-            if not sent:
-                break
-            offset += sent
-    source.seek(offset)
-    while block := source.read(16 * 2**20):
-        handle.write(block)
+    with atomic_output(path, "wb") as handle, _BackgroundWriter(handle) as writer:
+        for part in document_parts(result):
+            writer.write(part)
+        writer.write(b"\n")
 
 
 class _BackgroundWriter:
@@ -232,7 +176,7 @@ class _BackgroundWriter:
         import threading
 
         self._handle = handle
-        self._queue: queue.Queue[bytes | Callable[[IO], None] | None] = queue.Queue(maxsize=2)
+        self._queue: queue.Queue[bytes | None] = queue.Queue(maxsize=2)
         self._error: BaseException | None = None
         self._thread = threading.Thread(target=self._run, daemon=True)
 
@@ -240,10 +184,7 @@ class _BackgroundWriter:
         while (data := self._queue.get()) is not None:
             if self._error is None:
                 try:
-                    if callable(data):
-                        data(self._handle)
-                    else:
-                        self._handle.write(data)
+                    self._handle.write(data)
                 except BaseException as exc:  # reported by the main thread on exit
                     self._error = exc
 
@@ -251,8 +192,8 @@ class _BackgroundWriter:
         self._thread.start()
         return self
 
-    def write(self, data: bytes | Callable[[IO], None]) -> None:
-        """Queue bytes to write, or a function to call with the file (in order)."""
+    def write(self, data: bytes) -> None:
+        """Queue bytes to write (in order)."""
         if self._error is not None:
             raise self._error
         self._queue.put(data)
@@ -316,43 +257,106 @@ def _whole_numbers(values: np.ndarray) -> pd.Series:
 
 
 def write_csv(result: AuditResult, path: str | Path) -> None:
-    """The per-study table as CSV, formula-like text made inert.
+    """The per-study table as CSV, formula-like text made inert (see :class:`CsvExport`)."""
+    with CsvExport(path, files_read(result)) as export:
+        export.add(result)
+
+
+class CsvExport:
+    """The per-study table as CSV, written one part of the studies at a time (``add``), the
+    file put in place when the context closes without an error.
 
     Written with the ``csv`` module from one plain list per column (numbers as Python floats
     and ints, written as ``repr`` writes them; blanks as None): three times faster than
     ``DataFrame.to_csv`` at 100,000 studies, with the same text. Formula-like text is looked
     for once per distinct value of a column.
+
+    Lines end with ``\\n``, so the csv module quotes cells holding ``\\n`` but not those holding
+    a carriage return alone, which a spreadsheet program reads as a line break: a cell
+    ``"harmless\\r=cmd..."`` would start a new row with a live formula. Rows with such a cell are
+    written by a writer whose line ends hold ``\\r`` too (so it quotes them), then ended with
+    ``\\n`` like the others.
+
+    Raises
+    ------
+    OutputError
+        ``path`` is a file the run reads (``reads``, see :func:`refuse_overwrite`) or a folder.
     """
-    refuse_input(result, path)
-    frame = studies_frame(result)
-    header = [neutralise_formula(str(c)) for c in frame.columns]
-    columns = [_csv_cells(frame[c]) for c in frame.columns]
-    with atomic_output(path) as handle:
-        writer = csv.writer(handle, lineterminator="\n")
-        writer.writerow(header)
-        writer.writerows(zip(*columns, strict=True))
+
+    def __init__(self, path: str | Path, reads: Iterable[tuple[str, str | Path | None]]) -> None:
+        refuse_overwrite(path, reads)
+        self._path = path
+        self._stack = contextlib.ExitStack()
+        self._header: list[str] | None = None
+
+    def __enter__(self) -> CsvExport:
+        self._handle = self._stack.enter_context(atomic_output(self._path))
+        self._writer = csv.writer(self._handle, lineterminator="\n")
+        return self
+
+    def __exit__(self, *exc: object) -> bool | None:
+        return self._stack.__exit__(*exc)  # type: ignore[arg-type]
+
+    def add(self, result: AuditResult) -> None:
+        """Append the studies of ``result`` (the header with the first ones)."""
+        frame = studies_frame(result)
+        header = [neutralise_formula(str(c)) for c in frame.columns]
+        if self._header is None:
+            self._header = header
+            _write_rows(self._handle, self._writer, [header], np.array(["\r" in h for h in header]))
+        elif header != self._header:
+            raise ValueError("a part of the studies has other columns than the first")
+        columns, returns = zip(*(_csv_cells(frame[c]) for c in frame.columns), strict=True)
+        rows = list(zip(*columns, strict=True))
+        carriage = np.zeros(len(rows), dtype=bool)
+        for mask in returns:
+            if mask is not None:
+                carriage |= mask
+        _write_rows(self._handle, self._writer, rows, carriage)
 
 
-def _csv_cells(column: pd.Series) -> list[object]:
-    """A column's cells for the csv module: None where blank, text made inert."""
+def _write_rows(handle: IO[str], writer: Any, rows: list, carriage: np.ndarray) -> None:
+    """``rows`` through ``writer``; those marked in ``carriage`` quoted where a cell holds \\r."""
+    if not carriage.any():
+        writer.writerows(rows)
+        return
+    quoting = io.StringIO()
+    careful = csv.writer(quoting, lineterminator="\r\n")
+    start = 0
+    for i in np.flatnonzero(carriage).tolist():
+        writer.writerows(rows[start:i])
+        quoting.seek(0)
+        quoting.truncate()
+        careful.writerow(rows[i])
+        handle.write(quoting.getvalue()[:-2] + "\n")
+        start = i + 1
+    writer.writerows(rows[start:])
+
+
+def _csv_cells(column: pd.Series) -> tuple[list[object], np.ndarray | None]:
+    """A column's cells for the csv module (None where blank, text made inert), and which
+    cells hold a carriage return (None: none can)."""
     if pd.api.types.is_float_dtype(column.dtype) and not pd.api.types.is_extension_array_dtype(
         column.dtype
     ):
         values = column.to_numpy(dtype=float)
         cells = values.astype(object)
         cells[np.isnan(values)] = None
-        return cells.tolist()
+        return cells.tolist(), None
     if pd.api.types.is_integer_dtype(column.dtype) and not column.hasnans:
-        return column.to_numpy(dtype=np.int64).tolist()
+        return column.to_numpy(dtype=np.int64).tolist(), None
     cells = np.array(column.astype(object).to_numpy(dtype=object), dtype=object)  # a copy
     cells[pd.isna(cells)] = None
     codes, uniques = pd.factorize(cells, use_na_sentinel=True)
-    if len(uniques) and any(isinstance(v, str) and v.startswith(_FORMULA_START) for v in uniques):
-        inert = np.empty(len(uniques) + 1, dtype=object)
-        inert[:-1] = [neutralise_formula(v) for v in uniques]
+    texts = np.asarray(uniques, dtype=object).tolist()
+    with_return = [i for i, v in enumerate(texts) if isinstance(v, str) and "\r" in v]
+    carriage = np.isin(codes, with_return) if with_return else None
+    if any(isinstance(v, str) and v.startswith(_FORMULA_START) for v in texts):
+        inert = np.empty(len(texts) + 1, dtype=object)
+        inert[:-1] = [neutralise_formula(v) for v in texts]
         inert[-1] = None
-        return inert[codes].tolist()
-    return cells.tolist()
+        return inert[codes].tolist(), carriage
+    return cells.tolist(), carriage
 
 
 #: Characters XML 1.0 (so a workbook) cannot hold; replaced by U+FFFD when a workbook is written.

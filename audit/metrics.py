@@ -7,18 +7,17 @@ left blank, or the condition that makes it undefined. Rows are processed one *de
 
 from __future__ import annotations
 
-import pickle
 from dataclasses import dataclass
-from typing import IO
 
 import numpy as np
 import pandas as pd
 
-from audit import parallel, plan_methods, retro
+from audit import plan_methods, retro
 from audit import reported as reported_forms
 from audit._format import format_number
 from audit.designs import Design, Scenario, TestSpec, design_groups
 from audit.designs._base import _directions
+from audit.inputs import ignored_notes
 
 __all__ = ["METRICS", "compute_metrics", "directed_mde", "direction_words", "test_settings"]
 
@@ -128,7 +127,7 @@ METRICS: dict[str, str] = {
 PORTFOLIO_METRICS = ("power_at_pooled_effect",)
 
 #: Prefix of the metric columns of power at each reference effect (``reference_power_0.5``);
-#: the JSON gathers them into one object ``reference_power`` (audit/studyjson.py).
+#: the JSON gathers them into one object ``reference_power`` (audit/jsonout.py).
 REFERENCE_PREFIX = "reference_power_"
 
 #: Default reference effects, in each design's standardized unit (Cohen's small, medium and
@@ -258,7 +257,9 @@ class _Notes:
     def frame(self) -> pd.DataFrame:
         if not self.pos:
             return pd.DataFrame({"pos": np.empty(0, dtype=int), "text": np.empty(0, dtype=object)})
-        return pd.DataFrame({"pos": np.concatenate(self.pos), "text": np.concatenate(self.text)})
+        # An object column: pandas would otherwise convert every text to its string type.
+        text = pd.Series(np.concatenate(self.text), dtype=object)
+        return pd.DataFrame({"pos": np.concatenate(self.pos), "text": text})
 
 
 def _missing_labels(parts: list[tuple[np.ndarray, str]], size: int) -> np.ndarray:
@@ -330,7 +331,7 @@ def compute_metrics(
 
     Parameters
     ----------
-    table : the ``table`` of :class:`audit.schema.Validated`.
+    table : the ``table`` of :class:`audit.validate.Validated`.
     valid : which rows passed validation; other rows get null metrics and no notes.
     plan_tolerance : the largest |planned / required - 1| with which a published method
         reproduces the plan (``plan_reproduced_by``): the ``max_discrepancy`` of rule
@@ -373,58 +374,21 @@ def compute_metrics(
     return MetricTable(values, notes.frame())
 
 
-#: From this many rows the metrics are computed by two processes (audit.parallel).
-PARALLEL_METRICS_MIN = 20_000
-
-
 def _group_metrics(
     table: pd.DataFrame,
     groups: list[tuple[Design, np.ndarray]],
     plan_tolerance: float,
     reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> list[tuple[dict[str, np.ndarray], _Notes]]:
-    """Metrics and notes of each group of rows (rows of one design), in the order given.
-
-    For a large portfolio every group is cut in two: a forked child computes the second parts
-    while this process computes the first ones (so both do about half of every design's work),
-    and the child sends its results back pickled; if it fails, its parts are computed here.
-    """
-
-    def compute(parts: list[tuple[Design, np.ndarray]]) -> list[tuple[dict, _Notes]]:
-        out = []
-        for design, positions in parts:
-            notes = _Notes()
-            rows = table.iloc[positions]
-            computed = _design_metrics(
-                design, rows, positions, notes, plan_tolerance, reference_effects
-            )
-            out.append((computed, notes))
-        return out
-
-    if sum(len(p) for _, p in groups) < PARALLEL_METRICS_MIN or not parallel.can_fork():
-        return compute(groups)
-    first = [(design, positions[: len(positions) // 2]) for design, positions in groups]
-    second = [(design, positions[len(positions) // 2 :]) for design, positions in groups]
-
-    def child(out: IO[bytes]) -> None:
-        pickle.dump(compute(second), out, protocol=pickle.HIGHEST_PROTOCOL)
-
-    with parallel.ChildTask(child) as task:
-        mine = compute(first)
-        found = task.result()
-        theirs = pickle.load(found) if found is not None else compute(second)
-    merged = []
-    for (_, positions), (a, notes_a), (b, notes_b) in zip(groups, mine, theirs, strict=True):
-        cut = len(positions) // 2
-        computed = {}
-        for metric in a:
-            column = np.empty(len(positions), dtype=np.result_type(a[metric], b[metric]))
-            column[:cut], column[cut:] = a[metric], b[metric]
-            computed[metric] = column
+    """Metrics and notes of each group of rows (rows of one design), in the order given."""
+    out = []
+    for design, positions in groups:
         notes = _Notes()
-        notes.pos, notes.text = notes_a.pos + notes_b.pos, notes_a.text + notes_b.text
-        merged.append((computed, notes))
-    return merged
+        computed = _design_metrics(
+            design, table.iloc[positions], positions, notes, plan_tolerance, reference_effects
+        )
+        out.append((computed, notes))
+    return out
 
 
 def _design_metrics(
@@ -517,7 +481,7 @@ def _design_metrics(
             positions[no_family], "power_at_pooled_effect: not computed, missing outcome_family"
         )
     # Texts: one for all masked rows, or one per masked row.
-    for mask, text in [*design.fallback_notes(rows), *design.ignored_notes(rows)]:
+    for mask, text in [*design.fallback_notes(rows), *ignored_notes(design, rows)]:
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
     out.update(_retro_metrics(design, rows, positions, notes, out, test, plan, real, effect, sesoi))
     return out

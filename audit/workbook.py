@@ -18,38 +18,37 @@ back exactly as the audit read them.
 
 from __future__ import annotations
 
+import contextlib
+import datetime as _dt
 import math
+from collections.abc import Iterable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from openpyxl import Workbook
-from openpyxl.cell import WriteOnlyCell
-from openpyxl.styles import Alignment, Font, PatternFill
+import pandas as pd
+import xlsxwriter
 
-from audit.export import CAUTION, ILLEGAL_XLSX, atomic_output, refuse_input
+from audit._format import format_number
+from audit.export import CAUTION, ILLEGAL_XLSX, atomic_output, files_read, refuse_overwrite
+from audit.jsonout import portfolio_document
 from audit.metrics import METRICS
-from audit.schema import SPECS, parse_numbers
+from audit.numbers import parse_numbers
+from audit.schema import SPECS
 
 if TYPE_CHECKING:
-    import pandas as pd
+    from audit.result import AuditResult
 
-    from audit.pipeline import AuditResult
+__all__ = ["SEVERITY_FILLS", "WorkbookExport", "write_workbook"]
 
-__all__ = ["SEVERITY_FILLS", "write_workbook"]
-
-#: Fills for the severity cell; the severity is also written as text.
-SEVERITY_FILLS = {
-    "serious": PatternFill("solid", fgColor="E8A0A0"),
-    "warning": PatternFill("solid", fgColor="F5D58C"),
-    "note": PatternFill("solid", fgColor="CFE0F1"),
-}
-_INVALID_FILL = PatternFill("solid", fgColor="D9D9D9")
-_OURS_FILL = PatternFill("solid", fgColor="E4E9DF")
-_BOLD = Font(bold=True)
-_WRAP = Alignment(wrap_text=True, vertical="top")
+#: Fill colours of the severity cell; the severity is also written as text.
+SEVERITY_FILLS = {"serious": "#E8A0A0", "warning": "#F5D58C", "note": "#CFE0F1"}
+_INVALID_FILL = "#D9D9D9"
+_OURS_FILL = "#E4E9DF"
 _SEVERITY_ORDER = {"note": 0, "warning": 1, "serious": 2}
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+#: Excel's limit on the characters of a cell.
+_CELL_CHARS = 32_767
 
 #: Number formats by metric; anything else gets four significant-looking decimals.
 _FORMATS = {
@@ -70,27 +69,78 @@ def _format_for(metric: str) -> str:
     return "0.0000"
 
 
-def _text_cell(ws: Any, value: str) -> WriteOnlyCell:
+class _Styles:
+    """The workbook's formats, each made once (xlsxwriter keeps one record per format)."""
+
+    def __init__(self, wb: xlsxwriter.Workbook) -> None:
+        self.bold = wb.add_format({"bold": True})
+        self.bold_ours = wb.add_format({"bold": True, "bg_color": _OURS_FILL, "pattern": 1})
+        self.bold_quoted = wb.add_format({"bold": True, "quote_prefix": True})
+        self.quoted = wb.add_format({"quote_prefix": True})
+        self.wrap = wb.add_format({"text_wrap": True, "valign": "top"})
+        self.invalid = wb.add_format({"bg_color": _INVALID_FILL, "pattern": 1})
+        self.severity = {
+            name: wb.add_format({"bg_color": colour, "pattern": 1})
+            for name, colour in SEVERITY_FILLS.items()
+        }
+        self.wrap_severity = {
+            name: wb.add_format(
+                {"bg_color": colour, "pattern": 1, "text_wrap": True, "valign": "top"}
+            )
+            for name, colour in SEVERITY_FILLS.items()
+        }
+        self.date = wb.add_format({"num_format": "yyyy-mm-dd hh:mm:ss"})
+        self._numbers: dict[str, Any] = {}
+        self._wb = wb
+
+    def number(self, pattern: str) -> Any:
+        if pattern not in self._numbers:
+            self._numbers[pattern] = self._wb.add_format({"num_format": pattern})
+        return self._numbers[pattern]
+
+
+def _clean(value: str) -> str:
     # Control characters cannot be stored in a workbook (XML 1.0); they become U+FFFD.
-    value = ILLEGAL_XLSX.sub("\ufffd", value)
-    cell = WriteOnlyCell(ws, value=None)
-    cell.value = value
-    cell.data_type = "s"
-    if value.startswith(_FORMULA_START):
-        # Stored as a string, never a formula; the quote prefix keeps it text when edited.
-        cell.quotePrefix = True
-    return cell
+    return ILLEGAL_XLSX.sub("\ufffd", value)[:_CELL_CHARS]
 
 
-def _header(ws: Any, names: list[str], ours_from: int) -> None:
-    cells = []
+def _write_text(ws: Any, row: int, col: int, value: str, styles: _Styles, fmt: Any = None) -> None:
+    """A string cell, never a formula; text that starts like one gets a quote prefix (shown as
+    typed, and kept text when the cell is edited)."""
+    value = _clean(value)
+    if fmt is None and value.startswith(_FORMULA_START):
+        fmt = styles.quoted
+    ws.write_string(row, col, value, fmt)
+
+
+def _write_value(ws: Any, row: int, col: int, value: object, styles: _Styles) -> None:
+    """A user's cell as the audit read it: numbers as numbers, text as text, blanks blank."""
+    if value is None:
+        return
+    if isinstance(value, str):
+        _write_text(ws, row, col, value, styles)
+    elif isinstance(value, (bool, np.bool_)):
+        ws.write_boolean(row, col, bool(value))
+    elif isinstance(value, (int, float, np.integer, np.floating)):
+        number = float(value)
+        if math.isfinite(number):
+            ws.write_number(row, col, number)
+        elif not math.isnan(number):
+            _write_text(ws, row, col, str(value), styles)
+    elif isinstance(value, (_dt.datetime, _dt.date, _dt.time)):
+        ws.write_datetime(row, col, value, styles.date)
+    else:
+        _write_text(ws, row, col, str(value), styles)
+
+
+def _header(ws: Any, names: list[str], ours_from: int, styles: _Styles) -> None:
     for j, name in enumerate(names):
-        cell = _text_cell(ws, str(name))
-        cell.font = _BOLD
+        text = _clean(str(name))
         if j >= ours_from:
-            cell.fill = _OURS_FILL
-        cells.append(cell)
-    ws.append(cells)
+            fmt = styles.bold_ours
+        else:
+            fmt = styles.bold_quoted if text.startswith(_FORMULA_START) else styles.bold
+        ws.write_string(0, j, text, fmt)
 
 
 def _user_columns(result: AuditResult) -> tuple[list[str], list[np.ndarray]]:
@@ -116,17 +166,45 @@ def _by_row_text(result: AuditResult, frame: pd.DataFrame, column: str) -> list[
     return ["\n".join(str(v) for v in items) for items in result.by_row(frame, column)]
 
 
-def _audit_sheet(wb: Workbook, result: AuditResult) -> None:
-    ws = wb.create_sheet("audit")
-    user_names, user_values = _user_columns(result)
+class _AuditSheet:
+    """The ``audit`` sheet, written one part of the studies at a time."""
+
+    def __init__(self, wb: xlsxwriter.Workbook, styles: _Styles) -> None:
+        self.ws = wb.add_worksheet("audit")
+        self.styles = styles
+        self.next_row = 1
+        self.columns: list[str] | None = None
+
+    def add(self, result: AuditResult) -> None:
+        """Append the studies of ``result`` (the header with the first ones)."""
+        ws, styles = self.ws, self.styles
+        user_names, user_values = _user_columns(result)
+        metric_names = list(result.metrics.columns)
+        ours = ["row", "status", "highest severity", "findings", *metric_names, "errors", "notes"]
+        if self.columns is None:
+            self.columns = [*user_names, *ours]
+            _header(ws, self.columns, len(user_names), styles)
+            ws.freeze_panes(1, 1)
+        elif self.columns != [*user_names, *ours]:
+            raise ValueError("a part of the studies has other columns than the first")
+        _audit_rows(ws, result, self.next_row, len(user_names), user_values, styles)
+        self.next_row += len(result.table)
+
+
+def _audit_rows(
+    ws: Any,
+    result: AuditResult,
+    first_row: int,
+    ours_at: int,
+    user_values: list[np.ndarray],
+    styles: _Styles,
+) -> None:
+    """The rows of ``result``'s studies, from sheet row ``first_row`` (0-based) on."""
     metrics = result.metrics
     metric_names = list(metrics.columns)
-    ours = ["row", "status", "highest severity", "findings", *metric_names, "errors", "notes"]
-    _header(ws, [*user_names, *ours], len(user_names))
-    ws.freeze_panes = "B2"
-
+    n = len(result.table)
     findings = result.findings
-    worst = np.full(len(result.table), "", dtype=object)
+    worst = np.full(n, "", dtype=object)
     if len(findings):
         rank = findings["severity"].map(_SEVERITY_ORDER).fillna(-1).to_numpy()
         order = np.argsort(rank, kind="stable")
@@ -141,46 +219,75 @@ def _audit_sheet(wb: Workbook, result: AuditResult) -> None:
         )
         finding_text = _by_row_text(result, findings.assign(text=text), "text")
     else:
-        finding_text = [""] * len(result.table)
+        finding_text = [""] * n
     errors = ["\n".join(e) for e in result.error_texts()]
     notes = _by_row_text(result, result.notes, "text")
-    rows = result.table["_row"].to_numpy()
-    metric_arrays = [metrics[m].to_numpy() for m in metric_names]
-    formats = [_format_for(m) for m in metric_names]
+    rows = result.table["_row"].to_numpy().tolist()
+    status = np.asarray(result.status, dtype=object).tolist()
+    worst_list = worst.tolist()
+    # Per metric: its column, its values (None where not computed) and its format; numbers
+    # are Python floats so that the writer does no conversion per cell.
+    first = ours_at + 4
+    metric_columns = []
+    for j, name in enumerate(metric_names):
+        values = metrics[name].to_numpy()
+        if values.dtype == object:
+            cells = [v if isinstance(v, str) else None for v in values.tolist()]
+            metric_columns.append((first + j, cells, None))
+        else:
+            x = values.astype(float)
+            cells = np.where(np.isfinite(x), x, np.nan).tolist()
+            metric_columns.append((first + j, cells, styles.number(_format_for(name))))
+    after = first + len(metric_names)
+    write_number, write_string = ws.write_number, ws.write_string
+    # Each user column prepared once: its text cleaned and checked per distinct value.
+    user = [(j, *_prepared(values, styles)) for j, values in enumerate(user_values)]
+    invalid = styles.invalid
+    for i in range(n):
+        r = first_row + i
+        for j, cells, formats, text in user:
+            v = cells[i]
+            if v is not None:
+                if text[i]:
+                    write_string(r, j, v, formats[i])
+                else:
+                    _write_value(ws, r, j, v, styles)
+        write_number(r, ours_at, rows[i])
+        write_string(r, ours_at + 1, str(status[i]), None if status[i] == "audited" else invalid)
+        if worst_list[i]:
+            write_string(r, ours_at + 2, worst_list[i], styles.severity[worst_list[i]])
+        if finding_text[i]:
+            _write_text(ws, r, ours_at + 3, finding_text[i], styles)
+        for j, cells, fmt in metric_columns:
+            v = cells[i]
+            if fmt is None:
+                if v is not None:
+                    write_string(r, j, v)
+            elif v == v:  # not nan
+                write_number(r, j, v, fmt)
+        if errors[i]:
+            _write_text(ws, r, after, errors[i], styles)
+        if notes[i]:
+            _write_text(ws, r, after + 1, notes[i], styles)
 
-    for i in range(len(result.table)):
-        cells: list[Any] = []
-        for values in user_values:
-            v = values[i]
-            if v is None or (isinstance(v, float) and math.isnan(v)):
-                cells.append(None)
-            elif isinstance(v, str):
-                cells.append(_text_cell(ws, v))
-            else:
-                cells.append(v)
-        cells.append(int(rows[i]))
-        status = WriteOnlyCell(ws, value=str(result.status[i]))
-        if result.status[i] != "audited":
-            status.fill = _INVALID_FILL
-        cells.append(status)
-        sev = WriteOnlyCell(ws, value=worst[i] or None)
-        if worst[i]:
-            sev.fill = SEVERITY_FILLS[worst[i]]
-        cells.append(sev)
-        cells.append(_text_cell(ws, finding_text[i]) if finding_text[i] else None)
-        for arr, fmt in zip(metric_arrays, formats, strict=True):
-            v = arr[i]
-            if isinstance(v, str):
-                cells.append(v)
-            elif v is None or not np.isfinite(v):
-                cells.append(None)
-            else:
-                cell = WriteOnlyCell(ws, value=float(v))
-                cell.number_format = fmt
-                cells.append(cell)
-        cells.append(_text_cell(ws, errors[i]) if errors[i] else None)
-        cells.append(_text_cell(ws, notes[i]) if notes[i] else None)
-        ws.append(cells)
+
+def _prepared(values: np.ndarray, styles: _Styles) -> tuple[list, list, list[bool]]:
+    """A user column's cells ready for the writer: texts cleaned (and given a quote prefix
+    where they start like a formula) once per distinct text; which cells are texts."""
+    cells = values.copy()
+    text = np.fromiter((type(v) is str for v in cells.tolist()), dtype=bool, count=len(cells))
+    formats = np.full(len(cells), None, dtype=object)
+    if text.any():
+        codes, uniques = pd.factorize(cells[text])
+        clean = np.array([_clean(u) for u in uniques.tolist()] or [""], dtype=object)
+        quoted = np.array([u.startswith(_FORMULA_START) for u in clean.tolist()], dtype=bool)
+        cells[text] = clean[codes]
+        formats[np.flatnonzero(text)[quoted[codes]]] = styles.quoted
+    return cells.tolist(), formats.tolist(), text.tolist()
+
+
+def _listed(value: Any) -> str:
+    return format_number(value) if isinstance(value, float) else str(value)
 
 
 def _flatten(prefix: str, value: Any, out: list[tuple[str, Any]]) -> None:
@@ -190,27 +297,29 @@ def _flatten(prefix: str, value: Any, out: list[tuple[str, Any]]) -> None:
         for k, v in value.items():
             _flatten(f"{prefix}.{k}" if prefix else str(k), v, out)
     elif isinstance(value, (list, tuple)):
-        out.append((prefix, ", ".join(str(v) for v in value)))
+        if value and all(isinstance(v, dict) for v in value):
+            for i, v in enumerate(value, start=1):  # bands of the power distribution, say
+                _flatten(f"{prefix}.{i}", v, out)
+        else:
+            # Numbers as the report shows them (three significant digits).
+            out.append((prefix, ", ".join(_listed(v) for v in value)))
     else:
         out.append((prefix, value))
 
 
-def _portfolio_sheet(wb: Workbook, result: AuditResult) -> None:
-    ws = wb.create_sheet("portfolio")
-    _header(ws, ["quantity", "value"], 0)
+def _portfolio_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
+    ws = wb.add_worksheet("portfolio")
+    _header(ws, ["quantity", "value"], 0, styles)
     items: list[tuple[str, Any]] = []
-    _flatten("", result.to_dict()["portfolio"], items)
-    for key, value in items:
-        # Keys can hold the user's text (outcome_family names): string cells, never formulas.
-        label = _text_cell(ws, key)
+    _flatten("", portfolio_document(result), items)
+    for r, (key, value) in enumerate(items, start=1):
+        _write_text(ws, r, 0, key, styles)
         if isinstance(value, float):
-            cell = WriteOnlyCell(ws, value=value)
-            cell.number_format = "0.000"
-            ws.append([label, cell])
-        elif isinstance(value, str):
-            ws.append([label, _text_cell(ws, value)])
+            ws.write_number(r, 1, value, styles.number("0.000"))
+        elif value is None:
+            ws.write_string(r, 1, "-")
         else:
-            ws.append([label, "-" if value is None else value])
+            _write_value(ws, r, 1, value, styles)
 
 
 def _rule_rows(result: AuditResult) -> list[list[str]]:
@@ -230,40 +339,37 @@ def _rule_rows(result: AuditResult) -> list[list[str]]:
     return rows
 
 
-def _rules_sheet(wb: Workbook, result: AuditResult) -> None:
-    ws = wb.create_sheet("rules")
-    _header(ws, ["rule", "severity", "what it checks", "why it matters", "references"], 0)
-    for row in _rule_rows(result):
-        cells = [_text_cell(ws, v) for v in row]
-        for c in cells:
-            c.alignment = _WRAP
-        if row[1] in SEVERITY_FILLS:
-            cells[1].fill = SEVERITY_FILLS[row[1]]
-        ws.append(cells)
-    ws.column_dimensions["A"].width = 30
-    ws.column_dimensions["C"].width = 50
-    ws.column_dimensions["D"].width = 80
-    ws.column_dimensions["E"].width = 50
+def _rules_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
+    ws = wb.add_worksheet("rules")
+    ws.set_column(0, 0, 30)
+    ws.set_column(2, 2, 50)
+    ws.set_column(3, 3, 80)
+    ws.set_column(4, 4, 50)
+    _header(ws, ["rule", "severity", "what it checks", "why it matters", "references"], 0, styles)
+    for r, row in enumerate(_rule_rows(result), start=1):
+        for j, value in enumerate(row):
+            fmt = styles.wrap
+            if j == 1 and value in SEVERITY_FILLS:
+                fmt = styles.wrap_severity[value]
+            ws.write_string(r, j, _clean(value), fmt)
 
 
-def _invalid_sheet(wb: Workbook, result: AuditResult) -> None:
-    ws = wb.create_sheet("invalid rows")
-    _header(ws, ["row", "study_id", "column", "value as written", "why it was rejected"], 0)
+def _invalid_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
+    ws = wb.add_worksheet("invalid rows")
+    _header(ws, ["row", "study_id", "column", "value as written", "why it was rejected"], 0, styles)
     e = result.errors
     ids = result.table["study_id"].to_numpy(dtype=object)
-    for pos, row, column, value, reason in zip(
-        e["pos"], e["row"], e["column"], e["value"], e["reason"], strict=True
+    for r, (pos, row, column, value, reason) in enumerate(
+        zip(e["pos"], e["row"], e["column"], e["value"], e["reason"], strict=True), start=1
     ):
         study = ids[int(pos)]
-        ws.append(
-            [
-                int(row),
-                _text_cell(ws, str(study)) if study is not None else None,
-                str(column),
-                _text_cell(ws, str(value)) if value not in (None, "") else None,
-                str(reason),
-            ]
-        )
+        ws.write_number(r, 0, int(row))
+        if study is not None:
+            _write_text(ws, r, 1, str(study), styles)
+        _write_text(ws, r, 2, str(column), styles)
+        if value not in (None, ""):
+            _write_text(ws, r, 3, str(value), styles)
+        _write_text(ws, r, 4, str(reason), styles)
 
 
 _READ_ME = (
@@ -281,36 +387,69 @@ _READ_ME = (
 )
 
 
-def _readme_sheet(wb: Workbook, result: AuditResult) -> None:
-    ws = wb.create_sheet("read me")
-    for line in _READ_ME:
-        ws.append([line])
-    ws.append(["Caution", CAUTION])
+def _readme_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
+    ws = wb.add_worksheet("read me")
+    ws.set_column(0, 0, 40)
+    ws.set_column(1, 1, 100)
+    lines: list[tuple[str, str | None]] = [(line, None) for line in _READ_ME]
+    lines.append(("Caution", CAUTION))
     for key in ("source", "sheet", "header_row"):
         value = result.settings.get(key)
-        ws.append([key, _text_cell(ws, str(value)) if value is not None else None])
-    for note in result.settings.get("input_notes", []):
-        ws.append(["input note", _text_cell(ws, str(note))])
-    for name, meaning in METRICS.items():
-        ws.append([name, meaning])
-    ws.column_dimensions["A"].width = 40
-    ws.column_dimensions["B"].width = 100
+        lines.append((key, str(value) if value is not None else None))
+    lines += [("input note", str(note)) for note in result.settings.get("input_notes", [])]
+    lines += list(METRICS.items())
+    for r, (first, second) in enumerate(lines):
+        _write_text(ws, r, 0, first, styles)
+        if second is not None:
+            _write_text(ws, r, 1, second, styles)
 
 
 def write_workbook(result: AuditResult, path: str | Path) -> None:
-    """Write the annotated workbook to ``path`` (atomically; write-only mode for large files).
+    """Write the annotated workbook to ``path`` (atomically; see :class:`WorkbookExport`).
 
     Raises
     ------
     OutputError
-        ``path`` is the input file or a folder.
+        ``path`` is the input file, a rules file of the run, or a folder.
     """
-    refuse_input(result, path)
-    wb = Workbook(write_only=True)
-    _audit_sheet(wb, result)
-    _portfolio_sheet(wb, result)
-    _rules_sheet(wb, result)
-    _invalid_sheet(wb, result)
-    _readme_sheet(wb, result)
-    with atomic_output(path, "wb") as handle:
-        wb.save(handle)
+    with WorkbookExport(path, files_read(result)) as export:
+        export.add(result)
+        export.finish(result)
+
+
+class WorkbookExport:
+    """The annotated workbook, streamed: xlsxwriter's constant-memory mode writes each row as
+    it comes, with formats made once. The ``audit`` sheet takes the studies one part at a time
+    (``add``); ``finish`` writes the other sheets from the whole result. The file is put in
+    place when the context closes without an error.
+    """
+
+    def __init__(self, path: str | Path, reads: Iterable[tuple[str, str | Path | None]]) -> None:
+        refuse_overwrite(path, reads)
+        self._path = path
+        self._stack = contextlib.ExitStack()
+
+    def __enter__(self) -> WorkbookExport:
+        handle = self._stack.enter_context(atomic_output(self._path, "wb"))
+        self._wb = xlsxwriter.Workbook(
+            handle,
+            {"constant_memory": True, "strings_to_formulas": False, "strings_to_urls": False},
+        )
+        self._styles = _Styles(self._wb)
+        self._audit = _AuditSheet(self._wb, self._styles)
+        return self
+
+    def __exit__(self, *exc: object) -> bool | None:
+        return self._stack.__exit__(*exc)  # type: ignore[arg-type]
+
+    def add(self, result: AuditResult) -> None:
+        """Append the studies of ``result`` to the ``audit`` sheet."""
+        self._audit.add(result)
+
+    def finish(self, result: AuditResult) -> None:
+        """The portfolio, rules, invalid-rows and read-me sheets of the whole ``result``."""
+        _portfolio_sheet(self._wb, result, self._styles)
+        _rules_sheet(self._wb, result, self._styles)
+        _invalid_sheet(self._wb, result, self._styles)
+        _readme_sheet(self._wb, result, self._styles)
+        self._wb.close()

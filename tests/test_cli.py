@@ -245,3 +245,45 @@ def test_user_mistakes_with_output_folders_are_exit_2(tmp_path, capsys):
     assert main(["demo", "--out", str(a_file)]) == 2
     assert "is a file" in capsys.readouterr().err
     assert a_file.read_text() == "keep me"
+
+
+# -- no output replaces a file the run reads (issue 13) -------------------------------------
+
+
+def _copy_demo(tmp_path: Path) -> Path:
+    source = tmp_path / "portfolio.csv"
+    source.write_bytes(DEMO.read_bytes())
+    return source
+
+
+def test_respond_never_writes_over_its_input(tmp_path, capsys):
+    source = _copy_demo(tmp_path)
+    before = source.read_bytes()
+    assert main(["respond", str(source), "KF-101", "--out", str(source)]) == 2
+    err = capsys.readouterr().err
+    assert "is the input file this run reads" in err and "Traceback" not in err
+    assert err.count("\n") == 1  # one sentence
+    assert source.read_bytes() == before
+
+
+@pytest.mark.parametrize("option", ["--json", "--csv", "--xlsx"])
+def test_no_export_writes_over_a_rules_file(tmp_path, capsys, option):
+    source = _copy_demo(tmp_path)
+    rules = tmp_path / "ours.toml"
+    rules.write_text("[override.size-short-of-plan]\nmin_size_ratio = 0.9\n", encoding="utf-8")
+    before = rules.read_bytes()
+    args = ["check", str(source), "--rules", str(rules), option, str(rules), "--quiet"]
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert "is a rules file this run reads" in err and "Traceback" not in err
+    assert rules.read_bytes() == before
+
+
+def test_no_export_writes_over_the_input_through_a_link(tmp_path, capsys):
+    source = _copy_demo(tmp_path)
+    before = source.read_bytes()
+    link = tmp_path / "link.csv"
+    link.symlink_to(source)
+    assert main(["check", str(source), "--csv", str(link), "--quiet"]) == 2
+    assert "is the input file this run reads" in capsys.readouterr().err
+    assert source.read_bytes() == before and link.is_symlink()

@@ -15,7 +15,7 @@ MODULES = [
     "audit.designs.proportions",
     "audit.designs.survival",
     "audit.designs.variance",
-    "audit.parallel",
+    "audit.numbers",
     "audit.pipeline",
 ]
 

@@ -30,7 +30,7 @@ from audit.designs._power import t_ncp_for_power, t_power
 from audit.designs._solve import solve_increasing
 from audit.metrics import test_settings as settings_for
 from audit.read import raw_from_frame
-from audit.schema import validate
+from audit.validate import validate
 
 Row = dict[str, object]
 

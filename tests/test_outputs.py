@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import json
 
 import numpy as np
 import pandas as pd
@@ -279,3 +280,78 @@ def test_demo_files_are_built_from_the_studies_source():
     assert [dict(zip(names, r, strict=True)) for r in cells[1:]] == [
         {n: row.get(n) for n in names} for row in rows
     ]
+
+
+def test_a_lone_carriage_return_cannot_start_a_csv_row(tmp_path):
+    # Issue 13: a quoted cell holding a carriage return alone was written unquoted; a
+    # spreadsheet program then read a new row starting with the live formula after it. The
+    # csv module reads like one here: a carriage return outside quotes ends a row.
+    source = tmp_path / "in.csv"
+    source.write_bytes(
+        b"study_id,title,design,realized_se\n"
+        b"A,\"harmless\r=cmd|' /C calc'!A0\",estimate,1\n"
+        b'B,"two\r\nlines",estimate,2\n'
+        b"C,plain,estimate,3\n"
+    )
+    out = tmp_path / "out.csv"
+    assert main(["check", str(source), "--quiet", "--csv", str(out)]) == 0
+    with out.open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.reader(handle))
+    assert [r[0] for r in rows] == ["study_id", "A", "B", "C"]
+    assert rows[1][1] == "harmless\r=cmd|' /C calc'!A0"
+    assert rows[2][1] == "two\r\nlines"
+    assert not any(cell.startswith("=") for row in rows for cell in row)
+    # Rows without a carriage return are written as before: unquoted where plain.
+    assert out.read_bytes().splitlines()[-1].startswith(b"C,plain,estimate,3")
+
+
+# -- input columns named like output columns (issue 13, DESIGN.md 9.6) ----------------------
+
+
+def test_user_columns_named_like_output_columns_are_renamed(tmp_path):
+    # A user's own status, row, mde, notes and flags columns made --csv stop with exit 3.
+    source = tmp_path / "in.csv"
+    source.write_text(
+        "study_id,design,realized_se,status,row,MDE,notes,flags\n"
+        "A,estimate,1,done,7,big,see protocol,none\n"
+        "B,estimate,2,open,8,small,,\n",
+        encoding="utf-8",
+    )
+    out_csv, out_json, out_xlsx = tmp_path / "o.csv", tmp_path / "o.json", tmp_path / "o.xlsx"
+    args = ["check", str(source), "--quiet", "--csv", str(out_csv), "--json", str(out_json)]
+    assert main([*args, "--xlsx", str(out_xlsx)]) == 0
+    with out_csv.open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    header = list(rows[0])
+    assert len(header) == len(set(header))
+    assert [r["status (input)"] for r in rows] == ["done", "open"]
+    assert [r["MDE (input)"] for r in rows] == ["big", "small"]
+    assert [r["status"] for r in rows] == ["audited", "audited"]
+    assert [r["row"] for r in rows] == ["2", "3"]
+    assert float(rows[0]["mde"]) == pytest.approx(2.8, abs=0.01)  # Bloom's multiplier x SE 1
+    notes = json.loads(out_json.read_text("utf-8"))["settings"]["input_notes"]
+    assert any("'status' has the name of an output column" in n for n in notes)
+    sheet = load_workbook(out_xlsx, read_only=True)["audit"]
+    names = [c.value for c in next(sheet.iter_rows(max_row=1))]
+    assert len(names) == len(set(names)) and "notes (input)" in names
+
+
+@pytest.mark.parametrize("export", ["audit.csv", "audit.xlsx"])
+def test_re_auditing_an_export_replaces_its_output_columns(tmp_path, export):
+    first = tmp_path / "first"
+    assert main(["demo", "--out", str(first), "--quiet"]) == 0
+    again = tmp_path / "again.csv"
+    doc = tmp_path / "again.json"
+    assert (
+        main(["check", str(first / export), "--quiet", "--csv", str(again), "--json", str(doc)])
+        == 0
+    )
+    with again.open(newline="", encoding="utf-8") as handle:
+        header = next(csv.reader(handle))
+    with (first / "audit.csv").open(newline="", encoding="utf-8") as handle:
+        original = next(csv.reader(handle))
+    assert header == original  # each column once, as in the first export
+    before = json.loads((first / "audit.json").read_text("utf-8"))
+    after = json.loads(doc.read_text("utf-8"))
+    assert [s["metrics"] for s in after["studies"]] == [s["metrics"] for s in before["studies"]]
+    assert any("output of an earlier audit" in n for n in after["settings"]["input_notes"])

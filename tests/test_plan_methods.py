@@ -481,7 +481,7 @@ def test_the_default_method_is_the_designs_own_required_size():
     # required_size on random rows (every rounding convention kept).
     from audit.metrics import test_settings
     from audit.read import raw_from_frame
-    from audit.schema import validate
+    from audit.validate import validate
     from tests.test_designs_all import _random_rows
 
     rows = _random_rows(np.random.default_rng(44), 400)
@@ -546,7 +546,7 @@ def _plan_made_with(key: str, method_index: int) -> dict | None:
                            "planned_events": 300, "realized_n1": 100}])  # fmt: skip
     from audit.metrics import test_settings
     from audit.read import raw_from_frame
-    from audit.schema import validate
+    from audit.validate import validate
 
     table = validate(raw_from_frame(probe)).table
     plan = design.scenario(table, "planned")
@@ -841,7 +841,7 @@ def test_random_rows_with_dropout_keep_their_invariants():
 def _inputs(name: str, row: dict) -> PlanInputs:
     from audit.metrics import test_settings
     from audit.read import raw_from_frame
-    from audit.schema import validate
+    from audit.validate import validate
 
     frame = pd.DataFrame([{"study_id": "x", "design": name, **row}])
     table = validate(raw_from_frame(frame)).table

@@ -257,3 +257,55 @@ def test_a_full_table_store_keeps_the_tables_a_lookup_reads(monkeypatch):
     achieved = stats.nct.sf(c, 40, ncp) + stats.nct.cdf(-c, 40, ncp)
     np.testing.assert_allclose(achieved, power, rtol=1e-9)
     assert len(_power._TABLES) <= 3
+
+
+def test_the_public_nctdtr_loses_the_far_upper_tail():
+    # Why the fallback of the private ufunc is scipy.stats' method and not 1 - nctdtr: at a
+    # central t with 100 df, P(T > 12) is about 1e-21 (scipy.stats.t.sf, an independent
+    # closed form at zero noncentrality); 1 - nctdtr cancels to nothing there.
+    from scipy.special import nctdtr
+
+    from audit.designs._power import _nct_sf
+
+    exact = stats.t.sf(12.0, 100.0)
+    assert exact < 1e-18
+    assert _nct_sf(12.0, 100.0, 0.0) == pytest.approx(exact, rel=1e-10)
+    assert abs((1.0 - nctdtr(100.0, 0.0, 12.0)) - exact) > 0.5 * exact
+
+
+@pytest.mark.parametrize("change", ["missing", "fewer arguments", "arguments reordered"])
+def test_a_changed_private_ufunc_falls_back_to_the_public_method(change):
+    # A scipy release may drop _nct_sf or change what it takes; the audit must then use
+    # scipy.stats' public survival function, not fail or compute something else.
+    # (scipy.stats calls the real ufunc itself, so the changed one is handed in, not patched.)
+    from types import SimpleNamespace
+
+    from scipy.special import _ufuncs
+
+    from audit.designs import _power
+
+    real = _ufuncs._nct_sf
+    changed = {
+        "missing": SimpleNamespace(),
+        "fewer arguments": SimpleNamespace(_nct_sf=lambda df, nc: real(1.0, df, nc)),
+        "arguments reordered": SimpleNamespace(_nct_sf=lambda df, nc, x: real(x, df, nc)),
+    }[change]
+    probe = (2.0, 7.0, 1.5)
+    func = _power._stats_ufunc("nct", "sf", probe, _power._public_nct_sf, changed)
+    assert func == stats.nct.sf
+    x, df, nc = np.array([1.0, 3.0]), np.array([5.0, 40.0]), np.array([0.5, 2.0])
+    np.testing.assert_allclose(func(x, df, nc), real(x, df, nc), rtol=1e-12)
+
+
+def test_the_private_ufuncs_in_use_pass_their_probe():
+    from types import SimpleNamespace
+
+    from scipy.special import _ufuncs
+
+    from audit.designs import _power
+
+    assert _power._nct_sf is _ufuncs._nct_sf and _power._ncf_sf is _ufuncs._ncf_sf
+    same = SimpleNamespace(_nct_sf=_ufuncs._nct_sf)
+    assert _power._stats_ufunc("nct", "sf", (2.0, 7.0, 1.5), _power._public_nct_sf, same) is (
+        _ufuncs._nct_sf
+    )

@@ -106,9 +106,9 @@ def test_xlsx_formula_cached_and_uncached(tmp_path, monkeypatch, fast_reader_siz
     # with a formula goes to openpyxl even when it is large enough for the fast reader
     # (fast_reader_size 0), which would read the cell as blank.
     if fast_reader_size is not None:
-        from audit import read
+        from audit import sheets
 
-        monkeypatch.setattr(read, "FAST_READ_MIN_BYTES", fast_reader_size)
+        monkeypatch.setattr(sheets, "FAST_READ_MIN_BYTES", fast_reader_size)
     path = _xlsx(
         tmp_path,
         [["study_id", "design", "realized_se"], ["A", "estimate", "=1/2"], ["B", "estimate", 0.5]],
@@ -150,22 +150,22 @@ def test_large_plain_sheets_read_the_same_with_the_fast_reader(monkeypatch):
     # typed table: the fast reader is an implementation detail, not a different reading.
     import numpy as np
 
-    from audit import read
+    from audit import sheets
     from audit.resources import bundled_dir
-    from audit.schema import validate
+    from audit.validate import validate
 
     path = bundled_dir("demo_data") / "demo_portfolio.xlsx"
     careful = validate(read_table(path))
     calls = []
-    original = read._fast_worksheet
+    original = sheets._fast_worksheet
 
     def spy(*args, **kwargs):
         sheet = original(*args, **kwargs)
         calls.append(sheet is not None)
         return sheet
 
-    monkeypatch.setattr(read, "FAST_READ_MIN_BYTES", 0)
-    monkeypatch.setattr(read, "_fast_worksheet", spy)
+    monkeypatch.setattr(sheets, "FAST_READ_MIN_BYTES", 0)
+    monkeypatch.setattr(sheets, "_fast_worksheet", spy)
     fast = validate(read_table(path))
     assert calls == [True]
     assert list(fast.valid) == list(careful.valid)
@@ -175,3 +175,36 @@ def test_large_plain_sheets_read_the_same_with_the_fast_reader(monkeypatch):
             assert a.fillna("").astype(str).tolist() == b.fillna("").astype(str).tolist(), column
         else:
             np.testing.assert_array_equal(a.to_numpy(), b.to_numpy(), err_msg=column)
+
+
+def test_a_quoted_cell_may_span_lines_and_hold_the_separator(tmp_path):
+    # Issue 13: "Effect of X, Y" over two lines is a properly quoted cell, not a quote that
+    # swallowed lines; the row is audited.
+    path = _write(
+        tmp_path,
+        "multi.csv",
+        'study_id,title,design,realized_se\nA,"Effect of X, Y\non Z",estimate,1\n'
+        'B,"a ""quoted"" word,\r\nand more",estimate,2\nC,plain,estimate,3\n',
+    )
+    result = audit.audit_file(path)
+    assert list(result.status) == ["audited"] * 3
+    assert result.raw.data["title"].tolist()[:2] == [
+        "Effect of X, Y\non Z",
+        'a "quoted" word,\r\nand more',
+    ]
+
+
+def test_a_quote_that_swallows_lines_up_to_a_later_quote_is_still_reported(tmp_path):
+    # The stray quote of U-2 closes at the quote of U-4's first cell: the lines between were
+    # read into one cell, which says so. A proper multi-line cell before it stays audited.
+    path = _write(
+        tmp_path,
+        "stray.csv",
+        'study_id,title,design,realized_se\nU-1,"fine, and\nmultiline",estimate,1\n'
+        'U-2,"stray,estimate,1\nU-3,x,estimate,1\n"U-4",y,estimate,1\n',
+    )
+    result = audit.audit_file(path)
+    status = dict(zip(result.table["study_id"], result.status, strict=True))
+    assert status["U-1"] == "audited"
+    assert status["U-2"] == "invalid"
+    assert any("quote mark is probably unbalanced" in e for e in result.error_sentences())

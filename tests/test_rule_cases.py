@@ -12,7 +12,7 @@ import pytest
 from audit.metrics import compute_metrics
 from audit.read import raw_from_frame
 from audit.rules import evaluate_rules, load_rules
-from audit.schema import validate
+from audit.validate import validate
 
 CASES_DIR = Path(__file__).parent / "rule_cases"
 CASE_FILES = sorted(CASES_DIR.glob("*.toml"))

@@ -98,3 +98,26 @@ def test_null_metrics_name_the_missing_inputs():
         if value is None:
             explained = [n for n in notes if n.startswith(name + ":") or name in n.split(": ")[-1]]
             assert explained, name
+
+
+@pytest.mark.parametrize(
+    ("written", "value"),
+    [("٦٠", 60.0), ("６０", 60.0), ("۶۰", 60.0), ("६०", 60.0)],  # Arabic-Indic, full-width, ...
+)
+def test_digits_of_other_scripts_are_read_as_the_digits_they_are(written, value):
+    # Issue 13: such a cell was read as blank, and the row audited with a missing value.
+    row = {**GOOD, "realized_n1": written}
+    result = audit.audit_table(pd.DataFrame([row], dtype=object).astype(str))
+    assert result.status[0] == "audited"
+    assert result.table["realized_n1"][0] == value
+    plain = audit.audit_table(pd.DataFrame([{**GOOD, "realized_n1": "60"}]).astype(str))
+    assert result.metrics.equals(plain.metrics)
+
+
+@pytest.mark.parametrize("written", ["１２％", "٣٫٦", "6O"])
+def test_a_number_cell_that_does_not_parse_is_an_error_naming_it(written):
+    result = audit.audit_table(pd.DataFrame([{**GOOD, "realized_n1": written}]).astype(str))
+    assert result.status[0] == "invalid"
+    error = result.errors.iloc[0]
+    assert (error["column"], error["value"]) == ("realized_n1", written)
+    assert "not a number" in error["reason"]

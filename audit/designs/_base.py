@@ -133,20 +133,6 @@ COMMON_INPUTS = frozenset(
     }
 )
 
-#: Columns that describe clustering: read only by cluster designs. Elsewhere ignoring them would
-#: give the power of an individually randomised trial, far too high (an error, not a note).
-CLUSTER_INPUTS = frozenset(
-    {
-        "planned_icc",
-        "realized_icc",
-        "planned_cluster_size",
-        "realized_cluster_size",
-        "cluster_size_cv",
-    }
-)
-#: Columns whose neglect would misstate the analysis (its residual variance or df).
-ADJUSTMENT_INPUTS = frozenset({"covariates", "covariate_r2"})
-
 
 def _column(rows: pd.DataFrame, name: str) -> np.ndarray:
     """Float array of a typed column; all-nan when the file lacks the column."""
@@ -161,28 +147,6 @@ def _directions(rows: pd.DataFrame) -> np.ndarray:
         return np.full(len(rows), np.nan)
     text = rows["direction"].to_numpy(dtype=object)
     return np.array([DIRECTIONS.get(v, np.nan) for v in text], dtype=float)
-
-
-def _filled(rows: pd.DataFrame, name: str) -> np.ndarray:
-    """Where a column holds a value that says something: given, and not its default."""
-    from audit.schema import SPECS  # the column table (a late import: it imports us)
-
-    if name not in rows.columns:
-        return np.zeros(len(rows), dtype=bool)
-    spec = SPECS.get(name)
-    values = rows[name]
-    if values.dtype.kind in "fiub":
-        x = values.to_numpy(dtype=float, na_value=np.nan)
-        if spec is not None and spec.kind == "flag":
-            return x == 1.0  # "no" asks nothing of a design that has no such option
-        given = np.isfinite(x)
-        if spec is not None and isinstance(spec.default, float):
-            given &= x != spec.default
-        return given
-    given = values.notna().to_numpy(dtype=bool).copy()
-    if spec is not None and spec.default is not None:
-        given &= (values != spec.default).to_numpy(dtype=bool, na_value=False)
-    return given
 
 
 def allocation_ratio(sc: Scenario) -> np.ndarray:
@@ -336,8 +300,8 @@ class Design:
 
     def check_rows(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str | np.ndarray]]:
         """Row checks: ``(bad_mask, column, reason)`` triples (a reason is one text or one per
-        row). The direction and the columns the design would ignore to a wrong result, then the
-        design's own :meth:`row_checks`; each effect measure's rows by its own variant."""
+        row): the direction, then the design's own :meth:`row_checks`; each effect measure's
+        rows by its own variant."""
         parts = self.variants(rows)
         if len(parts) == 1 and parts[0][1].all():
             return parts[0][0]._checks(rows)
@@ -355,12 +319,11 @@ class Design:
         return out
 
     def _checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str | np.ndarray]]:
-        """:meth:`check_rows` for rows of this variant only: a reported test statistic, the
-        direction and the columns the design would ignore to a wrong result, then the design's
-        own :meth:`row_checks`."""
-        from audit.reported import statistic_checks  # a late import: it imports us
-
-        out = list(statistic_checks(self, rows))
+        """:meth:`check_rows` for rows of this variant only: the direction, then the design's
+        own :meth:`row_checks`. (Validation adds the checks of a reported test statistic and
+        of the columns the design would ignore to a wrong result: audit.reported,
+        audit.inputs.)"""
+        out = []
         if self.has_direction and "direction" in rows.columns:
             given = _directions(rows)
             sign = self.effect_sign(self.planned_effect(rows))
@@ -387,99 +350,12 @@ class Design:
                     "or a signed planned effect",
                 )
             )
-        out.extend(self._ignored_errors(rows))
         out.extend(self.row_checks(rows))
         return out
 
     def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         """Design-specific row checks: ``(bad_mask, column, reason)`` triples."""
         return []
-
-    def _ignored_errors(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
-        """Filled columns the design cannot use and whose neglect would give a wrong result."""
-        used = self.inputs()
-        out = []
-        from audit.designs import DESIGNS  # the registry (a late import: it imports us)
-
-        cluster = ", ".join(n for n, d in DESIGNS.items() if CLUSTER_INPUTS <= d.inputs())
-        adjusting = ", ".join(n for n, d in DESIGNS.items() if "covariate_r2" in d.inputs())
-        for column in sorted((CLUSTER_INPUTS | ADJUSTMENT_INPUTS) - used):
-            filled = _filled(rows, column)
-            if column in CLUSTER_INPUTS:
-                why = (
-                    f"is filled, but {self.name} assumes individual randomisation and would "
-                    f"ignore the clustering (its power would be far too high): use a cluster "
-                    f"design ({cluster}) or leave the clustering columns blank"
-                )
-            else:
-                why = (
-                    f"is filled, but {self.name} cannot take covariate adjustment and would "
-                    f"ignore it: leave covariates and covariate_r2 blank (power then refers to "
-                    f"the unadjusted analysis), use a design that adjusts ({adjusting}), or "
-                    "give the adjusted standard error with the estimate design"
-                )
-            out.append((filled, column, why))
-        if self.one_group:
-            for column in ("planned_n2", "realized_n2"):
-                out.append(
-                    (
-                        _filled(rows, column),
-                        column,
-                        f"is filled, but {self.name} takes the whole sample in "
-                        f"{column.replace('n2', 'n1')} (N, not per group): put the total there "
-                        "and leave this column blank",
-                    )
-                )
-        if "effect_measure" not in used and "effect_measure" in rows.columns:
-            out.append(
-                (
-                    _filled(rows, "effect_measure"),
-                    "effect_measure",
-                    f"is filled, but {self.name} has effects in one unit only "
-                    f"({self.effect_unit}): leave effect_measure blank and give effects in that "
-                    "unit, or use a design that takes the measure",
-                )
-            )
-        if "effect_scale" not in used:
-            scale = rows["effect_scale"] if "effect_scale" in rows.columns else None
-            if scale is not None:
-                d = (scale == "d").to_numpy(dtype=bool, na_value=False)
-                out.append(
-                    (
-                        d,
-                        "effect_scale",
-                        f"is 'd', but {self.name} has no standardized-mean-difference scale: "
-                        f"give effects in its own unit ({self.effect_unit})",
-                    )
-                )
-        return out
-
-    def ignored_notes(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, np.ndarray]]:
-        """``(mask, text)``: for each row, the filled columns this design does not read."""
-        from audit.schema import COLUMNS  # the column table (a late import: it imports us)
-
-        used = (
-            self.inputs() | CLUSTER_INPUTS | ADJUSTMENT_INPUTS | {"effect_scale", "effect_measure"}
-        )
-        if self.one_group:
-            used |= {"planned_n2", "realized_n2"}
-        parts = [
-            (_filled(rows, c.name), c.name)
-            for c in COLUMNS
-            if c.name not in used and c.name in rows.columns
-        ]
-        if not parts:
-            return []
-        labels = np.full(len(rows), "", dtype=object)
-        for mask, name in parts:
-            if mask.any():
-                sep = np.where(labels[mask] == "", "", ", ")
-                labels[mask] = labels[mask] + sep + name
-        hit = labels != ""
-        text = (f"filled but not used by {self.name}, which ignores them: " + labels[hit]).astype(
-            object
-        )
-        return [(hit, text)]
 
     def orient(self, value: np.ndarray, direction: np.ndarray) -> np.ndarray:
         """An effect given as a magnitude (the SESOI), pointed in the planned direction."""

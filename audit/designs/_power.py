@@ -32,24 +32,48 @@ __all__ = [
 ]
 
 
-def _stats_ufunc(name: str, method: str):  # type: ignore[no-untyped-def]
+def _stats_ufunc(name: str, method: str, probe: tuple[float, ...], public, ufuncs=None):  # type: ignore[no-untyped-def]
     """The scipy.special ufunc behind ``scipy.stats.<name>.<method>``, or that method.
 
     ``scipy.stats`` costs about 0.45 s to import, a tenth of a 100k-row audit, and the audit needs
     only two of its functions: the survival functions of the noncentral t and F, which
     ``scipy.stats`` computes with the (Boost) ufuncs ``_nct_sf`` and ``_ncf_sf`` of
-    ``scipy.special``, taking the same arguments. Those names are private, so a scipy without
-    them gets the public method (imported then). ``tests/test_power.py`` checks that both give
-    the same values.
+    ``scipy.special``, taking the same arguments. Those names are private, so they are used only
+    while they behave as expected: the ufunc is called once at ``probe`` and must agree there
+    with ``public(*probe)``, a public survival function accurate at that central point. A scipy
+    without the ufunc, or whose ufunc takes other arguments now (it then raises, or gives
+    another value), gets the public ``scipy.stats`` method instead (imported then).
+    ``tests/test_power.py`` checks both paths and that they give the same values.
+
+    The public ``scipy.special.nctdtr`` is not the fallback: as ``1 - cdf`` it loses all
+    accuracy in the far upper tail (power near alpha at tiny alphas), where the audit needs it.
+
+    ``ufuncs``: where to look for the private ufunc (default ``scipy.special._ufuncs``).
     """
     try:
-        from scipy.special import _ufuncs
+        if ufuncs is None:
+            from scipy.special import _ufuncs as ufuncs
 
-        return getattr(_ufuncs, f"_{name}_{method}")
-    except (ImportError, AttributeError):
+        func = getattr(ufuncs, f"_{name}_{method}")
+        with np.errstate(all="ignore"):
+            value = float(func(*probe))
+        if not abs(value - float(public(*probe))) <= 1e-9 * max(abs(value), 1e-300):
+            raise ValueError(f"scipy.special._{name}_{method} changed")
+        return func
+    except (ImportError, AttributeError, TypeError, ValueError):
+        # Missing, or a signature or meaning that changed (a wrong argument count raises
+        # TypeError, wrong types ValueError; other arguments give another value).
         from scipy import stats
 
         return getattr(getattr(stats, name), method)
+
+
+def _public_nct_sf(x: float, df: float, nc: float) -> float:
+    return 1.0 - special.nctdtr(df, nc, x)
+
+
+def _public_ncf_sf(f: float, dfn: float, dfd: float, nc: float) -> float:
+    return 1.0 - special.ncfdtr(dfn, dfd, nc, f)
 
 
 def _threads() -> int:
@@ -93,10 +117,12 @@ def threaded(func, *args: np.ndarray) -> np.ndarray:  # type: ignore[no-untyped-
     return out
 
 
+# Probe points: central values (survival about 0.2 to 0.5), where the public cdfs are accurate,
+# and arguments no two of which may be swapped without changing the value.
 #: P(T > x) for T noncentral t(df, nc): ``_nct_sf(x, df, nc)``.
-_nct_sf = _stats_ufunc("nct", "sf")
+_nct_sf = _stats_ufunc("nct", "sf", (2.0, 7.0, 1.5), _public_nct_sf)
 #: P(F > x) for F noncentral F(dfn, dfd, nc): ``_ncf_sf(x, dfn, dfd, nc)``.
-_ncf_sf = _stats_ufunc("ncf", "sf")
+_ncf_sf = _stats_ufunc("ncf", "sf", (2.5, 3.0, 17.0, 4.0), _public_ncf_sf)
 
 
 def t_critical(alpha: np.ndarray, sides: np.ndarray, df: np.ndarray) -> np.ndarray:

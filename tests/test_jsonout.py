@@ -1,24 +1,25 @@
 """The ``studies`` array of the JSON contract, encoded column by column, against a plain build.
 
 The reference here is written the obvious way (a dict per study from the result's tables, then
-the standard library's json), independently of :mod:`audit.studyjson`.
+the standard library's json), independently of :mod:`audit.jsonout`.
 """
 
 from __future__ import annotations
 
 import json
 import math
-import os
-import sys
 
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import audit
-from audit import export, parallel
+from audit import export
+from audit.cli import main
+from audit.jsonout import INTEGER_METRICS, encode_numbers, encode_objects, study_chunks
 from audit.resources import bundled_dir
-from audit.studyjson import INTEGER_METRICS, encode_numbers, encode_objects, study_chunks
 
 DEMO = bundled_dir("demo_data") / "demo_portfolio.csv"
 
@@ -137,6 +138,7 @@ def test_numbers_keep_their_double_and_sizes_are_integers():
     "values",
     [
         ["a", "b,c", "", "d\\", "\u00e9\u4e2d", "x\x00y", "line\nbreak", "a]", "[b"],  # no quote
+        [",", "a", ","],  # a lone comma encodes as '","', the old cut mark
         ['say "hi"', 'a",', '","', '\\"', "plain"],  # quotes: each encoded on its own
         ["a", None, "b", float("nan"), "a"],  # missing values: null
         ["only"],
@@ -177,18 +179,55 @@ def test_an_astronomical_required_size_is_written(tmp_path):
     write_workbook(result, tmp_path / "out.xlsx")
 
 
-@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="the split uses fork on Linux")
-@pytest.mark.parametrize("child_fails", [False, True])
-def test_json_split_over_two_processes_is_the_same_document(tmp_path, monkeypatch, child_fails):
-    result = audit.audit_table(_portfolio_with_trouble())
-    small = tmp_path / "small.json"
-    export.write_json(result, small)
-    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 3)
-    monkeypatch.setattr(export, "PARALLEL_JSON_MIN", 4)
-    if child_fails:
-        # A child that dies without output: the parent encodes that half itself.
-        monkeypatch.setattr(parallel.ChildTask, "_run_child", lambda self: os._exit(1))
-    split = tmp_path / "split.json"
-    export.write_json(result, split)
-    assert json.loads(split.read_text("utf-8")) == json.loads(small.read_text("utf-8"))
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["small.json", "split.json"]
+# -- cell texts that once broke the document (issue 13) --------------------------------------
+
+
+_CELL_TEXT = st.one_of(
+    st.sampled_from([",", '","', '"', "\\", '\\"', "\x00", "\r", "\n", "\u2028", "%b", "%s"]),
+    st.text(alphabet=st.sampled_from(',"\\\x01\x1f\r\n ab%\u00e9'), max_size=8),
+    st.text(max_size=6),
+)
+
+
+@settings(max_examples=60, deadline=None)
+@given(ids=st.lists(_CELL_TEXT, min_size=1, max_size=6), chunk=st.integers(1, 4))
+def test_any_cell_text_gives_a_document_that_parses_and_round_trips(ids, chunk):
+    # Random study_ids, titles and a rejected alpha with quotes, backslashes, '","' and control
+    # characters: the JSON always parses and gives the values back as they were.
+    n = len(ids)
+    frame = pd.DataFrame(
+        {
+            "study_id": ids,
+            "design": ["estimate"] * n,
+            "realized_se": ["1"] * n,
+            "alpha": [*ids[1:], "0.05"][:n],
+            "title": list(reversed(ids)),
+        }
+    )
+    result = audit.audit_table(frame)
+    for size in (chunk, 10_000):
+        studies = json.loads(b"[" + b",".join(study_chunks(result, size)) + b"]")
+        assert [s["study_id"] for s in studies] == result.table["study_id"].tolist()
+    document = result.to_dict()
+    details = [d["value"] for s in document["studies"] for d in s["error_details"]]
+    assert details == result.errors["value"].astype(object).tolist()
+
+
+def _lone_comma_portfolio(path, rows: int) -> None:
+    lines = ["study_id,design,realized_se,alpha", '",",estimate,1,', 'B,estimate,1,","']
+    lines += [f"S{i},estimate,1," for i in range(rows - 2)]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
+@pytest.mark.parametrize("rows", [2, 2_501])
+def test_a_lone_comma_id_and_a_rejected_comma_cell_give_valid_json(tmp_path, capsys, rows):
+    # Issue 13: a study_id ',' first in a chunk made check --json write invalid JSON (2,501
+    # rows, exit 0) or fail with an internal error (small file); so did a rejected alpha ','.
+    source = tmp_path / "in.csv"
+    _lone_comma_portfolio(source, rows)
+    out = tmp_path / "out.json"
+    assert main(["check", str(source), "--quiet", "--json", str(out)]) == 0, capsys.readouterr()
+    studies = json.loads(out.read_bytes())["studies"]
+    assert len(studies) == rows and studies[0]["study_id"] == ","
+    assert studies[1]["status"] == "invalid"
+    assert studies[1]["error_details"][0]["value"] == ","

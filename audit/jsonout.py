@@ -1,19 +1,22 @@
-"""The ``studies`` array of the JSON contract, encoded column by column.
+"""The JSON document of the output contract, encoded column by column.
 
 A study object holds about sixty values (identity, status, messages and forty metrics). Built as
 one Python dict per study and then encoded, a 100k-study portfolio spends seconds creating and
 discarding dicts. Here each column is encoded for a whole chunk of studies in one call (orjson
-encodes a numpy float array in C; a column of repeated texts is encoded once per distinct text),
-the pieces are laid out row by row in one object array, and the chunk is joined once. Messages
-per study (errors, notes, flags) are grouped by row from their long tables.
+encodes a numpy float array in C; a column of texts is encoded once per distinct text, each text
+by orjson on its own, so no content of a cell can change the document's structure), the pieces
+are laid out row by row with one ``bytes % tuple`` per study, and the chunk is joined once.
+Messages per study (errors, notes, flags) are grouped by row from their long tables.
 
-The output is the same document :meth:`audit.pipeline.AuditResult.to_dict` returns (that method
-decodes it): one encoder, so the streamed file and the in-memory document cannot disagree.
+The JSON file and :meth:`audit.result.AuditResult.to_dict` (which decodes this text) come from
+this one encoder, so they cannot disagree. This module reads a result; it imports nothing of the
+pipeline.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Sequence
+import math
+from collections.abc import Callable, Iterator, Sequence
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -21,9 +24,20 @@ import orjson
 import pandas as pd
 
 if TYPE_CHECKING:
-    from audit.pipeline import AuditResult
+    from audit.result import AuditResult
 
-__all__ = ["INTEGER_METRICS", "json_default", "study_chunks"]
+__all__ = [
+    "INTEGER_METRICS",
+    "JSON_INDENT_LIMIT",
+    "document_bytes",
+    "document_parts",
+    "json_default",
+    "portfolio_document",
+    "study_chunks",
+]
+
+#: Up to this many studies the JSON is indented for reading; beyond, it is compact.
+JSON_INDENT_LIMIT = 2_000
 
 #: Metrics written as JSON integers (sizes).
 INTEGER_METRICS = frozenset(
@@ -53,24 +67,15 @@ def _dumps(value: object) -> bytes:
 
 
 def encode_objects(values: Sequence[object] | np.ndarray) -> np.ndarray:
-    """JSON text of each value (texts, or None/nan as null).
+    """JSON text of each value (texts, or None/nan as null), one orjson call per distinct value.
 
-    A column of texts none of which holds a double quote is encoded in one call and cut at the
-    ``","`` between its members (inside such texts that sequence cannot occur). Any other
-    column is encoded once per distinct value.
+    Each text is encoded on its own: nothing in a cell (quotes, ``","``, backslashes, control
+    characters) can reach the structure of the document.
     """
-    cells = values.tolist() if isinstance(values, np.ndarray) else list(values)
-    if cells and set(map(type, cells)) == {str}:
-        text = orjson.dumps(cells)
-        if b'\\"' not in text:
-            # JSON text never holds a raw NUL byte (control characters are escaped): it marks
-            # the cuts, and each member keeps its quotes.
-            out = np.empty(len(cells), dtype=object)
-            out[:] = text[1:-1].replace(b'","', b'"\x00"').split(b"\x00")
-            return out
-    codes, uniques = pd.factorize(np.asarray(cells, dtype=object), use_na_sentinel=True)
+    cells = np.asarray(values, dtype=object) if not isinstance(values, pd.Categorical) else values
+    codes, uniques = pd.factorize(cells, use_na_sentinel=True)
     table = np.empty(len(uniques) + 1, dtype=object)
-    table[:-1] = [_dumps(u) for u in uniques]
+    table[:-1] = [_dumps(u) for u in np.asarray(uniques, dtype=object).tolist()]
     table[-1] = _NULL  # code -1: missing
     return table[codes]
 
@@ -96,14 +101,16 @@ def encode_numbers(values: np.ndarray, *, integer: bool = False) -> np.ndarray:
 
 
 class RowLists:
-    """JSON arrays per row from a long table: ``items[k]`` (encoded) belongs to row
-    ``positions[k]``. Sorted by row once (stably: the order of a row's items is kept), then
-    cut for any range of rows."""
+    """JSON arrays per row from a long table (``pos`` and the items' fields): sorted by row
+    once (stably: the order of a row's items is kept), then, for any range of rows, the items
+    of those rows encoded by ``encode(order)`` (``order``: the table's row numbers, in order).
+    Only one range's items are encoded at a time, so the text of a large portfolio's millions
+    of notes never exists all at once."""
 
-    def __init__(self, positions: np.ndarray, items: np.ndarray) -> None:
-        order = np.argsort(positions, kind="stable")
-        self._pos = positions[order]
-        self._items = items[order]
+    def __init__(self, positions: np.ndarray, encode: Callable[[np.ndarray], np.ndarray]) -> None:
+        self._order = np.argsort(positions, kind="stable")
+        self._pos = positions[self._order]
+        self._encode = encode
 
     def lists(self, start: int, stop: int) -> np.ndarray:
         """``[...]`` for each row ``start`` to ``stop`` (``[]`` where a row has no items)."""
@@ -111,7 +118,8 @@ class RowLists:
         lo, hi = np.searchsorted(self._pos, [start, stop])
         if lo == hi:
             return out
-        pos, values = self._pos[lo:hi], self._items[lo:hi].tolist()
+        pos = self._pos[lo:hi]
+        values = self._encode(self._order[lo:hi]).tolist()
         # Rows with items: where each row's run begins and ends in the sorted table.
         rows, first = np.unique(pos, return_index=True)
         ends = np.append(first[1:], len(pos)).tolist()
@@ -119,6 +127,35 @@ class RowLists:
             b"[" + b",".join(values[a:b]) + b"]" for a, b in zip(first.tolist(), ends, strict=True)
         ]
         return out
+
+
+def _texts_by_code(column: pd.Series) -> Callable[[np.ndarray], np.ndarray]:
+    """An encoder of some cells of a text column (by row number): a categorical column's texts
+    are encoded once per category, up front; others per distinct text of the rows asked for."""
+    if isinstance(column.dtype, pd.CategoricalDtype):
+        categories = column.cat.categories.to_numpy(dtype=object)
+        table = np.empty(len(categories) + 1, dtype=object)
+        table[:-1] = [_dumps(u) for u in categories.tolist()]
+        table[-1] = _NULL
+        codes = column.cat.codes.to_numpy()
+        return lambda rows: table[codes[rows]]
+    cells = column.to_numpy(dtype=object)
+    return lambda rows: encode_objects(cells[rows])
+
+
+def _records_by_row(
+    frame: pd.DataFrame, keys: tuple[str, ...]
+) -> Callable[[np.ndarray], np.ndarray]:
+    """An encoder of some rows of ``frame`` as JSON objects with the text fields ``keys``."""
+    fields = [(k, _texts_by_code(frame[k])) for k in keys]
+
+    def encode(rows: np.ndarray) -> np.ndarray:
+        pieces = [(_key(k, i == 0), texts(rows)) for i, (k, texts) in enumerate(fields)]
+        out = np.empty(len(rows), dtype=object)
+        out[:] = _rows(pieces, b"}")
+        return out
+
+    return encode
 
 
 def _key(name: str, first: bool) -> bytes:
@@ -152,26 +189,23 @@ def study_chunks(
     n = len(table)
     first, last = start, n if stop is None else min(stop, n)
 
-    def within(frame: pd.DataFrame) -> pd.DataFrame:
-        pos = frame["pos"].to_numpy(dtype=np.int64)
-        return frame[(pos >= first) & (pos < last)]
+    def positions(frame: pd.DataFrame) -> np.ndarray:
+        return frame["pos"].to_numpy(dtype=np.int64)
 
-    in_range = within(result.errors.assign(_sentence=result.error_sentences()))
-    errors = in_range.drop(columns="_sentence")
-    error_pos = errors["pos"].to_numpy(dtype=np.int64)
-    error_texts = RowLists(error_pos, encode_objects(in_range["_sentence"].to_numpy(dtype=object)))
-    error_details = RowLists(error_pos, _encode_records(errors, ("column", "value", "reason")))
-    notes = within(result.notes)
-    note_texts = RowLists(
-        notes["pos"].to_numpy(dtype=np.int64), encode_objects(notes["text"].to_numpy(dtype=object))
+    errors = result.errors
+    sentences = pd.Series(result.error_sentences(), dtype=object)
+    error_texts = RowLists(positions(errors), _texts_by_code(sentences))
+    error_details = RowLists(
+        positions(errors), _records_by_row(errors, ("column", "value", "reason"))
     )
-    findings = within(result.findings)
+    notes = result.notes
+    note_texts = RowLists(positions(notes), _texts_by_code(notes["text"]))
+    findings = result.findings
     flags = RowLists(
-        findings["pos"].to_numpy(dtype=np.int64),
-        _encode_records(findings, ("rule", "severity", "message")),
+        positions(findings), _records_by_row(findings, ("rule", "severity", "message"))
     )
     names = list(result.metrics.columns)
-    grouped = _object_metrics(names)
+    grouped = _ObjectMetric(names)
     # Columns as plain arrays once (texts as objects, None where not computed), sliced per chunk.
     columns = {
         name: (
@@ -247,22 +281,60 @@ class _ObjectMetric:
         known = np.zeros(stop - start, dtype=bool)
         for _, column in self.parts:
             known |= np.isfinite(columns[column][start:stop])
-        out[~known] = _NULL
+        out[~known] = b"null"
         return out
 
 
-def _object_metrics(names: list[str]) -> _ObjectMetric:
-    return _ObjectMetric(names)
+def _jsonable(value: object) -> object:
+    """Portfolio values as JSON values: numpy scalars as numbers, nan and infinities as null."""
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return None if not math.isfinite(float(value)) else float(value)
+    return value
 
 
-def _encode_records(frame: pd.DataFrame, keys: tuple[str, ...]) -> np.ndarray:
-    """One JSON object per row of ``frame`` with the fields ``keys`` (all texts)."""
-    if not len(frame):
-        return np.array([], dtype=object)
-    pieces = [
-        (_key(k, i == 0), encode_objects(frame[k].to_numpy(dtype=object)))
-        for i, k in enumerate(keys)
-    ]
-    out = np.empty(len(frame), dtype=object)
-    out[:] = _rows(pieces, b"}")
-    return out
+def portfolio_document(result: AuditResult) -> dict[str, object]:
+    """The ``portfolio`` block as the JSON document holds it (plain JSON values)."""
+    return orjson.loads(_encode({"p": _jsonable(result.portfolio)}))["p"]
+
+
+def _encode(document: dict[str, object], *, indent: bool = False) -> bytes:
+    option = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+    if indent:
+        option |= orjson.OPT_INDENT_2
+    return orjson.dumps(document, default=json_default, option=option)
+
+
+def _head(result: AuditResult) -> bytes:
+    """The keys before ``studies`` (compact), without the closing brace."""
+    from audit import __version__
+
+    head = {"tool": "study-audit", "version": __version__, "settings": result.settings}
+    return _encode(head)[:-1]
+
+
+def _tail(result: AuditResult) -> bytes:
+    """The keys after ``studies`` (compact), without the opening brace."""
+    tail = {"portfolio": _jsonable(result.portfolio), "caveats": result.caveats}
+    return _encode(tail)[1:]
+
+
+def document_parts(result: AuditResult, chunk: int = 10_000) -> Iterator[bytes]:
+    """The compact JSON document in pieces: head, ``chunk`` studies at a time, tail."""
+    yield _head(result) + b',"studies":['
+    for i, part in enumerate(study_chunks(result, chunk)):
+        yield b"," + part if i else part
+    yield b"]," + _tail(result)
+
+
+def document_bytes(result: AuditResult, *, indent: bool = False) -> bytes:
+    """The whole JSON document; ``indent`` lays it out for reading (two spaces)."""
+    compact = b"".join(document_parts(result))
+    if not indent:
+        return compact
+    return _encode(orjson.loads(compact), indent=True)
