@@ -215,6 +215,10 @@ class ClusterTwoProportions(TwoProportions):
     def analysis_df(self, sc: Scenario) -> np.ndarray:
         return sc["n1"] + sc["n2"] - 2.0
 
+    def _statistic_sizes(self, sc: Scenario) -> tuple[np.ndarray, np.ndarray]:
+        # A cluster analysis' z refers to the information of n m / DE independent units.
+        return self._effective(sc)
+
     def _effective(self, sc: Scenario) -> tuple[np.ndarray, np.ndarray]:
         with np.errstate(divide="ignore", invalid="ignore"):
             per = sc["cluster_size"] / self.design_effect(sc)

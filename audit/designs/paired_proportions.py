@@ -106,6 +106,44 @@ class PairedProportions(Design):
     extra_inputs = ("planned_p2", "realized_p2")
     one_group = True
     symmetric = False
+    # McNemar's z, (c - b) / sqrt(b + c), or its square.
+    statistic_types = frozenset({"z", "chi2"})
+    statistic_rule = (
+        "the difference of the discordant proportions whose McNemar z, delta sqrt(n / psi) with "
+        "psi = 2 p1 + delta, is the one reported (needs realized_p1)"
+    )
+    scale_label = "difference of paired proportions"
+
+    # -- results as reported --------------------------------------------------------------------
+
+    def effect_from_statistic(
+        self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """``δ`` from McNemar's ``z = δ √n / √ψ``, ``ψ = 2 p1 + δ`` the discordant share with
+        ``p1`` the observed control-only share: ``δ² − c δ − 2 p1 c = 0`` with ``c = z² / n``,
+        the root of the sign of z; the SE is ``|δ| / |z|``, the test's own."""
+        z = np.asarray(statistic, dtype=float)
+        p1 = _column(rows, "realized_p1")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            c = z * z / sc["n1"]
+            root = np.sqrt(c * c + 8.0 * p1 * c)
+            delta = np.where(z > 0, (c + root) / 2.0, (c - root) / 2.0)
+            delta = np.where(z == 0, 0.0, delta)
+            se = np.where(z != 0, np.abs(delta) / np.abs(z), np.sqrt(2.0 * p1 / sc["n1"]))
+        ok = np.isfinite(delta) & (p1 + delta >= 0) & (2.0 * p1 + delta <= 1)
+        return np.where(ok, delta, np.nan), np.where(ok, se, np.nan)
+
+    def at_standardized(
+        self, sc: Scenario, magnitude: np.ndarray, direction: np.ndarray
+    ) -> tuple[Scenario, np.ndarray]:
+        """The difference whose Cohen's g (``p2 / (p1 + p2) − 1/2``) is ``direction x
+        magnitude`` from the control-only share p1: ``p2 = p1 (1/2 + g) / (1/2 − g)``."""
+        g = np.asarray(direction, dtype=float) * np.abs(magnitude)
+        p1 = sc["p1"]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p2 = p1 * (0.5 + g) / (0.5 - g)
+        ok = (np.abs(g) < 0.5) & (p2 >= 0) & (p1 + p2 <= 1)
+        return sc, np.where(ok, p2 - p1, np.nan)
 
     # -- reading --------------------------------------------------------------------------------
 

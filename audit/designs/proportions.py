@@ -298,6 +298,13 @@ class TwoProportions(Design):
         p2 = _column(rows, "planned_p2")
         return np.where(np.isnan(p2), _column(rows, "planned_effect"), self._measure(p1, p2))
 
+    def analysis_scale(self, rows: pd.DataFrame) -> np.ndarray:
+        # Results are pooled only with results in the same measure (the log of a ratio).
+        label = {"risk_ratio": "log risk ratio", "odds_ratio": "log odds ratio"}.get(
+            self.measure, self.scale_label
+        )
+        return np.full(len(rows), label, dtype=object)
+
     def _measure(self, p1: np.ndarray, p2: np.ndarray) -> np.ndarray:
         if self.measure == "risk_difference":
             return p2 - p1  # exactly today's arithmetic
@@ -541,7 +548,9 @@ class TwoProportions(Design):
             angle = np.arcsin(np.sqrt(sc["p1"])) + direction * np.abs(magnitude) / 2.0
             p2 = np.sin(angle) ** 2
         inside = (angle >= 0) & (angle <= np.pi / 2)
-        return sc, np.where(inside, p2 - sc["p1"], np.nan)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            effect = self._measure(sc["p1"], p2)  # in the row's measure
+        return sc, np.where(inside, effect, np.nan)
 
     def effect_from_statistic(
         self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
@@ -554,15 +563,26 @@ class TwoProportions(Design):
         ``(1 + c w2^2) u^2 - (2h + c w2 s (1 - 2 p1)) u + h^2 - c p1 (1 - p1) = 0`` with
         ``c = z^2 k`` and ``s`` the sign of z; its larger root is the one (at least ``h``).
         Needs the observed control rate ``realized_p1`` (the planned one would give a wrong
-        result). The SE is the one the test implies, so that the interval is dual to it.
+        result). The SE is the one the test implies, so that the interval is dual to it. For a
+        risk or odds ratio the same ``p2`` gives the measure, on the log scale, with the Wald
+        SE of that log at the observed proportions (the test's own SE is that of a difference).
         """
-        z = np.asarray(statistic, dtype=float)
+        n1, n2 = self._statistic_sizes(sc)
+        return self._from_z(rows, sc, np.asarray(statistic, dtype=float), n1, n2)
+
+    def _statistic_sizes(self, sc: Scenario) -> tuple[np.ndarray, np.ndarray]:
+        """The sizes the reported z refers to (units; effective units for cluster trials)."""
+        return sc["n1"], sc["n2"]
+
+    def _from_z(
+        self, rows: pd.DataFrame, sc: Scenario, z: np.ndarray, n1: np.ndarray, n2: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
         p1 = _column(rows, "realized_p1")
-        n1, n2 = sc["n1"], sc["n2"]
         with np.errstate(divide="ignore", invalid="ignore"):
             k = 1.0 / n1 + 1.0 / n2
             w2 = n2 / (n1 + n2)
-            h = np.where(sc["continuity_correction"] > 0, 0.5 * k, 0.0)
+            corrected = sc.get("continuity_correction", np.zeros(len(z)))
+            h = np.where(corrected > 0, 0.5 * k, 0.0)
             sign = np.sign(z)
             c = z * z * k
             a = 1.0 + c * w2 * w2
@@ -574,6 +594,11 @@ class TwoProportions(Design):
             p2 = p1 + effect
             se = np.where(z != 0, u / np.abs(z), np.sqrt(p1 * (1.0 - p1) * k))
         ok = np.isfinite(effect) & (p2 >= 0) & (p2 <= 1) & (u >= h)
+        if self.is_ratio:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                effect = self.to_analysis(self._measure(p1, p2))
+                se = wald_se(self.measure, n1, n2, p1, p2)
+            ok &= np.isfinite(effect) & np.isfinite(se)
         return np.where(ok, effect, np.nan), np.where(ok, se, np.nan)
 
     def required_size(self, sc: Scenario, effect: np.ndarray, test: TestSpec) -> np.ndarray:

@@ -94,6 +94,37 @@ class TwoRates(Design):
 
     is_ratio = True
     noun = "rate ratio"
+    # A Wald (or score) z of the log rate ratio, or its square.
+    statistic_types = frozenset({"z", "chi2"})
+    statistic_rule = (
+        "log rate ratio θ = z x SE(θ), the SE of the realized design at the rates θ implies "
+        "(solved by fixed-point iteration)"
+    )
+    scale_label = "log rate ratio"
+
+    # -- results as reported --------------------------------------------------------------------
+
+    def effect_from_statistic(
+        self, rows: pd.DataFrame, sc: Scenario, statistic: np.ndarray, df: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """``θ`` with ``θ = z SE(θ)``: the SE of the log rate ratio depends on the intervention
+        rate ``λ1 e^θ``, so the equation is iterated from the SE at no effect (it changes
+        slowly with θ; 60 steps settle it to rounding wherever the SE is finite)."""
+        z = np.asarray(statistic, dtype=float)
+        theta = np.zeros(len(z))
+        with np.errstate(all="ignore"):
+            for _ in range(60):
+                theta = z * self.se(sc, np.exp(theta))
+            se = self.se(sc, np.exp(theta))
+        ok = np.isfinite(theta) & np.isfinite(se) & (np.abs(theta - z * se) < 1e-9)
+        return np.where(ok, theta, np.nan), np.where(ok, se, np.nan)
+
+    def at_standardized(
+        self, sc: Scenario, magnitude: np.ndarray, direction: np.ndarray
+    ) -> tuple[Scenario, np.ndarray]:
+        # The standardized unit is the log rate ratio.
+        direction = np.asarray(direction, dtype=float)
+        return sc, np.exp(direction * np.abs(magnitude))
 
     # -- reading --------------------------------------------------------------------------------
 
