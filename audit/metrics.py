@@ -62,7 +62,8 @@ METRICS: dict[str, str] = {
     "se_plan": "expected standard error of the estimate under the plan",
     "se_realized": "expected standard error of the estimate as realized",
     "precision_ratio": "se_plan / se_realized (below 1: less precise than planned)",
-    "n_ratio": "realized / planned size",
+    "n_ratio": "realized / planned size (planned analysable units: the planned size x (1 - "
+    "planned_dropout) where the plan states an allowance)",
     "sd_ratio": "realized / planned SD",
     "n_required_realized": "units needed had the realized nuisance parameters (SD, ICC, control "
     "rate) been used in planning",
@@ -400,7 +401,8 @@ def _design_metrics(
     reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
 ) -> dict[str, np.ndarray]:
     test = test_settings(rows, design)
-    plan = design.scenario(rows, "planned")
+    recruited = design.scenario(rows, "planned")
+    plan = _analysable(design, recruited, _col(rows, "planned_dropout"))
     real = design.scenario(rows, "realized")
     effect = design.planned_effect(rows)
     sesoi = _sesoi_on_harder_side(design, real, _col(rows, "sesoi"), test)
@@ -409,14 +411,16 @@ def _design_metrics(
     with np.errstate(divide="ignore", invalid="ignore"):
         out: dict[str, np.ndarray] = {}
         out["plan_power"] = design.power(plan, effect, test)
-        planned_total = design.total_size(plan)
+        # The stated calculation is redone against the planned size as written (with a
+        # dropout allowance, the number to recruit).
+        planned_total = design.total_size(recruited)
         reproduction = None
         if design.size_keys:
             # Every published method of the design, the audit's own among them (its size is
             # n_required_plan), against the planned size with the stated dropout allowance.
             reproduction = plan_methods.reproduce(
                 design,
-                plan,
+                recruited,
                 effect,
                 test,
                 planned_total,
@@ -436,7 +440,8 @@ def _design_metrics(
         out["se_plan"] = design.se(plan, effect)
         out["se_realized"] = design.se(real, effect)
         out["precision_ratio"] = out["se_plan"] / out["se_realized"]
-        out["n_ratio"] = design.total_size(real) / planned_total
+        # Against the planned analysable units (after a stated dropout allowance).
+        out["n_ratio"] = design.total_size(real) / design.total_size(plan)
         for metric, (planned_col, realized_col) in design.ratio_keys.items():
             out[metric] = _col(rows, realized_col) / _col(rows, planned_col)
         # Without nuisance parameters to replace, the replanned design is the plan itself.
@@ -580,6 +585,16 @@ def _distinct(*arrays: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     first = np.empty(codes.max() + 1, dtype=np.intp)
     first[codes[::-1]] = np.arange(n - 1, -1, -1)
     return first, codes
+
+
+def _analysable(design: Design, plan: Scenario, dropout: np.ndarray) -> Scenario:
+    """The planned design as analysed: with a stated dropout allowance the planned sizes are
+    the numbers to recruit, and the plan expected ``size x (1 − dropout)`` analysable units
+    (clusters, for cluster designs) in each group."""
+    if not design.size_keys or not np.isfinite(dropout).any():
+        return plan
+    keep = np.where(np.isfinite(dropout), 1.0 - dropout, 1.0)
+    return {**plan, **{k: plan[k] * keep for k in design.size_keys if k in plan}}
 
 
 def _difference(a: np.ndarray, b: np.ndarray) -> np.ndarray:

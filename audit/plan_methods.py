@@ -1041,8 +1041,9 @@ def reproduction_notes(
                 lambda d: (
                     f"planned_dropout {_share(d)}: each group's required size is divided "
                     f"by 1 − {d:g} and rounded up before it is compared with the planned size, "
-                    "which is read as the number to recruit (the other metrics use the planned "
-                    "sizes as given): "
+                    "which is read as the number to recruit; the plan's power, SE, the size "
+                    "ratio and the power costs use the analysable units the allowance leaves "
+                    "(the planned sizes x (1 − dropout)): "
                 ),
             )
             + _ints(m["n_required_plan"][stated])

@@ -904,3 +904,24 @@ def test_cluster_proportions_by_the_design_effect():
     assert per_arm == pytest.approx(198.98 * 1.95 / 20, rel=2e-4)
     assert math.ceil(per_arm) == 20
     assert math.ceil(plan_methods.cluster_fleiss_plus_one(inputs)[0]) == 21
+
+
+def test_a_stated_dropout_leaves_the_analysable_units_the_plan_expected():
+    # A plan to recruit 100 per group allowing 20 % dropout expects 80 analysable per group: its
+    # power is that of 80 per group (statsmodels TTestIndPower, d = 0.5), and 80 analysed per
+    # group is the plan kept (n_ratio 1, no size-short-of-plan finding).
+    from statsmodels.stats.power import TTestIndPower
+
+    row = {"study_id": "d", "design": "two_means", "effect_scale": "d", "planned_effect": 0.5,
+           "planned_n1": 100, "planned_n2": 100, "planned_dropout": 0.2, "realized_n1": 80,
+           "realized_n2": 80}  # fmt: skip
+    result = _audit([row])
+    m = result.metrics
+    expected = TTestIndPower().power(effect_size=0.5, nobs1=80, alpha=0.05, ratio=1.0)
+    assert m["plan_power"].iat[0] == pytest.approx(expected, rel=1e-9)
+    assert m["n_ratio"].iat[0] == pytest.approx(1.0)
+    assert "size-short-of-plan" not in set(result.findings["rule"])
+    # The stated calculation is still compared with the 200 to recruit: 64 per group (Cohen)
+    # need ceil(64 / 0.8) = 80 recruited per group, so 200 is 25 % above that.
+    assert m["n_required_with_dropout"].iat[0] == 160
+    assert m["plan_discrepancy"].iat[0] == pytest.approx(200 / 160 - 1)
