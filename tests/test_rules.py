@@ -182,7 +182,10 @@ parameters.min_units = { value = 10, range = [1, 1000], meaning = "smallest grou
     [
         ("[override.power-below-targt]\nseverity='note'\n", "did you mean 'power-below-target'"),
         ("[override.nope]\nseverity='note'\n", "known rules: .*power-below-target"),
-        ("[override.power-below-target]\ntolerence = 0.1\n", "valid: severity, enabled, unless, tolerance"),
+        (
+            "[override.power-below-target]\ntolerence = 0.1\n",
+            "valid: severity, enabled, unless, tolerance",
+        ),
         (
             "[override.power-below-target]\ntolerance = 0.9\n",
             r"outside its allowed range \[0, 0.5\]",
