@@ -29,12 +29,19 @@ if TYPE_CHECKING:
 __all__ = [
     "INTEGER_METRICS",
     "JSON_INDENT_LIMIT",
+    "SCHEMA_VERSION",
     "document_bytes",
     "document_parts",
     "json_default",
     "portfolio_document",
+    "schema_text",
     "study_chunks",
 ]
+
+#: Version of the document's JSON Schema (audit/output.schema.json, ``study-audit schema``),
+#: written as the document's top-level ``schema_version``: a key removed or renamed changes the
+#: major number, a key added the minor one.
+SCHEMA_VERSION = "1.0"
 
 #: Up to this many studies the JSON is indented for reading; beyond, it is compact.
 JSON_INDENT_LIMIT = 2_000
@@ -314,7 +321,12 @@ def _head(result: AuditResult) -> bytes:
     """The keys before ``studies`` (compact), without the closing brace."""
     from audit import __version__
 
-    head = {"tool": "study-audit", "version": __version__, "settings": result.settings}
+    head = {
+        "tool": "study-audit",
+        "version": __version__,
+        "schema_version": SCHEMA_VERSION,
+        "settings": result.settings,
+    }
     return _encode(head)[:-1]
 
 
@@ -338,3 +350,10 @@ def document_bytes(result: AuditResult, *, indent: bool = False) -> bytes:
     if not indent:
         return compact
     return _encode(orjson.loads(compact), indent=True)
+
+
+def schema_text() -> str:
+    """The JSON Schema (draft 2020-12) of the document, as shipped with the package."""
+    from importlib.resources import files
+
+    return files("audit").joinpath("output.schema.json").read_text(encoding="utf-8")
