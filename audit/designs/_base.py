@@ -247,6 +247,7 @@ class Design:
             if mask.any():
                 out.append((self.with_measure(measure), mask))
         return out
+
     #: Kinds of reported test statistic (``statistic_type``) the design reads.
     statistic_types: ClassVar[frozenset[str]] = frozenset({"t", "z", "f", "chi2"})
     #: True where the standard error on the analysis scale follows from the sizes alone (Fisher's
