@@ -93,6 +93,7 @@ UNUSABLE = {
     "far_cell.xlsx": rf"16,384 columns, more than the limit of {MAX_COLUMNS:,}",
     "many_columns.csv": rf"more than the limit of {MAX_COLUMNS:,}",
     "many_rows.csv": rf"more than {MAX_ROWS:,} study rows",
+    "long_cell.csv": r"cell G3 holds 40,005 characters, more than the limit of 32,767",
 }
 
 
