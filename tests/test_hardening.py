@@ -424,6 +424,13 @@ def _usable_formula_text(doc):
     assert doc["studies"][0]["study_id"].startswith("=HYPERLINK")  # JSON keeps text as written
 
 
+def _usable_terminal_escapes(doc):
+    # The title with escape sequences is read and kept (the exports are faithful); what the
+    # terminal shows is checked in tests/test_terminal.py.
+    assert len(doc["studies"]) == 63
+    assert all(s["status"] == "audited" for s in doc["studies"])
+
+
 def _usable_bad_values(doc):
     pass  # checked case by case in test_bad_values
 
@@ -450,6 +457,7 @@ USABLE = {
     "duplicate_ids.csv": _usable_duplicate_ids,
     "formula_text.csv": _usable_formula_text,
     "bad_values.csv": _usable_bad_values,
+    "terminal_escapes.csv": _usable_terminal_escapes,
 }
 
 
