@@ -21,6 +21,7 @@ from typing import TYPE_CHECKING, Any
 
 from audit import __version__
 from audit.errors import AuditError, ConfigError, OutputError
+from audit.terminal import clean_line
 
 if TYPE_CHECKING:
     from audit.result import AuditResult
@@ -205,7 +206,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.command == "respond":
             return _respond(args)
     except AuditError as exc:
-        print(f"study-audit: {exc}", file=sys.stderr)
+        print(f"study-audit: {clean_line(str(exc))}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print("study-audit: interrupted.", file=sys.stderr)
@@ -214,7 +215,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if getattr(args, "debug", False):
             raise
         print(
-            f"study-audit: internal error ({type(exc).__name__}: {exc}); "
+            f"study-audit: internal error ({type(exc).__name__}: {clean_line(str(exc))}); "
             "run again with --debug and report the output.",
             file=sys.stderr,
         )
@@ -312,7 +313,14 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         from audit.report import THEME
 
         with atomic_output(run.report_out) as handle:
-            plain = Console(file=handle, width=100, color_system=None, theme=THEME, highlight=False)
+            plain = Console(
+                file=handle,
+                width=100,
+                color_system=None,
+                theme=THEME,
+                highlight=False,
+                markup=False,
+            )
             render_report(result, plain, fail_on=run.fail_on)
     if not run.quiet:
         console = make_console(stderr=to_stdout)
@@ -515,5 +523,5 @@ def _respond(args: argparse.Namespace) -> int:
     else:
         with atomic_output(args.out) as handle:
             handle.write(text)
-        print(f"Response for {args.study_id} written to {args.out}", file=sys.stderr)
+        print(f"Response for {clean_line(args.study_id)} written to {args.out}", file=sys.stderr)
     return EXIT_OK

@@ -468,9 +468,7 @@ def audit_stream(
             rows = _rows_of(raw, start, stop, pieces[k] if pieces else None)
         if pieces:
             pieces[k] = None
-        part = _audit_part(
-            rows, start, chunk, ruleset, run, announce, apply_rules=not families
-        )
+        part = _audit_part(rows, start, chunk, ruleset, run, announce, apply_rules=not families)
         del rows
         if on_part is not None and not families:
             on_part(part.result(raw))

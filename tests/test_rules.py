@@ -225,6 +225,11 @@ def _rule_text(**changes) -> str:
         ({"when": '{ column = "mde", blank = true, factor = 2 }'}, "unexpected factor"),
         ({"message": '"power {powr}"'}, "unknown column 'powr'"),
         ({"message": '"power {mde:.2q}"'}, "bad format"),
+        # A width or precision past MAX_FORMAT_WIDTH is refused before anything is formatted
+        # (format(0.5, ">2000000000") alone would take two gigabytes).
+        ({"message": '"power {mde:>2000000000}"'}, "a width or precision above 100"),
+        ({"message": '"power {mde:.101f}"'}, "a width or precision above 100"),
+        ({"message": '"power {mde:' + "9" * 5000 + '}"'}, "a width or precision above 100"),
         ({"message": '"power {mde"'}, "brace"),
         ({"colour": '"red"'}, "unknown key colour"),
         ({"supersedes": '["no-such-rule"]'}, "supersedes unknown rule"),
