@@ -310,7 +310,11 @@ def size_methods(design: Design, mt: MarginTest) -> DesignMethods | None:
         )
     return DesignMethods(
         groups,
-        (PlanMethod("normal approximation, unpooled variance", normal, _REF_BLACKWELDER, default=True),),
+        (
+            PlanMethod(
+                "normal approximation, unpooled variance", normal, _REF_BLACKWELDER, default=True
+            ),
+        ),
     )
 
 
@@ -361,7 +365,9 @@ def margin_p(estimate: np.ndarray, se: np.ndarray, df: np.ndarray, mt: MarginTes
     df = np.where(np.isfinite(df) & (df > 0), df, np.inf)
 
     def upper(t: np.ndarray) -> np.ndarray:
-        return np.where(np.isinf(df), special.ndtr(-t), special.stdtr(np.where(np.isinf(df), 1.0, df), -t))
+        return np.where(
+            np.isinf(df), special.ndtr(-t), special.stdtr(np.where(np.isinf(df), 1.0, df), -t)
+        )
 
     with np.errstate(divide="ignore", invalid="ignore"):
         ni = upper((mt.better * estimate + mt.margin) / se)

@@ -513,6 +513,11 @@ def _design_metrics(
         notes.add(
             positions[no_family], "power_at_pooled_effect: not computed, missing outcome_family"
         )
+    notes.add(
+        positions[np.isfinite(_col(rows, "margin"))],
+        "margin not used: the row tests superiority (set hypothesis to non_inferiority or "
+        "equivalence to test against the margin)",
+    )
     # Texts: one for all masked rows, or one per masked row.
     for mask, text in [*design.fallback_notes(rows), *ignored_notes(design, rows)]:
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
@@ -633,9 +638,9 @@ def _margin_metrics(
     more: dict[str, list[tuple[np.ndarray, str | np.ndarray]]] = {}
     if reproduction is not None:
         more = _note_reproduction(notes, positions, rows, reproduction, planned_total)
-    beyond = (
-        ~mt.equivalence & (mt.better * mt.truth <= -mt.margin)
-    ) | (mt.equivalence & (np.abs(mt.truth) >= mt.margin))
+    beyond = (~mt.equivalence & (mt.better * mt.truth <= -mt.margin)) | (
+        mt.equivalence & (np.abs(mt.truth) >= mt.margin)
+    )
     beyond_text = (
         "the planned true difference lies at or beyond the margin, so no size reaches the "
         "target power"
@@ -654,8 +659,7 @@ def _margin_metrics(
         [
             (
                 np.ones(n, dtype=bool),
-                "no planned true difference given: the margin test is powered at no "
-                "difference",
+                "no planned true difference given: the margin test is powered at no difference",
             )
         ],
     )
@@ -717,10 +721,7 @@ def _margin_metrics(
     skip = (*MARGIN_NOT_APPLICABLE, "ci_verdict", "result_significant", "result_p")
     for pos, text in zip(part.pos, part.text, strict=True):
         keep = ~np.array(
-            [
-                t.startswith(skip) or t.startswith("significant") or "disagree" in t
-                for t in text
-            ],
+            [t.startswith(skip) or t.startswith("significant") or "disagree" in t for t in text],
             dtype=bool,
         )
         notes.add(pos[keep], text[keep])
@@ -743,8 +744,7 @@ def _margin_metrics(
     )
     notes.add(
         positions[unknown],
-        "result_significant: not computed, needs a confidence interval to read against the "
-        "margin",
+        "result_significant: not computed, needs a confidence interval to read against the margin",
     )
     notes.add(
         positions[np.isnan(res_out["result_p"])],

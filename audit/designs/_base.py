@@ -398,7 +398,9 @@ class Design:
         out: list[tuple[np.ndarray, str, str]] = []
         why = self.margin_support()
         if why is not None:
-            out.append((margin_rows, "hypothesis", why + "; audit it as superiority or leave it out"))
+            out.append(
+                (margin_rows, "hypothesis", why + "; audit it as superiority or leave it out")
+            )
             return out
         margin = _column(rows, "margin")
         out.append(
