@@ -58,6 +58,8 @@ METRICS: dict[str, str] = {
     "detectable_margin": "non-inferiority and equivalence rows: the smallest margin the realized "
     "design demonstrates with the target power at the planned true difference (effect units; "
     "ratios above 1; d where effects are standardized); replaces mde for these rows",
+    "margin_share_of_control_effect": "non-inferiority rows: the margin as a share of the "
+    "active control's effect (control_effect), both on the analysis scale (log for ratios)",
     "mde_sesoi_ratio": "|MDE| / |SESOI| on the design's analysis scale (log for hazard ratios, "
     "Fisher z for correlations): above 1, effects that still matter could go undetected",
     "mde_std": "the MDE standardized (d, d_z, h, r, f, f2, log hazard ratio, log rate ratio or "
@@ -513,11 +515,12 @@ def _design_metrics(
         notes.add(
             positions[no_family], "power_at_pooled_effect: not computed, missing outcome_family"
         )
-    notes.add(
-        positions[np.isfinite(_col(rows, "margin"))],
-        "margin not used: the row tests superiority (set hypothesis to non_inferiority or "
-        "equivalence to test against the margin)",
-    )
+    for column in ("margin", "control_effect"):
+        notes.add(
+            positions[np.isfinite(_col(rows, column))],
+            f"{column} not used: the row tests superiority (set hypothesis to non_inferiority "
+            "or equivalence to test against a margin)",
+        )
     # Texts: one for all masked rows, or one per masked row.
     for mask, text in [*design.fallback_notes(rows), *ignored_notes(design, rows)]:
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
@@ -618,6 +621,10 @@ def _margin_metrics(
         ).astype(object)
         out["planned_effect_used"] = design.planned_effect(rows)
         out["sesoi_used"] = np.full(n, np.nan)
+        control = design.to_analysis(_col(rows, "control_effect"))
+        out["margin_share_of_control_effect"] = np.where(
+            mt.equivalence | (control == 0), np.nan, mt.margin / np.abs(control)
+        )
     for metric, reason in design.not_applicable.items():
         out[metric] = (
             np.full(n, None, dtype=object) if metric in TEXT_METRICS else np.full(n, np.nan)
@@ -648,7 +655,8 @@ def _margin_metrics(
     for metric in ("n_required_plan", "n_required_realized", "plan_discrepancy"):
         more.setdefault(metric, [])
         more[metric] = [(beyond, beyond_text), *more[metric]]
-    shown = {m: v for m, v in out.items() if m != "planned_effect_used" and m != "sesoi_used"}
+    own_notes = ("planned_effect_used", "sesoi_used", "margin_share_of_control_effect")
+    shown = {m: v for m, v in out.items() if m not in own_notes}
     _note_nulls(design, rows, positions, notes, shown, plan, real, effect, effect, one_sided, more)
     _explain_nulls(
         notes,
@@ -661,6 +669,18 @@ def _margin_metrics(
                 np.ones(n, dtype=bool),
                 "no planned true difference given: the margin test is powered at no difference",
             )
+        ],
+    )
+    control_given = np.isfinite(_col(rows, "control_effect"))
+    _explain_nulls(
+        notes,
+        positions,
+        "margin_share_of_control_effect",
+        out["margin_share_of_control_effect"],
+        [(~control_given, "control_effect")],
+        [
+            (mt.equivalence, "not applicable, an equivalence margin preserves no control effect"),
+            (np.ones(n, dtype=bool), "not defined, control_effect is no effect"),
         ],
     )
     sesoi_given = np.isfinite(_col(rows, "sesoi"))

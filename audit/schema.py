@@ -146,6 +146,13 @@ COLUMNS: tuple[Column, ...] = (
         "effects are standardized; ratios on the ratio scale, e.g. 1.25 for a hazard ratio, a "
         "value below 1 read as its reciprocal). Required unless hypothesis is superiority.",
     ),
+    Column(
+        "control_effect",
+        "number",
+        "effects",
+        "Non-inferiority: the active control's effect against placebo (from earlier trials), in "
+        "effect units (ratios on the ratio scale); the margin should preserve part of it.",
+    ),
     Column("planned_effect", "number", "effects", "Effect the study was powered for."),
     _p("planned_p1", "effects", "Planned control-group proportion."),
     _p("planned_p2", "effects", "Planned intervention-group proportion."),

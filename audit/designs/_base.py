@@ -118,6 +118,7 @@ COMMON_INPUTS = frozenset(
         "direction",
         "hypothesis",
         "margin",
+        "control_effect",
         "sesoi",
         "observed_effect",
         "observed_se",
