@@ -411,3 +411,32 @@ def test_superiority_row_with_a_margin_says_it_is_not_used():
     result = _audit([row])
     notes = result.by_row(result.notes, "text")[0]
     assert any(t.startswith("margin not used") for t in notes)
+
+
+# -- referee text ---------------------------------------------------------------------------------
+
+
+def test_respond_writes_the_non_inferiority_version():
+    # Issue 15: the draft names the margin, the one-sided level and where the interval's limit
+    # lies against the margin; it never says "planned to detect a risk difference of 0".
+    from audit.respond import respond_text
+
+    row = dict(
+        study_id="NI", design="two_proportions", hypothesis="non_inferiority", margin=0.10,
+        alpha=0.025, direction="increase", planned_p1=0.85, planned_p2=0.85, planned_n1=240,
+        planned_n2=240, realized_n1=236, realized_n2=238, observed_effect=0.007,
+        observed_ci_low=-0.079, observed_ci_high=0.093,
+    )  # fmt: skip
+    eq = dict(
+        study_id="EQ", design="two_means", hypothesis="equivalence", margin=2.0, alpha=0.05,
+        planned_sd=5.0, planned_n1=108, planned_n2=108, realized_n1=100, realized_n2=101,
+        observed_effect=0.5, observed_ci_low=-0.6, observed_ci_high=2.6, observed_ci_level=0.9,
+    )  # fmt: skip
+    result = _audit([row, eq])
+    text = respond_text(result, "NI")
+    assert "planned to detect" not in text
+    assert "margin of 0.1" in text and "one-sided test at α = 0.025" in text
+    assert "lower limit (−0.079) lies above the margin (−0.1): non-inferiority is shown" in text
+    other = respond_text(result, "EQ")
+    assert "two one-sided tests, each at α = 0.05" in other
+    assert "90% CI" in other and "neither shows equivalence" in other
