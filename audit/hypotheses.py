@@ -21,7 +21,7 @@ references: ``docs/methods/hypotheses.md``.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -44,10 +44,12 @@ __all__ = [
     "MarginTest",
     "ci_verdicts",
     "detectable_margin",
+    "margin_bounds",
     "margin_p",
     "margin_rows",
     "margin_test",
     "power",
+    "power_curve",
     "size_methods",
 ]
 
@@ -158,6 +160,24 @@ def power(design: Design, sc: Scenario, mt: MarginTest) -> np.ndarray:
     if eq.any():
         out[eq] = tost_power(mt.truth[eq], mt.margin[eq], se[eq], df[eq], mt.alpha[eq])
     return out
+
+
+def power_curve(design: Design, sc: Scenario, mt: MarginTest, truth: np.ndarray) -> np.ndarray:
+    """Power in ``sc`` at other true differences ``truth`` (analysis scale; one per row), the
+    margins and levels of ``mt`` kept: the curve of a figure."""
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        effect = design.from_analysis(truth)
+    return power(design, sc, replace(mt, truth=truth, truth_effect=effect))
+
+
+def margin_bounds(design: Design, mt: MarginTest) -> tuple[np.ndarray, np.ndarray]:
+    """The margin's edges in effect units: for non-inferiority the worse-side edge (and nan),
+    for equivalence the lower and upper edges of the range."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        worse = design.from_analysis(-mt.better * mt.margin)
+        low = design.from_analysis(-mt.margin)
+        high = design.from_analysis(mt.margin)
+    return np.where(mt.equivalence, low, worse), np.where(mt.equivalence, high, np.nan)
 
 
 def detectable_margin(design: Design, sc: Scenario, mt: MarginTest) -> np.ndarray:
