@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from audit import hypotheses
 from audit.designs import DESIGNS, design_groups, design_of
 from audit.errors import OutputError
 from audit.metrics import test_settings
@@ -71,6 +72,12 @@ def power_curves(
     table, metrics = result.table, result.metrics
     out: dict[int, dict[str, np.ndarray]] = {}
     for design, pos in design_groups(table, np.asarray(positions, dtype=int)):
+        margin = hypotheses.margin_rows(table.iloc[pos])
+        if margin.any():
+            out.update(_margin_curves(design, table.iloc[pos[margin]], pos[margin], grid))
+            pos = pos[~margin]
+            if not len(pos):
+                continue
         rows = table.iloc[pos]
         test = test_settings(rows, design)
         effect = design.planned_effect(rows)
@@ -112,6 +119,38 @@ def power_curves(
                 "realized": curves["realized"][i],
             }
     return out
+
+
+def _margin_curves(design, rows, pos: np.ndarray, grid: int) -> dict[int, dict[str, np.ndarray]]:  # type: ignore[no-untyped-def]
+    """Power of non-inferiority and equivalence tests over true differences: from 1.5 margins
+    on the worse side to one margin on the better side (equivalence: 1.5 margins both ways),
+    the margin's edges marked by the caller (``margin_low`` / ``margin_high``)."""
+    mt = hypotheses.margin_test(design, rows, test_settings(rows, design))
+    frac = np.linspace(0.0, 1.0, grid)[None, :]
+    m = mt.margin[:, None]
+    span = np.where(mt.equivalence[:, None], -1.5 * m + 3.0 * m * frac, -1.5 * m + 2.5 * m * frac)
+    truth = (mt.better[:, None] * span).reshape(-1)
+    tiled = hypotheses.MarginTest(
+        *(np.repeat(getattr(mt, f), grid) for f in mt.__dataclass_fields__)
+    )
+    curves = {}
+    for stage in ("planned", "realized"):
+        sc = {key: np.repeat(v, grid) for key, v in design.scenario(rows, stage).items()}
+        with np.errstate(all="ignore"):
+            curves[stage] = hypotheses.power_curve(design, sc, tiled, truth).reshape(-1, grid)
+    with np.errstate(all="ignore"):
+        effects = design.from_analysis(truth).reshape(-1, grid)
+    low, high = hypotheses.margin_bounds(design, mt)
+    return {
+        int(p): {
+            "effect": effects[i],
+            "planned": curves["planned"][i],
+            "realized": curves["realized"][i],
+            "margin_low": low[i],
+            "margin_high": high[i],
+        }
+        for i, p in enumerate(pos)
+    }
 
 
 def _choose(result: AuditResult, max_studies: int, study: str | Sequence[str] | None) -> np.ndarray:
@@ -199,6 +238,17 @@ def write_plots(
             (metrics["sesoi_used"].iat[pos], "SESOI", PALETTE["sesoi"], ":"),
         ]
         either = metrics["direction_used"].iat[pos] == "either"
+        if "margin_low" in c:
+            # A margin test: power against the true difference, the margin's edges marked.
+            truth = design.planned_effect(table.iloc[[pos]])[0]
+            none = float(design.from_analysis(np.zeros(1))[0])
+            marks = [
+                (truth if np.isfinite(truth) else none, "assumed true difference",
+                 PALETTE["planned_effect"], "-"),
+                (c["margin_low"], "margin", PALETTE["sesoi"], ":"),
+                (c["margin_high"], "margin", PALETTE["sesoi"], ":"),
+            ]  # fmt: skip
+            either = False
         for x, label, colour, ls in marks:
             if x is not None and np.isfinite(x):
                 ax.axvline(x, color=colour, lw=1.3, ls=ls, label=f"{label} = {x:.3g}")
@@ -218,7 +268,13 @@ def write_plots(
                 color=PALETTE["realized"],
             )
         ax.set_ylim(0, 1.02)
-        ax.set_xlabel(f"true effect: {design.effect_unit}")
+        hypothesis = row.get("hypothesis")
+        tested = (
+            f" ({str(hypothesis).replace('_', '-')} test)"
+            if hypothesis in hypotheses.MARGIN_HYPOTHESES
+            else ""
+        )
+        ax.set_xlabel(f"true effect: {design.effect_unit}{tested}")
         ax.set_ylabel("design-based power")
         title = str(row["study_id"])
         if isinstance(row.get("title"), str):

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 from audit.designs import DESIGNS, design_groups
+from audit.designs._base import _margin_rows
 from audit.designs._power import t_power
 from audit.excess import deficit_p_value, excess_significance_test
 
@@ -502,9 +503,12 @@ def pooled_effect_power(
     designs = table["design"].to_numpy(dtype=object)
     poolable = [n for n, d in DESIGNS.items() if "power_at_pooled_effect" not in d.not_applicable]
     members, values, scales = [], [], []
+    # A non-inferiority or equivalence row's power is that of its margin test (audit.metrics
+    # notes it as not applicable here).
+    superiority = ~_margin_rows(table)
     for label, pos in pool.members.items():
         block = pool.families[label]
-        pos = pos[np.isin(designs[pos], poolable)]
+        pos = pos[np.isin(designs[pos], poolable) & superiority[pos]]
         if block["pooled_estimate"] is None:
             note(
                 pos,
@@ -572,7 +576,13 @@ def family_power_grid(
     labels = table["outcome_family"].to_numpy(dtype=object)
     designs = table["design"].to_numpy(dtype=object)
     poolable = [n for n, d in DESIGNS.items() if "power_at_pooled_effect" not in d.not_applicable]
-    pos = np.flatnonzero(valid & (labels == family) & np.isin(designs, poolable) & pd.notna(labels))
+    pos = np.flatnonzero(
+        valid
+        & (labels == family)
+        & np.isin(designs, poolable)
+        & pd.notna(labels)
+        & ~_margin_rows(table)
+    )
     scale, follows = _scales(table, valid & pd.notna(labels))
     pool = FamilyPool({}, {}, scale, follows, 0, "")
     k = len(values)

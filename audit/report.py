@@ -233,6 +233,11 @@ def key_numbers(result: AuditResult, pos: int) -> list[str]:
     out = []
     power = m.get("power_at_planned_effect", np.nan)
     pooled = m.get("power_at_pooled_effect", np.nan)
+    hypothesis = result.table["hypothesis"].iat[pos] if "hypothesis" in result.table else None
+    margin_test = hypothesis in ("non_inferiority", "equivalence")
+    if margin_test:
+        word = "non-inferiority" if hypothesis == "non_inferiority" else "equivalence"
+        out.append(f"{word}, margin {format_number(result.table['margin'].iat[pos])}")
     if math.isfinite(power):
         out.append(f"power {power:.2f} (target {target:.2f})")
     elif math.isfinite(pooled):
@@ -254,6 +259,9 @@ def key_numbers(result: AuditResult, pos: int) -> list[str]:
         extra = f" ({unit} {format_number(std)})" if show_std else ""
         either = " either way" if m.get("direction_used") == "either" else ""
         out.append(f"MDE {named}{format_number(mde)}{either}{extra}")
+    detectable = m.get("detectable_margin", np.nan)
+    if margin_test and math.isfinite(detectable):
+        out.append(f"detectable margin {format_number(detectable)}")
     ratio = m.get("n_ratio", np.nan)
     if math.isfinite(ratio):
         out.append(f"size {ratio:.0%} of plan")
@@ -990,6 +998,15 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
             f"alpha {_cell(row['alpha'])} {sides}, {_cell(row['comparisons'])} comparison(s), "
             f"target power {_cell(row['target_power'])}",
         )
+        if row.get("hypothesis") in ("non_inferiority", "equivalence"):
+            shown = (
+                f"non-inferiority, margin {_cell(row['margin'])} (one-sided test at alpha; "
+                f"interval at {1 - 2 * float(row['alpha']):.0%})"
+                if row["hypothesis"] == "non_inferiority"
+                else f"equivalence, margin ±{_cell(row['margin'])} (two one-sided tests at "
+                f"alpha; interval at {1 - 2 * float(row['alpha']):.0%})"
+            )
+            grid.add_row("hypothesis", shown)
         study_findings = result.findings[result.findings["pos"] == pos]
         status = str(result.status[pos])
         if status == "audited":

@@ -212,7 +212,24 @@ def _typed_table(raw: RawTable, data: pd.DataFrame, found: _Findings) -> pd.Data
     codes, texts = pd.factorize(sides, use_na_sentinel=False)
     numbers = pd.to_numeric(pd.Series(texts, dtype=object), errors="coerce").to_numpy(dtype=float)
     columns["sides"] = numbers[codes]
+    _one_sided_margin_tests(data, columns)
     return pd.DataFrame(columns, index=pd.RangeIndex(n))
+
+
+def _one_sided_margin_tests(data: pd.DataFrame, columns: dict) -> None:
+    """A blank ``sides`` on a non-inferiority or equivalence row is 1: their tests are one-sided
+    (TOST: two one-sided tests), at the row's ``alpha`` (DESIGN.md 9.1)."""
+    hypothesis = pd.Series(columns["hypothesis"], dtype=object).to_numpy()
+    margin = np.isin(hypothesis, ("non_inferiority", "equivalence"))
+    if not margin.any():
+        return
+    if "sides" in data.columns:
+        text = data["sides"].reset_index(drop=True).astype(object)
+        cleaned = text.where(text.notna(), "").map(str).str.strip().str.lower()
+        blank = (cleaned.eq("") | cleaned.isin(MISSING_TOKENS - {"-"})).to_numpy(dtype=bool)
+    else:
+        blank = np.ones(len(margin), dtype=bool)
+    columns["sides"] = np.where(margin & blank, 1.0, columns["sides"])
 
 
 def _absent(spec: Column, n: int) -> np.ndarray | pd.Series:

@@ -341,6 +341,7 @@ def test_rules_wait_for_metrics_and_activate_when_they_exist():
     absent = result.metrics.drop(columns=["ci_verdict", "exaggeration", "observed_power"])
     waiting = evaluate_rules(load_rules(), result.table, absent, result.valid)
     assert waiting.waiting == {
+        "margin-result-inconclusive": ["ci_verdict"],
         "null-result-inconclusive": ["ci_verdict"],
         "observed-power-reported": ["observed_power"],
         "significant-result-likely-exaggerated": ["ci_verdict", "exaggeration"],
@@ -452,6 +453,7 @@ def test_evaluation_is_vectorised_over_many_rows():
         {
             "study_id": np.arange(n).astype(str).astype(object),
             "design": np.full(n, "two_means", dtype=object),
+            "hypothesis": np.full(n, "superiority", dtype=object),
             "target_power": np.full(n, 0.8),
             "planned_n1": np.full(n, 64.0),
             "planned_events": np.full(n, np.nan),

@@ -112,6 +112,11 @@ class ClusterTwoProportions(TwoProportions):
     The continuity correction is not offered (it is not defined for the design-effect test).
     """
 
+    margin_tests = False
+
+    def margin_support(self) -> str | None:
+        return f"{self.name} has no non-inferiority or equivalence test yet"
+
     name = "cluster_two_proportions"
     family = "cluster"
     title = "two arms of clusters, proportions (design effect, t on cluster df)"

@@ -240,6 +240,18 @@ class TwoProportions(Design):
     )
     scale_label = "risk difference"
 
+    margin_tests = True
+
+    def margin_support(self) -> str | None:
+        # Only the risk difference is done (Blackwelder's unpooled variance); ratio margins
+        # would need their own variance under the margin and are refused rather than guessed.
+        if self.measure != "risk_difference":
+            return (
+                f"{self.name} tests margins on the risk difference only (effect_measure "
+                f"{self.measure} is not supported for non-inferiority or equivalence yet)"
+            )
+        return None
+
     def __init__(self, measure: str = "risk_difference") -> None:
         if measure not in MEASURES:
             raise ValueError(f"unknown effect measure {measure!r}")
