@@ -35,6 +35,7 @@ if TYPE_CHECKING:
 __all__ = [
     "PALETTE",
     "chosen_studies",
+    "curve_marks",
     "family_curves",
     "family_figures",
     "portfolio_figures",
@@ -233,30 +234,21 @@ def study_figure(result: AuditResult, pos: int, curve: dict[str, np.ndarray] | N
         color="#555555",
         transform=ax.get_yaxis_transform(),
     )
-    marks = [
-        (
-            design.planned_effect(table.iloc[[pos]])[0],
-            "planned effect",
-            PALETTE["planned_effect"],
-            "-",
-        ),
-        (metrics["mde"].iat[pos], "MDE (realized)", PALETTE["mde"], "--"),
-        (metrics["sesoi_used"].iat[pos], "SESOI", PALETTE["sesoi"], ":"),
-    ]
-    either = metrics["direction_used"].iat[pos] == "either"
-    for x, label, colour, ls in marks:
-        if x is not None and np.isfinite(x):
-            ax.axvline(x, color=colour, lw=1.3, ls=ls, label=f"{label} = {x:.3g}")
-            if either and label != "planned effect":
-                # Either way: the same magnitude on the other side of no effect.
-                mirror = float(design.from_analysis(-design.to_analysis(np.array([x])))[0])
-                ax.axvline(mirror, color=colour, lw=1.3, ls=ls)
+    styles = {"planned_effect": "-", "mde": "--", "sesoi": ":"}
+    marks = curve_marks(result, pos)
+    for mark in marks:
+        kind, x = mark["kind"], mark["x"]
+        colour = PALETTE[kind]
+        ax.axvline(x, color=colour, lw=1.3, ls=styles[kind], label=f"{mark['label']} = {x:.3g}")
+        if mark["mirror"] is not None:
+            ax.axvline(mark["mirror"], color=colour, lw=1.3, ls=styles[kind])
     achieved = metrics["power_at_planned_effect"].iat[pos]
-    if np.isfinite(achieved):
-        ax.plot([marks[0][0]], [achieved], "o", color=PALETTE["realized"], ms=6, zorder=5)
+    planned = [m["x"] for m in marks if m["kind"] == "planned_effect"]
+    if np.isfinite(achieved) and planned:
+        ax.plot(planned, [achieved], "o", color=PALETTE["realized"], ms=6, zorder=5)
         ax.annotate(
             f"{achieved:.2f}",
-            (marks[0][0], achieved),
+            (planned[0], achieved),
             textcoords="offset points",
             xytext=(6, -12),
             fontsize=8,
@@ -272,6 +264,29 @@ def study_figure(result: AuditResult, pos: int, curve: dict[str, np.ndarray] | N
     ax.legend(frameon=False, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=3)
     fig.tight_layout()
     return fig
+
+
+def curve_marks(result: AuditResult, pos: int) -> list[dict[str, object]]:
+    """The effects marked on a study's power curve: ``kind`` (``planned_effect``, ``mde``,
+    ``sesoi``), ``label``, ``x`` (effect units) and ``mirror``, the same magnitude on the other
+    side of no effect for a study that looked either way (None otherwise; never for the
+    planned effect). Marks that are not known are left out."""
+    table, metrics = result.table, result.metrics
+    design = design_of(table, pos)
+    either = metrics["direction_used"].iat[pos] == "either"
+    out: list[dict[str, object]] = []
+    for kind, label, x in (
+        ("planned_effect", "planned effect", design.planned_effect(table.iloc[[pos]])[0]),
+        ("mde", "MDE (realized)", metrics["mde"].iat[pos]),
+        ("sesoi", "SESOI", metrics["sesoi_used"].iat[pos]),
+    ):
+        if x is None or not np.isfinite(x):
+            continue
+        mirror = None
+        if either and kind != "planned_effect":
+            mirror = float(design.from_analysis(-design.to_analysis(np.array([x])))[0])
+        out.append({"kind": kind, "label": label, "x": float(x), "mirror": mirror})
+    return out
 
 
 def family_curves(
