@@ -17,6 +17,7 @@ MODULES = [
     "audit.designs.variance",
     "audit.numbers",
     "audit.pipeline",
+    "audit.portfolio",
 ]
 
 
