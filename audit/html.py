@@ -30,7 +30,6 @@ import numpy as np
 
 from audit import __version__
 from audit._format import format_number
-from audit.designs import design_of
 from audit.export import CAUTION, atomic_output, refuse_input
 from audit.portfolio import BLANK_GROUP
 from audit.report import (
@@ -184,7 +183,7 @@ def _ticks(low: float, high: float, n: int = 6) -> list[float]:
 
 
 def _curve_plot(
-    result: AuditResult, pos: int, curve: dict[str, np.ndarray] | None
+    result: AuditResult, pos: int, curve: dict[str, np.ndarray] | None, design: Any
 ) -> dict[str, Any] | None:
     """A study's power curve as plot geometry for the template's SVG (pixel positions only;
     the curves and marks are :mod:`audit.plots`')."""
@@ -237,7 +236,6 @@ def _curve_plot(
             "y": f"{py(achieved):.1f}",
             "label": f"{achieved:.2f}",
         }
-    design = design_of(result.table, pos)
     return {
         "width": _W,
         "height": _H,
@@ -380,10 +378,19 @@ def _study_sections(
         "item",
     )
     pairs = _pairs()
+    wanted = [
+        "study_id", "title", "_row", "design", "sides", "alpha", "comparisons", "target_power",
+        *(c for _, a, b in pairs for c in (a, b)), *_EFFECT_COLUMNS, *_RESULT_COLUMNS,
+    ]  # fmt: skip
+    # Plain records and columns once (a frame's row lookups cost per call).
+    rows = table[[c for c in dict.fromkeys(wanted) if c in table.columns]].to_dict("records")
+    shown = [m for m in STUDY_METRICS if m in metrics.columns]
+    values = {m: metrics[m].to_numpy() for m in shown}
+    variants = _designs(table)
     out = []
     for pos in range(len(table)):
-        row = table.iloc[pos]
-        design = design_of(table, pos)
+        row = rows[pos]
+        design = variants[pos]
         section: dict[str, Any] = {
             "anchor": f"study-{pos}",
             "id": _text(row["study_id"]),
@@ -433,11 +440,8 @@ def _study_sections(
         section["reported"] = [(c, _num(row[c])) for c in _RESULT_COLUMNS if _num(row.get(c))]
         section["reproduction"] = plan_reproduction(result, pos)
         section["key_numbers"] = key_numbers(result, pos)
-        section["metrics"] = [
-            (name, _num(metrics[name].iat[pos]))
-            for name in STUDY_METRICS
-            if name in metrics.columns and _num(metrics[name].iat[pos]) != ""
-        ]
+        cells = [(name, _num(values[name][pos])) for name in shown]
+        section["metrics"] = [(name, v) for name, v in cells if v != ""]
         section["findings"] = []
         for severity, rule_id, message in findings[pos]:
             rule = rules.get(rule_id)
@@ -451,7 +455,18 @@ def _study_sections(
                     "references": list(rule.references) if rule and inline else [],
                 }
             )
-        section["curve"] = _curve_plot(result, pos, curves.get(pos))
+        section["curve"] = _curve_plot(result, pos, curves.get(pos), design)
+    return out
+
+
+def _designs(table: Any) -> np.ndarray:
+    """Each row's design (the variant of its effect measure), None where unknown: grouped once
+    rather than looked up row by row."""
+    from audit.designs import design_groups
+
+    out = np.full(len(table), None, dtype=object)
+    for design, pos in design_groups(table):
+        out[pos] = design
     return out
 
 
