@@ -24,6 +24,7 @@ from audit.resources import bundled_dir
 
 DEMO = bundled_dir("demo_data") / "demo_portfolio.csv"
 HOSTILE_ID = "<script>alert('id')</script>"
+HOSTILE_FAMILY = "<script>alert('family')</script>"
 HOSTILE_TITLE = '"><img src=x onerror="alert(1)"><b>bold</b>'
 
 
@@ -126,10 +127,14 @@ def test_invalid_rows_say_why(demo, page):
 
 
 def _hostile() -> audit.AuditResult:
-    frame = pd.read_csv(DEMO, dtype=str, keep_default_na=False).head(8)
+    frame = pd.read_csv(DEMO, dtype=str, keep_default_na=False)
+    frame = frame[frame["outcome_family"].isin(["alertness", "activity", "attention"])]
+    frame = frame.reset_index(drop=True)
     frame.loc[0, "study_id"] = HOSTILE_ID
     frame.loc[0, "title"] = HOSTILE_TITLE
-    frame["programme"] = ["<i>p</i>"] * 4 + ["&amp;"] * 4
+    frame["programme"] = ["<i>p</i>", "&amp;"] * (len(frame) // 2) + ["x"] * (len(frame) % 2)
+    # A family name reaches the family figure's title, drawn by matplotlib into the SVG.
+    frame.loc[frame["outcome_family"] == "alertness", "outcome_family"] = HOSTILE_FAMILY
     return audit.audit_table(frame, group_by=["programme"])
 
 
@@ -142,7 +147,8 @@ def test_hostile_ids_titles_and_group_values_are_escaped():
     assert "&lt;script&gt;alert(" in page
     assert "&lt;i&gt;p&lt;/i&gt;" in page and "&amp;amp;" in page
     # The study's figure title (matplotlib) is not drawn from the title; the curve is ours.
-    assert HOSTILE_TITLE not in page and HOSTILE_ID not in page
+    assert HOSTILE_TITLE not in page and HOSTILE_ID not in page and HOSTILE_FAMILY not in page
+    assert 'id="figure-family_' in page  # the hostile family's figure is drawn, escaped
 
 
 def test_no_external_resources_and_the_script_is_allowed_by_its_hash(page):
