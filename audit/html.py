@@ -171,7 +171,9 @@ def _portfolio_figures(result: AuditResult) -> list[dict[str, Any]]:
                 "Outcome family " + name.removeprefix("family_") + ": "
                 "power of its studies against the true effect.",
             )
-            out.append({"name": name, "caption": caption, "svg": Markup(svg)})
+            # Ids from our own names only: a family's name is the user's text.
+            anchor = name if name.startswith("portfolio_") else f"family-{k}"
+            out.append({"name": anchor, "caption": caption, "svg": Markup(svg)})
     return out
 
 

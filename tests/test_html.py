@@ -148,7 +148,7 @@ def test_hostile_ids_titles_and_group_values_are_escaped():
     assert "&lt;i&gt;p&lt;/i&gt;" in page and "&amp;amp;" in page
     # The study's figure title (matplotlib) is not drawn from the title; the curve is ours.
     assert HOSTILE_TITLE not in page and HOSTILE_ID not in page and HOSTILE_FAMILY not in page
-    assert 'id="figure-family_' in page  # the hostile family's figure is drawn, escaped
+    assert 'id="figure-family-' in page  # the hostile family's figure is drawn, escaped
 
 
 def test_no_external_resources_and_the_script_is_allowed_by_its_hash(page):
