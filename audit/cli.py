@@ -182,9 +182,22 @@ def _add_check_options(p: argparse.ArgumentParser) -> None:
         "--csv", metavar="OUT", help="write the per-study table as CSV ('-' for stdout)"
     )
     out.add_argument("--xlsx", metavar="OUT", help="write the annotated workbook")
+    out.add_argument(
+        "--html",
+        metavar="OUT",
+        help="write the report as one self-contained HTML file (opens offline, prints cleanly)",
+    )
     out.add_argument("--plots", metavar="DIR", type=Path, help="write figures into this folder")
     out.add_argument(
         "--plot-format", choices=("png", "svg"), default="png", help="figure format (default png)"
+    )
+    p.add_argument(
+        "--group-by",
+        metavar="COLUMN",
+        action="append",
+        default=[],
+        help="also summarise the portfolio per value of this column (a column of the file, such "
+        "as a programme or field; blank cells form their own group); repeatable",
     )
     p.add_argument("--quiet", action="store_true", help="write the exports only, no report")
     _add_analysis_options(p)
@@ -236,6 +249,8 @@ class CheckRun:
     json_out: str | None = None
     csv_out: str | None = None
     xlsx_out: str | None = None
+    html_out: str | None = None
+    group_by: Sequence[str] = ()
     plots_dir: Path | None = None
     plot_format: str = "png"
     report_out: Path | None = None
@@ -268,12 +283,13 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
     # an output that would replace a file the run reads.
     ruleset = load_rules(run.rule_files)
     reads = [("the input file", run.path), *(("a rules file", f) for f in run.rule_files)]
-    for target in (run.json_out, run.csv_out, run.xlsx_out, run.report_out):
+    for target in (run.json_out, run.csv_out, run.xlsx_out, run.html_out, run.report_out):
         if target is not None:
             refuse_overwrite(target, reads)
-    to_stdout = "-" in (run.json_out, run.csv_out)
+    to_stdout = "-" in (run.json_out, run.csv_out, run.html_out)
     exports = [
         ("writing JSON", run.json_out),
+        ("writing HTML", run.html_out),
         ("writing CSV", run.csv_out),
         ("writing workbook", run.xlsx_out),
         ("drawing figures", run.plots_dir),
@@ -293,6 +309,11 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         if run.json_out:
             progress("writing JSON")
             write_json(result, run.json_out)
+        if run.html_out:
+            from audit.html import write_html
+
+            progress("writing HTML")
+            write_html(result, run.html_out, fail_on=run.fail_on)
         if run.plots_dir is not None:
             from audit.plots import write_plots
 
@@ -386,6 +407,7 @@ def _audit_with_exports(
             rules=ruleset,
             progress=progress,
             on_part=on_part if sinks else None,
+            group_by=run.group_by,
             **run.analysis,
         )
         if sinks and result.settings.get("rules_reapplied"):
@@ -394,7 +416,9 @@ def _audit_with_exports(
             exports.pop_all()
             for sink in sinks:
                 sink.__exit__(RuntimeError, RuntimeError("rewritten"), None)
-            full = audit_file(run.path, sheet=run.sheet, rules=ruleset, **run.analysis)
+            full = audit_file(
+                run.path, sheet=run.sheet, rules=ruleset, group_by=run.group_by, **run.analysis
+            )
             if run.csv_out:
                 write_csv(full, run.csv_out)
             if run.xlsx_out:
@@ -432,6 +456,8 @@ def _check(args: argparse.Namespace) -> int:
             json_out=args.json,
             csv_out=args.csv,
             xlsx_out=args.xlsx,
+            html_out=args.html,
+            group_by=args.group_by,
             plots_dir=args.plots,
             plot_format=args.plot_format,
             quiet=args.quiet,
@@ -474,12 +500,13 @@ def _demo(args: argparse.Namespace) -> int:
             json_out=str(out / "audit.json"),
             csv_out=str(out / "audit.csv"),
             xlsx_out=str(out / "audit.xlsx"),
+            html_out=str(out / "report.html"),
             plots_dir=out / "plots",
             report_out=out / "report.txt",
             quiet=args.quiet,
         )
     )
-    written = ["report.txt", "audit.json", "audit.csv", "audit.xlsx", "plots/"]
+    written = ["report.txt", "report.html", "audit.json", "audit.csv", "audit.xlsx", "plots/"]
     example = _demo_response_study(result)
     if example is not None:
         name = f"response_{example}.md"

@@ -26,6 +26,7 @@ from rich.theme import Theme
 from audit._format import format_number
 from audit.designs import design_of
 from audit.metrics import METRICS, REFERENCE_PREFIX
+from audit.portfolio import BLANK_GROUP
 from audit.rules import CONTRACT_METRICS, SEVERITIES, SEVERITY_RANK, Rule, RuleSet, known_columns
 from audit.schema import COLUMNS
 from audit.terminal import clean, clean_frame, clean_value
@@ -811,6 +812,66 @@ def _render_problems(view: Overview, console: Console) -> None:
         )
 
 
+def _render_groups(result: AuditResult, console: Console) -> None:
+    """The portfolio summary per value of each ``--group-by`` column (``result.groups``, from
+    :func:`audit.portfolio.group_summaries`): one line per value, at most ``MAX_LISTED``."""
+    headers = dict(zip(result.groups, result.settings.get("group_by", []), strict=False))
+    for column, groups in result.groups.items():
+        _section(console, f"By {headers.get(column, column)} ({_plural(len(groups), 'group')})")
+        table = Table(box=None, padding=(0, 1), pad_edge=False, header_style="audit.label")
+        longest = max((len(v) for v in groups), default=1)
+        table.add_column(headers.get(column, column), overflow="fold", min_width=min(longest, 26))
+        for name in ("studies", "audited", "power", "at target", "serious", "warning"):
+            table.add_column(name, justify="right", no_wrap=True)
+        tested = []
+        for value, g in list(groups.items())[:MAX_LISTED]:
+            excess = g.get("excess_significance")
+            worst = g["studies_by_worst_finding"]
+            median = g["median_power_at_planned_effect"]
+            table.add_row(
+                Text(value, style="audit.muted" if value == BLANK_GROUP else ""),
+                f"{g['studies']:,}",
+                f"{g['audited']:,}",
+                "-" if median is None else f"{median:.2f}",
+                _pct(g["share_at_target_power"]),
+                f"{worst['serious']:,}",
+                f"{worst['warning']:,}",
+            )
+            if excess:
+                tested.append(
+                    f"{value}: {_plural(excess['observed'], 'significant result')} against "
+                    f"{excess['expected']:.1f} expected, one-sided p = "
+                    f"{format_number(excess['p_value'])}"
+                )
+        console.print(Padding(table, (0, 0, 0, 1)))
+        if len(groups) > MAX_LISTED:
+            console.print(
+                Padding(
+                    Text(
+                        f"{len(groups) - MAX_LISTED:,} more groups in the JSON, HTML and "
+                        "workbook exports",
+                        "audit.muted",
+                    ),
+                    (0, 1, 0, 1),
+                )
+            )
+        if tested:
+            console.print(
+                Padding("excess significance within a group: " + "; ".join(tested), (0, 1, 0, 1))
+            )
+        console.print(
+            Padding(
+                Text(
+                    "power: median design-based power at the planned effect; at target: share "
+                    "of those studies at their own target; serious / warning: audited studies "
+                    "by their most severe finding",
+                    "audit.muted",
+                ),
+                (0, 1, 0, 1),
+            )
+        )
+
+
 def _render_caveats(result: AuditResult, console: Console) -> None:
     """The closing section: the caveats that apply to this audit (see :mod:`audit.caveats`)."""
     _section(console, "Reading these results")
@@ -864,6 +925,7 @@ def render_report(
     _render_portfolio(view, console)
     effects = result.settings.get("reference_effects") or []
     _render_families(view, console, "/".join(f"{e:g}" for e in effects) or "reference")
+    _render_groups(result, console)
     _render_problems(view, console)
     _render_flagged(view, console)
     _render_invalid(view, console)
