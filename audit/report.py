@@ -1177,7 +1177,11 @@ def _rule_state(rule: Rule) -> str:
     if not rule.enabled:
         return "switched off"
     missing = rule.missing(known_columns().keys() - CONTRACT_METRICS.keys() | METRICS.keys())
-    return "waits for " + ", ".join(missing) if missing else "active"
+    own = rule.own_columns()
+    state = "waits for " + ", ".join(missing) if missing else "active"
+    if own:
+        state += "; reads the file's own column " + ", ".join(own)
+    return state
 
 
 def _source_label(source: str) -> str:

@@ -127,11 +127,25 @@ def _read_sheet(path: Path, book: object, sheet: str | None) -> Sheet:
     return found
 
 
+#: The first two sheets of the workbook ``check --xlsx`` writes (audit/workbook.py): a file
+#: laid out so is read from its second sheet unless ``--sheet`` says otherwise.
+EXPORT_FIRST_SHEETS = ("summary", "audit")
+
+
 def _choose_sheet(
     path: Path, names: list[str], states: list[str], sheet: str | None
 ) -> tuple[int, list[str]]:
     """Index of the worksheet to read (``sheet``, or the first visible one) and notes."""
     notes: list[str] = []
+    if sheet is None and names[:2] == list(EXPORT_FIRST_SHEETS) and states[1] == "visible":
+        # A workbook this tool wrote (check --xlsx): its studies are on 'audit', after the
+        # one-line-per-study summary a panel reads first. Re-auditing it reads them.
+        notes.append(
+            f"the workbook is a study-audit export; its '{names[1]}' sheet was read, not "
+            + ", ".join(f"'{n}'" for i, n in enumerate(names) if i != 1)
+            + " (use --sheet to choose)"
+        )
+        return 1, notes
     if sheet is None:
         visible = [i for i, state in enumerate(states) if state == "visible"]
         index = visible[0] if visible else 0

@@ -54,7 +54,7 @@ def test_workbook_reaudits_to_identical_metrics(demo, tmp_path):
     again = audit.audit_file(out, sheet="audit")
     _same_metrics(demo, again)
     book = load_workbook(out, read_only=True)
-    assert book.sheetnames == ["audit", "portfolio", "rules", "invalid rows", "read me"]
+    assert book.sheetnames == ["summary", "audit", "portfolio", "rules", "invalid rows", "read me"]
 
 
 def test_workbook_keeps_user_columns_first_and_numbers_as_numbers(demo, tmp_path):
