@@ -27,6 +27,7 @@ from typing import TYPE_CHECKING, Any
 
 from audit import __version__
 from audit.errors import AuditError, ConfigError, InputError, OutputError
+from audit.terminal import clean_line
 
 if TYPE_CHECKING:
     from audit.result import AuditResult
@@ -278,12 +279,25 @@ def _add_check_options(p: argparse.ArgumentParser) -> None:
         "--csv", metavar="OUT", help="write the per-study table as CSV ('-' for stdout)"
     )
     out.add_argument("--xlsx", metavar="OUT", help="write the annotated workbook (a file)")
+    out.add_argument(
+        "--html",
+        metavar="OUT",
+        help="write the report as one self-contained HTML file (opens offline, prints cleanly)",
+    )
     out.add_argument("--plots", metavar="DIR", type=Path, help="write figures into this folder")
     out.add_argument(
         "--plot-format",
         choices=("png", "svg"),
         default="png",
         help="figure format (default: png)",
+    )
+    p.add_argument(
+        "--group-by",
+        metavar="COLUMN",
+        action="append",
+        default=[],
+        help="also summarise the portfolio per value of this column (a column of the file, such "
+        "as a programme or field; blank cells form their own group); repeatable",
     )
     p.add_argument("--quiet", action="store_true", help="write the exports only, no report")
     _add_analysis_options(p)
@@ -313,7 +327,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.command == "respond":
             return _respond(args)
     except AuditError as exc:
-        print(f"study-audit: {exc}", file=sys.stderr)
+        print(f"study-audit: {clean_line(str(exc))}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print("study-audit: interrupted.", file=sys.stderr)
@@ -322,7 +336,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if getattr(args, "debug", False):
             raise
         print(
-            f"study-audit: internal error ({type(exc).__name__}: {exc}); "
+            f"study-audit: internal error ({type(exc).__name__}: {clean_line(str(exc))}); "
             "run again with --debug and report the output.",
             file=sys.stderr,
         )
@@ -343,6 +357,8 @@ class CheckRun:
     json_out: str | None = None
     csv_out: str | None = None
     xlsx_out: str | None = None
+    html_out: str | None = None
+    group_by: Sequence[str] = ()
     plots_dir: Path | None = None
     plot_format: str = "png"
     report_out: Path | None = None
@@ -378,12 +394,13 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
     check_stdout(run)
     ruleset = load_rules(run.rule_files)
     reads = [("the input file", run.path), *(("a rules file", f) for f in run.rule_files)]
-    for target in (run.json_out, run.csv_out, run.xlsx_out, run.report_out):
+    for target in (run.json_out, run.csv_out, run.xlsx_out, run.html_out, run.report_out):
         if target is not None:
             refuse_overwrite(target, reads)
-    to_stdout = "-" in (run.json_out, run.csv_out)
+    to_stdout = "-" in (run.json_out, run.csv_out, run.html_out)
     exports = [
         ("writing JSON", run.json_out),
+        ("writing HTML", run.html_out),
         ("writing CSV", run.csv_out),
         ("writing workbook", run.xlsx_out),
         ("drawing figures", run.plots_dir),
@@ -406,6 +423,11 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         if run.json_out:
             progress("writing JSON")
             write_json(result, run.json_out)
+        if run.html_out:
+            from audit.html import write_html
+
+            progress("writing HTML")
+            write_html(result, run.html_out, fail_on=run.fail_on)
         if run.plots_dir is not None:
             from audit.plots import write_plots
 
@@ -426,7 +448,14 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         from audit.report import THEME
 
         with atomic_output(run.report_out) as handle:
-            plain = Console(file=handle, width=100, color_system=None, theme=THEME, highlight=False)
+            plain = Console(
+                file=handle,
+                width=100,
+                color_system=None,
+                theme=THEME,
+                highlight=False,
+                markup=False,
+            )
             render_report(result, plain, fail_on=run.fail_on)
     if not run.quiet:
         console = make_console(stderr=to_stdout)
@@ -550,6 +579,7 @@ def _audit_with_exports(
             rules=ruleset,
             progress=progress,
             on_part=on_part if sinks else None,
+            group_by=run.group_by,
             **run.analysis,
         )
         if run.source_name is not None:
@@ -560,7 +590,9 @@ def _audit_with_exports(
             exports.pop_all()
             for sink in sinks:
                 sink.__exit__(RuntimeError, RuntimeError("rewritten"), None)
-            full = audit_file(run.path, sheet=run.sheet, rules=ruleset, **run.analysis)
+            full = audit_file(
+                run.path, sheet=run.sheet, rules=ruleset, group_by=run.group_by, **run.analysis
+            )
             if run.csv_out:
                 write_csv(full, run.csv_out)
             if run.xlsx_out:
@@ -598,6 +630,8 @@ def _check(args: argparse.Namespace) -> int:
             json_out=args.json,
             csv_out=args.csv,
             xlsx_out=args.xlsx,
+            html_out=args.html,
+            group_by=args.group_by,
             plots_dir=args.plots,
             plot_format=args.plot_format,
             quiet=args.quiet,
@@ -640,12 +674,13 @@ def _demo(args: argparse.Namespace) -> int:
             json_out=str(out / "audit.json"),
             csv_out=str(out / "audit.csv"),
             xlsx_out=str(out / "audit.xlsx"),
+            html_out=str(out / "report.html"),
             plots_dir=out / "plots",
             report_out=out / "report.txt",
             quiet=args.quiet,
         )
     )
-    written = ["report.txt", "audit.json", "audit.csv", "audit.xlsx", "plots/"]
+    written = ["report.txt", "report.html", "audit.json", "audit.csv", "audit.xlsx", "plots/"]
     example = _demo_response_study(result)
     if example is not None:
         name = f"response_{example}.md"
@@ -696,7 +731,7 @@ def _respond(args: argparse.Namespace) -> int:
     else:
         with atomic_output(args.out) as handle:
             handle.write(text)
-        print(f"Response for {args.study_id} written to {args.out}", file=sys.stderr)
+        print(f"Response for {clean_line(args.study_id)} written to {args.out}", file=sys.stderr)
     return EXIT_OK
 
 

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from audit import plan_methods, retro
+from audit import hypotheses, plan_methods, retro
 from audit import reported as reported_forms
 from audit._format import format_number
 from audit.designs import Design, Scenario, TestSpec, design_groups
@@ -55,6 +55,11 @@ METRICS: dict[str, str] = {
     "mde": "minimal detectable effect at the target power with the realized design "
     "(effect units, signed in the direction used; a magnitude when either, taken on the harder "
     "side where the two sides differ)",
+    "detectable_margin": "non-inferiority and equivalence rows: the smallest margin the realized "
+    "design demonstrates with the target power at the planned true difference (effect units; "
+    "ratios above 1; d where effects are standardized); replaces mde for these rows",
+    "margin_share_of_control_effect": "non-inferiority rows: the margin as a share of the "
+    "active control's effect (control_effect), both on the analysis scale (log for ratios)",
     "mde_sesoi_ratio": "|MDE| / |SESOI| on the design's analysis scale (log for hazard ratios, "
     "Fisher z for correlations): above 1, effects that still matter could go undetected",
     "mde_std": "the MDE standardized (d, d_z, h, r, f, f2, log hazard ratio, log rate ratio or "
@@ -102,7 +107,10 @@ METRICS: dict[str, str] = {
     "result_significant": "1 if the study's test rejects at its own alpha (the interval decides "
     "where known, else p), 0 if not",
     "ci_verdict": "what the interval rules out: detected, excludes_sesoi, "
-    "excludes_planned_effect or inconclusive (the smallest reference effect excluded is named)",
+    "excludes_planned_effect or inconclusive (the smallest reference effect excluded is named); "
+    "non-inferiority rows: non_inferior, inferior or inconclusive, equivalence rows: "
+    "equivalent, not_equivalent or inconclusive (the interval at level 1 - 2 alpha against the "
+    "margin)",
     "ci_halfwidth_observed": "half-width of the result's confidence interval (test's level, "
     "analysis scale)",
     "ci_halfwidth_ratio_plan": "ci_halfwidth_observed / ci_halfwidth_plan (above 1: less "
@@ -385,9 +393,31 @@ def _group_metrics(
     out = []
     for design, positions in groups:
         notes = _Notes()
-        computed = _design_metrics(
-            design, table.iloc[positions], positions, notes, plan_tolerance, reference_effects
-        )
+        rows = table.iloc[positions]
+        margin = hypotheses.margin_rows(rows)
+        if not margin.any():
+            computed = _design_metrics(
+                design, rows, positions, notes, plan_tolerance, reference_effects
+            )
+        else:
+            # Non-inferiority and equivalence rows have metrics of their own meaning; the
+            # superiority rows of the design are computed as before.
+            computed = {}
+            for mask, func in ((~margin, _design_metrics), (margin, _margin_metrics)):
+                if not mask.any():
+                    continue
+                part = func(
+                    design, rows.iloc[mask], positions[mask], notes, plan_tolerance,
+                    reference_effects,
+                )  # fmt: skip
+                for metric, values in part.items():
+                    if metric not in computed:
+                        computed[metric] = (
+                            np.full(len(rows), None, dtype=object)
+                            if values.dtype == object
+                            else np.full(len(rows), np.nan)
+                        )
+                    computed[metric][mask] = values
         out.append((computed, notes))
     return out
 
@@ -485,10 +515,278 @@ def _design_metrics(
         notes.add(
             positions[no_family], "power_at_pooled_effect: not computed, missing outcome_family"
         )
+    for column in ("margin", "control_effect"):
+        notes.add(
+            positions[np.isfinite(_col(rows, column))],
+            f"{column} not used: the row tests superiority (set hypothesis to non_inferiority "
+            "or equivalence to test against a margin)",
+        )
     # Texts: one for all masked rows, or one per masked row.
     for mask, text in [*design.fallback_notes(rows), *ignored_notes(design, rows)]:
         notes.add(positions[np.asarray(mask, dtype=bool)], text)
     out.update(_retro_metrics(design, rows, positions, notes, out, test, plan, real, effect, sesoi))
+    return out
+
+
+#: Metrics that have no meaning on a non-inferiority or equivalence row (the margin replaces the
+#: effect to detect; no superiority test is run), noted once per row.
+MARGIN_NOT_APPLICABLE = (
+    "mde",
+    "mde_std",
+    "mde_sesoi_ratio",
+    "power_at_sesoi",
+    "type_s",
+    "exaggeration",
+    "type_s_at_sesoi",
+    "exaggeration_at_sesoi",
+    "observed_power",
+    "observed_power_from_p",
+    "reported_p_recomputed",
+    "reported_p_discrepancy",
+    "reported_p_as_given",
+    "reported_p_recomputed_from",
+)
+
+#: Reported inputs a margin row does not use: a p-value or test statistic may test the margin or
+#: no difference, and the paper rarely says which; the interval (or estimate and SE) decides.
+MARGIN_UNUSED_RESULTS = ("observed_p", "observed_p_relation", "observed_statistic")
+
+
+def _margin_metrics(
+    design: Design,
+    rows: pd.DataFrame,
+    positions: np.ndarray,
+    notes: _Notes,
+    plan_tolerance: float,
+    reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
+) -> dict[str, np.ndarray]:
+    """Metrics of non-inferiority and equivalence rows (audit/hypotheses.py): power, sizes and
+    the reproduction of the plan for the margin test, ``detectable_margin`` in place of the
+    MDE, and the reported interval read against the margin."""
+    n = len(rows)
+    test = test_settings(rows, design)
+    mt = hypotheses.margin_test(design, rows, test)
+    one_sided = mt.one_sided()
+    recruited = design.scenario(rows, "planned")
+    plan = _analysable(design, recruited, _col(rows, "planned_dropout"))
+    real = design.scenario(rows, "realized")
+    replan = design.replanned(plan, real)
+    effect = mt.truth_effect
+    methods = hypotheses.size_methods(design, mt)
+    planned_total = design.total_size(recruited)
+    out: dict[str, np.ndarray] = {}
+    reproduction = None
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out["plan_power"] = hypotheses.power(design, plan, mt)
+        if methods is not None:
+            reproduction = plan_methods.reproduce(
+                design,
+                recruited,
+                effect,
+                one_sided,
+                planned_total,
+                _col(rows, "planned_dropout"),
+                plan_tolerance,
+                entry=methods,
+            )
+            out.update(reproduction.metrics)
+            again = plan_methods.reproduce(
+                design, replan, effect, one_sided, planned_total, np.full(n, np.nan),
+                plan_tolerance, entry=methods,
+            )  # fmt: skip
+            out["n_required_realized"] = again.metrics["n_required_plan"]
+            if design.name == "survival":
+                # Events of the default method, before they are turned into patients.
+                sizes = methods.methods[0].size(
+                    plan_methods.PlanInputs(design, plan, effect, one_sided)
+                )
+                out["events_required_plan"] = np.where(
+                    np.isfinite(sizes) & (sizes > 0), np.ceil(sizes * (1.0 - 1e-12)), np.nan
+                )
+        out["power_at_planned_effect"] = hypotheses.power(design, real, mt)
+        out["detectable_margin"] = hypotheses.detectable_margin(design, real, mt)
+        out["se_plan"] = design.se(plan, effect)
+        out["se_realized"] = design.se(real, effect)
+        out["precision_ratio"] = out["se_plan"] / out["se_realized"]
+        out["n_ratio"] = design.total_size(real) / design.total_size(plan)
+        for metric, (planned_col, realized_col) in design.ratio_keys.items():
+            out[metric] = _col(rows, realized_col) / _col(rows, planned_col)
+        out["power_if_planned_size"] = hypotheses.power(design, replan, mt)
+        out["power_cost_nuisance"] = _difference(out["plan_power"], out["power_if_planned_size"])
+        out["power_cost_attrition"] = _difference(
+            out["power_if_planned_size"], out["power_at_planned_effect"]
+        )
+        out["direction_used"] = np.where(
+            mt.equivalence, "either", direction_words(one_sided)
+        ).astype(object)
+        out["planned_effect_used"] = design.planned_effect(rows)
+        out["sesoi_used"] = np.full(n, np.nan)
+        control = design.to_analysis(_col(rows, "control_effect"))
+        out["margin_share_of_control_effect"] = np.where(
+            mt.equivalence | (control == 0), np.nan, mt.margin / np.abs(control)
+        )
+    for metric, reason in design.not_applicable.items():
+        out[metric] = (
+            np.full(n, None, dtype=object) if metric in TEXT_METRICS else np.full(n, np.nan)
+        )
+        notes.add(positions, f"{metric}: not applicable, {reason}")
+    foreign = [
+        m
+        for m in METRICS
+        if m not in out
+        and m not in RETRO_METRICS
+        and m not in PORTFOLIO_METRICS
+        and m not in MARGIN_NOT_APPLICABLE
+        and m not in design.not_applicable
+    ]
+    if foreign:
+        notes.add(positions, f"not applicable to {design.name}: {', '.join(foreign)}")
+
+    more: dict[str, list[tuple[np.ndarray, str | np.ndarray]]] = {}
+    if reproduction is not None:
+        more = _note_reproduction(notes, positions, rows, reproduction, planned_total)
+    beyond = (~mt.equivalence & (mt.better * mt.truth <= -mt.margin)) | (
+        mt.equivalence & (np.abs(mt.truth) >= mt.margin)
+    )
+    beyond_text = (
+        "the planned true difference lies at or beyond the margin, so no size reaches the "
+        "target power"
+    )
+    for metric in ("n_required_plan", "n_required_realized", "plan_discrepancy"):
+        more.setdefault(metric, [])
+        more[metric] = [(beyond, beyond_text), *more[metric]]
+    own_notes = ("planned_effect_used", "sesoi_used", "margin_share_of_control_effect")
+    shown = {m: v for m, v in out.items() if m not in own_notes}
+    _note_nulls(design, rows, positions, notes, shown, plan, real, effect, effect, one_sided, more)
+    _explain_nulls(
+        notes,
+        positions,
+        "planned_effect_used",
+        out["planned_effect_used"],
+        [],
+        [
+            (
+                np.ones(n, dtype=bool),
+                "no planned true difference given: the margin test is powered at no difference",
+            )
+        ],
+    )
+    control_given = np.isfinite(_col(rows, "control_effect"))
+    _explain_nulls(
+        notes,
+        positions,
+        "margin_share_of_control_effect",
+        out["margin_share_of_control_effect"],
+        [(~control_given, "control_effect")],
+        [
+            (mt.equivalence, "not applicable, an equivalence margin preserves no control effect"),
+            (np.ones(n, dtype=bool), "not defined, control_effect is no effect"),
+        ],
+    )
+    sesoi_given = np.isfinite(_col(rows, "sesoi"))
+    notes.add(
+        positions[sesoi_given],
+        "sesoi not used: a non-inferiority or equivalence test is judged against its margin",
+    )
+    notes.add(
+        positions[~sesoi_given],
+        "sesoi_used: not applicable, a non-inferiority or equivalence test is judged against "
+        "its margin",
+    )
+    flipped = design.is_ratio & (_col(rows, "margin") < 1.0)
+    notes.add(
+        positions[flipped],
+        "margin below 1 read as its reciprocal: ratio margins are given above 1 (margin "
+        + pd.Series(mt.margin_effect[flipped]).map(format_number).to_numpy(dtype=object)
+        + " used)",
+    )
+    equivalence_direction = mt.equivalence & np.isfinite(_directions(rows))
+    notes.add(
+        positions[equivalence_direction],
+        "direction not used: an equivalence test looks both ways",
+    )
+    if "power_at_pooled_effect" not in design.not_applicable:
+        out["power_at_pooled_effect"] = np.full(n, np.nan)
+        notes.add(
+            positions,
+            "power_at_pooled_effect: not applicable, the pooled estimate is a superiority "
+            "effect and this row tests a margin",
+        )
+    for x in reference_effects:
+        out[reference_column(x)] = np.full(n, np.nan)
+    if reference_effects:
+        notes.add(
+            positions,
+            "reference_power: not applicable, the reference effects are superiority effects and "
+            "this row tests a margin",
+        )
+
+    # The reported result, at level 1 - 2 alpha, against the margin.
+    used = rows.copy()
+    dropped = np.zeros(n, dtype=bool)
+    for column in MARGIN_UNUSED_RESULTS:
+        if column in used.columns:
+            dropped |= np.isfinite(_col(used, column))
+            used[column] = np.nan
+    notes.add(
+        positions[dropped],
+        "observed_p and observed_statistic not used: on a non-inferiority or equivalence row "
+        "they may test the margin or no difference; the interval (or estimate and SE) is read "
+        "against the margin",
+    )
+    part = _Notes()
+    res_out = _retro_metrics(
+        design, used, positions, part, out, one_sided, plan, real, effect, np.full(n, np.nan)
+    )
+    skip = (*MARGIN_NOT_APPLICABLE, "ci_verdict", "result_significant", "result_p")
+    for pos, text in zip(part.pos, part.text, strict=True):
+        keep = ~np.array(
+            [t.startswith(skip) or t.startswith("significant") or "disagree" in t for t in text],
+            dtype=bool,
+        )
+        notes.add(pos[keep], text[keep])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        low = design.to_analysis(res_out["result_ci_low"])
+        high = design.to_analysis(res_out["result_ci_high"])
+        estimate = design.to_analysis(res_out["result_effect"])
+    verdict = hypotheses.ci_verdicts(low, high, mt)
+    res_out["ci_verdict"] = verdict
+    shown_ok = np.isin(verdict.astype(str), ["non_inferior", "equivalent"])
+    res_out["result_significant"] = np.where(pd.isna(verdict), np.nan, shown_ok.astype(float))
+    res_out["result_p"] = hypotheses.margin_p(
+        estimate, res_out["result_se"], _finite_df(design.analysis_df(real)), mt
+    )
+    unknown = pd.isna(verdict)
+    notes.add(
+        positions[unknown],
+        "ci_verdict: not computed, no confidence interval (needs the effect with its SE or both "
+        "CI limits) to read against the margin",
+    )
+    notes.add(
+        positions[unknown],
+        "result_significant: not computed, needs a confidence interval to read against the margin",
+    )
+    notes.add(
+        positions[np.isnan(res_out["result_p"])],
+        "result_p: not computed, needs the effect with its SE or both CI limits",
+    )
+    for m in MARGIN_NOT_APPLICABLE:
+        value = res_out.get(m, out.get(m))
+        template = np.full(n, None, dtype=object) if m in TEXT_METRICS else np.full(n, np.nan)
+        if m in res_out:
+            res_out[m] = template
+        else:
+            out[m] = template
+        del value
+    words = np.where(mt.equivalence, "an equivalence", "a non-inferiority").astype(object)
+    notes.add(
+        positions,
+        "not applicable to "
+        + words
+        + " row (the margin replaces the effect to detect; see detectable_margin): "
+        + ", ".join(m for m in MARGIN_NOT_APPLICABLE),
+    )
+    out.update(res_out)
     return out
 
 

@@ -119,7 +119,7 @@ class PlanInputs:
     @functools.cached_property
     def z_alpha(self) -> np.ndarray:
         """Critical value of the z test: ``z(1 − alpha / sides)``."""
-        return special.ndtri(1.0 - self.test.alpha / self.test.sides)
+        return -special.ndtri(self.test.alpha / self.test.sides)
 
     @functools.cached_property
     def z_power(self) -> np.ndarray:
@@ -845,6 +845,7 @@ def reproduce(
     planned_total: np.ndarray,
     dropout: np.ndarray,
     tolerance: float | None = None,
+    entry: DesignMethods | None = None,
 ) -> Reproduction:
     """Required sizes by every method of ``design`` and the metrics of reproduction.
 
@@ -859,6 +860,9 @@ def reproduce(
     tolerance : float, optional
         Largest |discrepancy| that counts as reproduced; default: the bundled rule's
         ``max_discrepancy``.
+    entry : DesignMethods, optional
+        The methods to try; default: the design's registered ones (:func:`methods_for`).
+        Non-inferiority and equivalence rows pass their own (audit/hypotheses.py).
 
     Returns
     -------
@@ -877,7 +881,7 @@ def reproduce(
     fires above it, so the two cannot disagree).
     """
     tolerance = bundled_tolerance() if tolerance is None else float(tolerance)
-    entry = methods_for(design)
+    entry = methods_for(design) if entry is None else entry
     inputs = PlanInputs(design, plan, np.asarray(effect, dtype=float), test)
     k = len(inputs.effect)
     keep = np.where(np.isnan(dropout), 0.0, dropout)

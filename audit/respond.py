@@ -15,11 +15,13 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from audit import hypotheses
 from audit._format import format_number
 from audit.designs import Design, design_of
 from audit.designs.means import standardized_rows
 from audit.errors import ConfigError
 from audit.metrics import directed_mde, test_settings
+from audit.terminal import clean
 
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
@@ -36,6 +38,14 @@ REFERENCES = {
     "ed.). Lawrence Erlbaum.",
     "bloom": "Bloom, H. S. (1995). Minimum detectable effects: A simple way to report the "
     "statistical power of experimental designs. *Evaluation Review*, 19(5), 547–556.",
+    "blackwelder": 'Blackwelder, W. C. (1982). "Proving the null hypothesis" in clinical '
+    "trials. *Controlled Clinical Trials*, 3(4), 345–353.",
+    "schuirmann": "Schuirmann, D. J. (1987). A comparison of the two one-sided tests procedure "
+    "and the power approach for assessing the equivalence of average bioavailability. *Journal "
+    "of Pharmacokinetics and Biopharmaceutics*, 15(6), 657–680.",
+    "piaggio": "Piaggio, G., Elbourne, D. R., Pocock, S. J., Evans, S. J. W., & Altman, D. G. "
+    "(2012). Reporting of noninferiority and equivalence randomized trials: Extension of the "
+    "CONSORT 2010 statement. *JAMA*, 308(24), 2594–2604.",
 }
 
 
@@ -260,6 +270,11 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
     if isinstance(title, str) and title:
         heading += f" ({title})"
 
+    hypothesis = row.get("hypothesis")
+    if hypothesis in ("non_inferiority", "equivalence"):
+        paragraphs = _margin_paragraphs(result, pos, design, str(hypothesis), units, refs)
+        return _assemble(heading, paragraphs, refs, row)
+
     # -- the plan -------------------------------------------------------------------------
     planned = design.planned_effect(result.table.iloc[[pos]])[0]
     plan_bits = []
@@ -397,6 +412,11 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
             )
         paragraphs.append(" ".join(bits))
 
+    return _assemble(heading, paragraphs, refs, row)
+
+
+def _assemble(heading: str, paragraphs: list[str], refs: list[str], row) -> str:  # type: ignore[no-untyped-def]
+    """The draft: the paragraphs, why observed power is left out, the references."""
     # -- observed power -------------------------------------------------------------------
     obs = (
         "**Why observed power is not reported.** Power calculated from the observed effect is "
@@ -423,4 +443,122 @@ def respond_text(result: AuditResult, study_id: str, effect: float | None = None
         "against the analysis actually reported. It supports, and does not replace, the "
         "judgment of a qualified statistician._"
     )
-    return "\n".join(out) + "\n"
+    # The draft is shown in a terminal or pasted into a letter: no user value in it carries an
+    # escape sequence or a control character (audit.terminal).
+    return clean("\n".join(out)) + "\n"
+
+
+def _margin_paragraphs(
+    result: AuditResult, pos: int, design: Design, hypothesis: str, units: str, refs: list[str]
+) -> list[str]:
+    """The plan, the sensitivity and the result of a non-inferiority or equivalence trial,
+    read against its margin (DESIGN.md 9.1)."""
+    row = result.table.iloc[pos]
+    m = result.metrics.iloc[pos]
+    rows = result.table.iloc[[pos]]
+    test = test_settings(rows, design)
+    mt = hypotheses.margin_test(design, rows, test)
+    alpha, target = float(mt.alpha[0]), float(row["target_power"])
+    margin_a, better = float(mt.margin[0]), float(mt.better[0])
+    margin = float(mt.margin_effect[0])
+    noun = design.noun or EFFECT_NOUNS.get(design.name, "effect")
+    ni = hypothesis == "non_inferiority"
+    refs.insert(0, "blackwelder" if ni else "schuirmann")
+    refs.append("piaggio")
+    level = 1.0 - 2.0 * alpha
+    planned = float(design.planned_effect(rows)[0])
+    truth = (
+        f"a true {noun} of {_num(planned)}"
+        if math.isfinite(planned)
+        else "no true difference between the groups"
+    )
+    # The margin's boundaries in effect units (for ratios: the ratio and its reciprocal).
+    worse_bound = float(design.from_analysis(np.array([-better * margin_a]))[0])
+    low_bound = float(design.from_analysis(np.array([-margin_a]))[0])
+    high_bound = float(design.from_analysis(np.array([margin_a]))[0])
+    paragraphs = []
+    if ni:
+        side = "lower" if better > 0 else "upper"
+        plan = (
+            f"The study was planned as a non-inferiority trial: to show that the intervention is "
+            f"not worse than the control by more than a margin of {_num(margin)} (on the "
+            f"{noun} scale, a {side} limit beyond {_num(worse_bound)}), by a one-sided test at "
+            f"α = {format_number(alpha)} (equivalently, the {side} limit of the "
+            f"{level:.0%} confidence interval), with {target:.0%} power assuming {truth}."
+        )
+    else:
+        plan = (
+            f"The study was planned as an equivalence trial: to show that the {noun} lies "
+            f"within ±{_num(margin)} (from {_num(low_bound)} to {_num(high_bound)}) by two "
+            f"one-sided tests, each at α = {format_number(alpha)} (equivalently, the "
+            f"{level:.0%} confidence interval lying inside that range), with {target:.0%} power "
+            f"assuming {truth}."
+        )
+    bits = [plan, *_reproduction_sentences(m, row, units)]
+    ratio = m.get("n_ratio", np.nan)
+    if math.isfinite(ratio):
+        bits.append(f"The analysed sample was {ratio:.0%} of the planned size.")
+    paragraphs.append(" ".join(bits))
+
+    sens = []
+    p_real = m.get("power_at_planned_effect", np.nan)
+    shown = "non-inferiority" if ni else "equivalence"
+    if math.isfinite(p_real):
+        sens.append(
+            f"**Sensitivity analysis.** With the realized sample size and variability, the "
+            f"design-based power to show {shown} at the margin of {_num(margin)} was "
+            f"{_power(p_real)} (assuming {truth})."
+        )
+    dm = m.get("detectable_margin", np.nan)
+    if math.isfinite(dm):
+        sens.append(
+            f"The smallest margin the realized design could demonstrate with {target:.0%} power "
+            f"was {_num(dm)}."
+        )
+    sens.append(
+        "Power for a superiority test is not the relevant quantity for this design: under no "
+        "true difference it equals α by construction."
+    )
+    paragraphs.append(" ".join(sens))
+
+    verdict = m.get("ci_verdict")
+    low, high = m.get("result_ci_low", np.nan), m.get("result_ci_high", np.nan)
+    estimate = m.get("result_effect", np.nan)
+    if isinstance(verdict, str) and math.isfinite(low) and math.isfinite(high):
+        places = _decimals(
+            (high - low) / 2
+            if not design.is_ratio
+            else min(abs(high - estimate), abs(estimate - low))
+        )
+        interval = (
+            f"**What the result shows against the margin.** The estimate was "
+            f"{_fixed(estimate, places)} ({m['result_ci_level'] * 100:g}% CI "
+            f"{_fixed(low, places)} to {_fixed(high, places)})."
+        )
+        limit = low if better > 0 else high
+        side = "lower" if better > 0 else "upper"
+        where = "above" if better > 0 else "below"
+        beyond = "below" if better > 0 else "above"
+        texts = {
+            "non_inferior": f"The {side} limit ({_fixed(limit, places)}) lies {where} the margin "
+            f"({_num(worse_bound)}): non-inferiority is shown at a one-sided "
+            f"α = {format_number(alpha)}.",
+            "inferior": f"The whole interval lies {beyond} the margin ({_num(worse_bound)}): "
+            "the intervention is worse than the control by more than the margin.",
+            "equivalent": f"The whole interval lies within the equivalence range "
+            f"({_num(low_bound)} to {_num(high_bound)}): equivalence is shown by two one-sided "
+            f"tests at α = {format_number(alpha)}.",
+            "not_equivalent": f"The whole interval lies outside the equivalence range "
+            f"({_num(low_bound)} to {_num(high_bound)}): the groups differ by more than the "
+            "margin.",
+        }
+        inconclusive = (
+            f"The interval includes the margin ({_num(worse_bound)}): the trial neither shows "
+            "non-inferiority nor rules it out, and a non-significant test of difference would "
+            "not show similarity."
+            if ni
+            else f"The interval crosses the edge of the equivalence range ({_num(low_bound)} to "
+            f"{_num(high_bound)}): the trial neither shows equivalence nor rules it out."
+        )
+        paragraphs.append(interval + " " + texts.get(str(verdict), inconclusive))
+    return paragraphs

@@ -100,6 +100,10 @@ TEXT_COLUMNS = frozenset(
 _ID = re.compile(r"^[a-z][a-z0-9]*(?:-[a-z0-9]+)+$")
 _NAME = re.compile(r"^[a-z][a-z0-9_]*$")
 _FIELD = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)(?::([^{}]*))?\}")
+#: Largest width or precision a message field may ask for (``{n_ratio:>12.3f}``): a message
+#: is a sentence, and ``{n_ratio:>2000000000}`` would write two gigabytes per finding.
+MAX_FORMAT_WIDTH = 100
+_SPEC_NUMBER = re.compile(r"\d+")
 _NUMERIC_OPS = {"below": "<", "at_most": "≤", "above": ">", "at_least": "≥"}
 _RULE_KEYS = {
     "id": "kebab-case identifier that says what the rule flags",
@@ -884,6 +888,11 @@ def parse_rule(spec: Any, source: str) -> Rule:
             parser.column(name)
         own = name not in parser.columns and name not in parameters
         sample: Any = "text" if name in TEXT_COLUMNS or (own and not fmt) else 0.5
+        if any(len(n) > 3 or int(n) > MAX_FORMAT_WIDTH for n in _SPEC_NUMBER.findall(fmt or "")):
+            raise ConfigError(
+                f"{where}: bad format '{{{name}:{fmt[:40]}}}' in the message: a width or "
+                f"precision above {MAX_FORMAT_WIDTH} (a message is one sentence)."
+            )
         try:
             format(sample, fmt or "")
         except ValueError as exc:

@@ -128,6 +128,31 @@ COLUMNS: tuple[Column, ...] = (
         "none (a one-sided test then needs it).",
         choices=("increase", "decrease"),
     ),
+    Column(
+        "hypothesis",
+        "choice",
+        "test",
+        "What the study set out to show: 'superiority' (a difference), 'non_inferiority' (not "
+        "worse than the margin; a one-sided test at alpha, so sides 1 or blank) or "
+        "'equivalence' (within the margin both ways: two one-sided tests, each at alpha).",
+        default="superiority",
+        choices=("superiority", "non_inferiority", "equivalence"),
+    ),
+    Column(
+        "margin",
+        "number",
+        "effects",
+        "Non-inferiority or equivalence margin: a positive magnitude in effect units (d where "
+        "effects are standardized; ratios on the ratio scale, e.g. 1.25 for a hazard ratio, a "
+        "value below 1 read as its reciprocal). Required unless hypothesis is superiority.",
+    ),
+    Column(
+        "control_effect",
+        "number",
+        "effects",
+        "Non-inferiority: the active control's effect against placebo (from earlier trials), in "
+        "effect units (ratios on the ratio scale); the margin should preserve part of it.",
+    ),
     Column("planned_effect", "number", "effects", "Effect the study was powered for."),
     _p("planned_p1", "effects", "Planned control-group proportion."),
     _p("planned_p2", "effects", "Planned intervention-group proportion."),

@@ -542,6 +542,67 @@ def _portfolio_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styl
     ws.autofilter(0, 0, max(len(items), 1), 1)
 
 
+#: The ``groups`` sheet: one line per (column, value) of ``--group-by``, from result.groups.
+_GROUP_HEADER = [
+    "column",
+    "value",
+    "studies",
+    "audited",
+    "invalid",
+    "studies_with_power",
+    "median_power_at_planned_effect",
+    "share_at_target_power",
+    "worst_serious",
+    "worst_warning",
+    "worst_note",
+    "worst_none",
+    "excess_observed",
+    "excess_expected",
+    "excess_p_value",
+    "excess_note",
+]
+
+
+def _groups_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
+    """The portfolio summary per value of each --group-by column (numbers stored as numbers)."""
+    ws = wb.add_worksheet("groups")
+    ws.freeze_panes(1, 0)
+    ws.set_column(0, 1, 24)
+    ws.set_column(2, len(_GROUP_HEADER) - 2, 12)
+    ws.set_column(len(_GROUP_HEADER) - 1, len(_GROUP_HEADER) - 1, 60)
+    _header(ws, _GROUP_HEADER, 0, styles)
+    headers = dict(zip(result.groups, result.settings.get("group_by", []), strict=False))
+    r = 0
+    for column, groups in result.groups.items():
+        for value, g in groups.items():
+            r += 1
+            worst = g["studies_by_worst_finding"]
+            excess = g.get("excess_significance") or {}
+            cells = [
+                g["studies"],
+                g["audited"],
+                g["invalid"],
+                g["studies_with_power"],
+                g["median_power_at_planned_effect"],
+                g["share_at_target_power"],
+                worst["serious"],
+                worst["warning"],
+                worst["note"],
+                worst["none"],
+                excess.get("observed"),
+                excess.get("expected"),
+                excess.get("p_value"),
+            ]
+            _write_text(ws, r, 0, str(headers.get(column, column)), styles)
+            _write_text(ws, r, 1, str(value), styles)
+            for j, v in enumerate(cells, start=2):
+                _write_value(ws, r, j, v, styles)
+            note = g.get("excess_significance_note")
+            if note:
+                _write_text(ws, r, len(_GROUP_HEADER) - 1, note, styles)
+    ws.autofilter(0, 0, max(r, 1), len(_GROUP_HEADER) - 1)
+
+
 def _rule_rows(result: AuditResult) -> list[list[str]]:
     rows = []
     for rule in getattr(result, "rules", []) or []:
@@ -721,6 +782,8 @@ class WorkbookExport:
         self._summary.finish()
         self._audit.finish()
         _portfolio_sheet(self._wb, result, self._styles)
+        if result.groups:
+            _groups_sheet(self._wb, result, self._styles)
         _rules_sheet(self._wb, result, self._styles)
         _invalid_sheet(self._wb, result, self._styles)
         _readme_sheet(self._wb, result, self._styles)

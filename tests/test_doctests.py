@@ -9,14 +9,17 @@ import pytest
 
 MODULES = [
     "audit.designs._binary",
+    "audit.designs._margin",
     "audit.designs._power",
     "audit.designs.cluster",
     "audit.designs.correlation",
     "audit.designs.proportions",
     "audit.designs.survival",
     "audit.designs.variance",
+    "audit.hypotheses",
     "audit.numbers",
     "audit.pipeline",
+    "audit.portfolio",
 ]
 
 

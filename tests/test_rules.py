@@ -227,6 +227,11 @@ def _rule_text(**changes) -> str:
         ({"when": '{ column = "mde", blank = true, factor = 2 }'}, "unexpected factor"),
         ({"when": '{ column = "2nd arm", below = 0.5 }'}, "usable name for a column"),
         ({"message": '"power {mde:.2q}"'}, "bad format"),
+        # A width or precision past MAX_FORMAT_WIDTH is refused before anything is formatted
+        # (format(0.5, ">2000000000") alone would take two gigabytes).
+        ({"message": '"power {mde:>2000000000}"'}, "a width or precision above 100"),
+        ({"message": '"power {mde:.101f}"'}, "a width or precision above 100"),
+        ({"message": '"power {mde:' + "9" * 5000 + '}"'}, "a width or precision above 100"),
         ({"message": '"power {mde"'}, "brace"),
         ({"colour": '"red"'}, "unknown key colour"),
         ({"supersedes": '["no-such-rule"]'}, "supersedes unknown rule"),
@@ -338,6 +343,7 @@ def test_rules_wait_for_metrics_and_activate_when_they_exist():
     absent = result.metrics.drop(columns=["ci_verdict", "exaggeration", "observed_power"])
     waiting = evaluate_rules(load_rules(), result.table, absent, result.valid)
     assert waiting.waiting == {
+        "margin-result-inconclusive": ["ci_verdict"],
         "null-result-inconclusive": ["ci_verdict"],
         "observed-power-reported": ["observed_power"],
         "significant-result-likely-exaggerated": ["ci_verdict", "exaggeration"],
@@ -449,6 +455,7 @@ def test_evaluation_is_vectorised_over_many_rows():
         {
             "study_id": np.arange(n).astype(str).astype(object),
             "design": np.full(n, "two_means", dtype=object),
+            "hypothesis": np.full(n, "superiority", dtype=object),
             "target_power": np.full(n, 0.8),
             "planned_n1": np.full(n, 64.0),
             "planned_events": np.full(n, np.nan),

@@ -116,6 +116,9 @@ COMMON_INPUTS = frozenset(
         "target_power",
         "comparisons",
         "direction",
+        "hypothesis",
+        "margin",
+        "control_effect",
         "sesoi",
         "observed_effect",
         "observed_se",
@@ -147,6 +150,18 @@ def _directions(rows: pd.DataFrame) -> np.ndarray:
         return np.full(len(rows), np.nan)
     text = rows["direction"].to_numpy(dtype=object)
     return np.array([DIRECTIONS.get(v, np.nan) for v in text], dtype=float)
+
+
+def _hypotheses(rows: pd.DataFrame) -> np.ndarray:
+    """The ``hypothesis`` column as text; superiority where absent or blank."""
+    if "hypothesis" not in rows.columns:
+        return np.full(len(rows), "superiority", dtype=object)
+    values = rows["hypothesis"].to_numpy(dtype=object)
+    return np.where(pd.isna(values), "superiority", values)
+
+
+def _margin_rows(rows: pd.DataFrame) -> np.ndarray:
+    return np.isin(_hypotheses(rows), ("non_inferiority", "equivalence"))
 
 
 def allocation_ratio(sc: Scenario) -> np.ndarray:
@@ -247,6 +262,18 @@ class Design:
             if mask.any():
                 out.append((self.with_measure(measure), mask))
         return out
+
+    #: True where the design audits non-inferiority and equivalence rows (a signed effect on an
+    #: analysis scale with an SE that does not depend on the null hypothesis' boundary; see
+    #: audit/hypotheses.py). Other designs reject such rows (validation names the column).
+    margin_tests: ClassVar[bool] = False
+
+    def margin_support(self) -> str | None:
+        """None where this variant audits margin hypotheses; else why not (for the error)."""
+        if not self.margin_tests:
+            return f"{self.name} has no non-inferiority or equivalence test yet"
+        return None
+
     #: Kinds of reported test statistic (``statistic_type``) the design reads.
     statistic_types: ClassVar[frozenset[str]] = frozenset({"t", "z", "f", "chi2"})
     #: True where the standard error on the analysis scale follows from the sizes alone (Fisher's
@@ -323,12 +350,15 @@ class Design:
         own :meth:`row_checks`. (Validation adds the checks of a reported test statistic and
         of the columns the design would ignore to a wrong result: audit.reported,
         audit.inputs.)"""
-        out = []
+        out = self._margin_checks(rows)
+        # On a non-inferiority row the planned true difference may lie on the worse side of no
+        # effect (a slightly worse new treatment), and the direction says which way is better.
+        margin = _margin_rows(rows)
         if self.has_direction and "direction" in rows.columns:
             given = _directions(rows)
             sign = self.effect_sign(self.planned_effect(rows))
             word = np.where(sign > 0, "an increase", "a decrease")
-            opposite = np.isfinite(given) & (given * sign < 0)
+            opposite = np.isfinite(given) & (given * sign < 0) & ~margin
             if opposite.any():
                 reason = np.full(len(rows), "", dtype=object)
                 reason[opposite] = (
@@ -344,7 +374,7 @@ class Design:
             )
             out.append(
                 (
-                    (sides == 1) & unknown,
+                    (sides == 1) & unknown & ~margin,
                     "sides",
                     "a one-sided test needs a direction: fill direction (increase or decrease) "
                     "or a signed planned effect",
@@ -356,6 +386,93 @@ class Design:
     def row_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
         """Design-specific row checks: ``(bad_mask, column, reason)`` triples."""
         return []
+
+    def _margin_checks(self, rows: pd.DataFrame) -> list[tuple[np.ndarray, str, str]]:
+        """Checks of non-inferiority and equivalence rows: a design that can test them, a
+        margin, a one-sided level and (non-inferiority) which way is better."""
+        hypothesis = _hypotheses(rows)
+        ni = hypothesis == "non_inferiority"
+        eq = hypothesis == "equivalence"
+        margin_rows = ni | eq
+        if not margin_rows.any():
+            return []
+        out: list[tuple[np.ndarray, str, str]] = []
+        why = self.margin_support()
+        if why is not None:
+            out.append(
+                (margin_rows, "hypothesis", why + "; audit it as superiority or leave it out")
+            )
+            return out
+        margin = _column(rows, "margin")
+        out.append(
+            (
+                ni & np.isnan(margin),
+                "margin",
+                "blank: a non-inferiority row needs its margin (a positive magnitude in effect "
+                "units, e.g. 0.1 for ten percentage points)",
+            )
+        )
+        out.append(
+            (
+                eq & np.isnan(margin),
+                "margin",
+                "blank: an equivalence row needs its margin (a positive magnitude in effect "
+                "units; the equivalence range is -margin to +margin)",
+            )
+        )
+        out.append(
+            (
+                margin_rows & (margin <= 0) & ~(self.is_ratio & (margin == 0)),
+                "margin",
+                "must be a positive magnitude in effect units (the audit puts it on the worse "
+                "side itself): give it without a sign",
+            )
+        )
+        if self.is_ratio:
+            out.append(
+                (
+                    margin_rows & (margin == 0),
+                    "margin",
+                    "a ratio margin must be above 0 (given above 1, e.g. 1.25)",
+                )
+            )
+            out.append(
+                (
+                    margin_rows & (margin == 1.0),
+                    "margin",
+                    "a ratio margin of 1 is no margin: give it above 1 (e.g. 1.25)",
+                )
+            )
+        sides = _column(rows, "sides")
+        out.append(
+            (
+                ni & (sides == 2),
+                "sides",
+                "a non-inferiority test is one-sided: give sides 1 (or blank) and its one-sided "
+                "alpha (a 95% interval goes with a one-sided 0.025)",
+            )
+        )
+        out.append(
+            (
+                eq & (sides == 2),
+                "sides",
+                "an equivalence test is two one-sided tests, each at alpha: give sides 1 (or "
+                "blank) and alpha per test (a 90% interval goes with alpha 0.05)",
+            )
+        )
+        if self.has_direction:
+            unknown = ~np.isfinite(_directions(rows)) & (
+                self.effect_sign(self.planned_effect(rows)) == 0
+            )
+            out.append(
+                (
+                    ni & unknown,
+                    "direction",
+                    "blank: a non-inferiority row must say which way is better (increase or "
+                    "decrease), or give a signed planned effect",
+                )
+            )
+        return out
 
     def orient(self, value: np.ndarray, direction: np.ndarray) -> np.ndarray:
         """An effect given as a magnitude (the SESOI), pointed in the planned direction."""
@@ -570,7 +687,7 @@ class TDesign(Design):
         with np.errstate(divide="ignore", invalid="ignore"):
             # SE at n1 = 1 scales as 1 / sqrt(n1): the normal approximation sizes the start.
             se1 = self.se(unit)
-            z = special.ndtri(1.0 - test.alpha / test.sides) + special.ndtri(test.power)
+            z = -special.ndtri(test.alpha / test.sides) + special.ndtri(test.power)
             guess = (z * se1 / np.abs(effect)) ** 2
             # One refinement with the t distribution at the df of that first guess (normal
             # approximation to the noncentral t, Abramowitz & Stegun 26.7.10): the bracket

@@ -66,6 +66,7 @@ class ClusterTwoMeans(_TwoGroups):
     smaller realized cluster size counts as missing units (attrition).
     """
 
+    margin_tests = True
     name = "cluster_two_means"
     family = "cluster"
     title = "two arms of clusters, difference in means (t test on cluster df)"

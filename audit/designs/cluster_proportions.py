@@ -112,6 +112,11 @@ class ClusterTwoProportions(TwoProportions):
     The continuity correction is not offered (it is not defined for the design-effect test).
     """
 
+    margin_tests = False
+
+    def margin_support(self) -> str | None:
+        return f"{self.name} has no non-inferiority or equivalence test yet"
+
     name = "cluster_two_proportions"
     family = "cluster"
     title = "two arms of clusters, proportions (design effect, t on cluster df)"
@@ -270,7 +275,7 @@ class ClusterTwoProportions(TwoProportions):
         )
         e1, e2 = self._effective(sc)
         with np.errstate(divide="ignore", invalid="ignore"):
-            z = special.ndtri(1.0 - test.alpha[ok] / test.sides[ok]) + special.ndtri(test.power[ok])
+            z = -special.ndtri(test.alpha[ok] / test.sides[ok]) + special.ndtri(test.power[ok])
             guess = z * np.sqrt(p1[ok] * (1.0 - p1[ok]) * (1.0 / e1[ok] + 1.0 / e2[ok]))
         guess = np.clip(guess, 1e-6, 0.5 * room[ok])
         magnitude = solve_increasing(

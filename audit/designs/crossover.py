@@ -50,6 +50,7 @@ def period_difference_sd(sd: np.ndarray, correlation: np.ndarray) -> np.ndarray:
 class Crossover(_OneGroup):
     """2×2 crossover: ``se = σ_d / √n``, t on ``n − 2`` df, ``n`` subjects in two sequences."""
 
+    margin_tests = True
     name = "crossover"
     family = "means"
     title = "2x2 crossover (AB/BA; t test on period differences, n - 2 df)"

@@ -29,6 +29,7 @@ class Estimate(Design):
     SE (Bloom's 2.80 for a two-sided test at alpha .05 and power .80 with large df [1]_).
     """
 
+    margin_tests = True
     name = "estimate"
     family = "estimate"
     title = "effect estimate with a known standard error"

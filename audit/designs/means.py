@@ -157,6 +157,7 @@ class OneMean(_OneGroup):
     ``se = sd / sqrt(n)``, ``df = n - 1``; the effect is the difference from the null value.
     """
 
+    margin_tests = True
     name = "one_mean"
     family = "means"
     title = "one mean against a fixed value (one-sample t test)"
@@ -173,6 +174,7 @@ class PairedMeans(_OneGroup):
     ``n`` counts pairs; ``df = n - 1``.
     """
 
+    margin_tests = True
     name = "paired_means"
     family = "means"
     title = "paired means (t test on within-pair differences)"
@@ -259,6 +261,7 @@ class TwoMeans(_TwoGroups):
     the pooled two-sample t test [1]_. The standardized effect divides by the unadjusted SD.
     """
 
+    margin_tests = True
     name = "two_means"
     family = "means"
     title = "two independent means (t test, optional covariate adjustment)"

@@ -68,6 +68,7 @@ class Survival(Design):
     realized event share give the events the plan would have had.
     """
 
+    margin_tests = True
     name = "survival"
     family = "survival"
     title = "two groups, time to event (hazard ratio, Schoenfeld)"
