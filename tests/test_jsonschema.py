@@ -113,6 +113,17 @@ BREAKS = {
 }
 
 
+def test_group_by_summaries_validate_and_can_fail(schema, tmp_path):
+    out = tmp_path / "g.json"
+    assert main(["check", str(DEMO), "--quiet", "--group-by", "design", "--json", str(out)]) == 0
+    doc = json.loads(out.read_text("utf-8"))
+    assert doc["groups"]["design"]
+    assert _errors(schema, doc) == []
+    first = next(iter(doc["groups"]["design"].values()))
+    first["audited"] = "four"
+    assert _errors(schema, doc)
+
+
 @pytest.mark.parametrize("name", list(BREAKS))
 def test_a_broken_document_fails_validation(schema, document, name):
     assert _errors(schema, _broken(document, BREAKS[name])), name
