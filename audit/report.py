@@ -10,7 +10,7 @@ then at most ``limit`` studies and invalid rows listed, most severe first.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING
 
@@ -704,9 +704,10 @@ def _render_flagged(view: Overview, console: Console) -> None:
     shown = len(view.flagged)
     title = f"Studies with findings ({view.flagged_total:,}), most severe first"
     _section(console, title)
+    widths = _flagged_widths(view.flagged, console.width)
     if not view.flagged:
         console.print(" none")
-    elif console.width < NARROW:
+    elif console.width < NARROW or widths is None:
         _render_flagged_stacked(view.flagged, console)
     else:
         table = Table(
@@ -715,9 +716,13 @@ def _render_flagged(view: Overview, console: Console) -> None:
             pad_edge=False,
             expand=True,
         )
-        table.add_column("study", no_wrap=True, ratio=1, min_width=12)
-        table.add_column("key numbers", ratio=2, min_width=12)
-        table.add_column("findings", ratio=5, min_width=20)
+        # Widths set here, not by ratios (rich's ratios override minimum widths): each column
+        # holds its longest unbreakable piece (a design name, a number with its unit), so that
+        # nothing is cut to an ellipsis or split.
+        study_w, keys_w, findings_w = widths
+        table.add_column("study", no_wrap=True, width=study_w)
+        table.add_column("key numbers", width=keys_w, overflow="fold")
+        table.add_column("findings", width=findings_w, overflow="fold")
         for entry in view.flagged:
             study = Text(entry.study_id, style="audit.rule_id")
             study.append(f"\nrow {entry.row}\n{entry.design}", style="audit.muted")
@@ -748,6 +753,33 @@ def _render_flagged(view: Overview, console: Console) -> None:
             f" No findings for {_plural(view.clean_total, 'audited study', 'audited studies')}: "
             f"{', '.join(view.clean_ids)}{more}."
         )
+
+
+#: Borders and padding of the three-column findings table: four rules and a space on each
+#: inner side of a rule (the outer edges have no padding).
+_FLAGGED_CHROME = 4 + 4
+
+
+def _longest_word(texts: Iterable[str]) -> int:
+    return max((len(word) for text in texts for word in text.split()), default=0)
+
+
+def _flagged_widths(entries: list[StudyEntry], width: int) -> tuple[int, int, int] | None:
+    """Content widths of the findings table's columns at a terminal ``width`` that cut
+    nothing — the study column holds each id, row and design name whole, the others their
+    longest word — the room left shared 2:5; None where the table cannot give that."""
+    study = max(
+        (len(t) for e in entries for t in (e.study_id, f"row {e.row}", e.design)), default=0
+    )
+    keys = max(_longest_word(t for e in entries for t in e.key_numbers), 12)
+    texts = (t for e in entries for sev, rule, msg in e.findings for t in (f"{sev} {rule}", msg))
+    findings = max(_longest_word(texts), 20)
+    study = max(study, 8)
+    rest = width - _FLAGGED_CHROME - study
+    if rest < keys + findings:
+        return None
+    keys = max(keys, min(rest - findings, round(rest * 2 / 7)))
+    return study, keys, rest - keys
 
 
 def _render_flagged_stacked(entries: list[StudyEntry], console: Console) -> None:
