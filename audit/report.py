@@ -807,7 +807,7 @@ def _render_invalid(view: Overview, console: Console) -> None:
     table = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
     table.add_column("row", justify="right", no_wrap=True)
     table.add_column("study", no_wrap=True)
-    table.add_column("why")
+    table.add_column("why", overflow="fold")
     for row, study_id, reasons in view.invalid_rows:
         table.add_row(
             str(row),
@@ -1145,7 +1145,7 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
         # Long texts (a method's name, reported_p_recomputed_from) wrap within the column
         # rather than squeeze the meanings.
         metrics.add_column("value", justify="right", max_width=24, overflow="fold")
-        metrics.add_column("meaning")
+        metrics.add_column("meaning", overflow="fold")
         not_applicable = _not_applicable(result, pos)
         for name in result.metrics.columns:
             value = result.metrics[name].iat[pos]
@@ -1231,7 +1231,7 @@ def render_rules(ruleset: RuleSet, console: Console) -> None:
     table = Table(box=None, padding=(0, 2), pad_edge=False, header_style="audit.label")
     table.add_column("rule", no_wrap=True, style="audit.rule_id")
     table.add_column("severity", no_wrap=True)
-    table.add_column("flags a study when")
+    table.add_column("flags a study when", overflow="fold")
     for rule in map(_safe_rule, ruleset.rules.values()):
         state = _rule_state(rule)
         what = Text(rule.title)
@@ -1269,7 +1269,7 @@ def render_rule(rule: Rule, console: Console) -> None:
         params.add_column("name", no_wrap=True)
         params.add_column("value", justify="right", no_wrap=True)
         params.add_column("allowed", no_wrap=True)
-        params.add_column("meaning")
+        params.add_column("meaning", overflow="fold")
         for p in rule.parameters.values():
             params.add_row(
                 p.name, format_number(p.value), f"{p.low:g} – {p.high:g}", Text(clean(p.meaning))

@@ -74,3 +74,15 @@ def test_a_long_design_name_and_id_stay_whole_at_80_columns():
     assert "…" not in text
     assert "a-very-long-study-identifier-of-forty-chars" in text
     assert "cluster_two_proportions" in text
+
+
+def test_study_view_at_80_columns_cuts_no_word(demo):
+    # A long name in a meaning column (a rule id, a metric) is folded, never cut to "…".
+    from audit.report import render_study
+
+    buf = io.StringIO()
+    console = Console(file=buf, width=80, color_system=None, theme=THEME, highlight=False)
+    render_study(demo, console, list(range(len(demo.table))))
+    text = buf.getvalue()
+    assert "…" not in text
+    assert "sample-size-not-reproducible" in text.replace("\n", "").replace(" ", "")
