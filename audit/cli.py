@@ -10,7 +10,7 @@ Exit status (DESIGN.md section 7):
 
 Conventions: ``check -`` reads the portfolio from standard input (CSV text or an .xlsx
 workbook); ``-`` as an export's file sends it to standard output, for at most one export
-(JSON or CSV: a workbook or figures cannot go there), and the report then goes to standard
+(JSON, CSV or HTML: a workbook or figures cannot go there), and the report then goes to standard
 error; ``study-audit`` alone prints the help.
 """
 
@@ -67,7 +67,7 @@ _CHECK_EPILOG = f"""examples:
   study-audit check studies.xlsx --rules exempt-pilots.toml
 
 FILE is .xlsx, .csv or .tsv ('-' reads standard input). At most one export may be '-'
-(standard output): --json or --csv; --xlsx and --plots need a file or folder.
+(standard output): --json, --csv or --html; --xlsx and --plots need a file or folder.
 
 {_EXIT_CODES}"""
 
@@ -521,7 +521,7 @@ def check_stdout(run: CheckRun) -> None:
 
 def _stdout_exports(run: CheckRun) -> list[tuple[str, str | None]]:
     """The exports that may go to standard output, by option."""
-    return [("--json", run.json_out), ("--csv", run.csv_out)]
+    return [("--json", run.json_out), ("--csv", run.csv_out), ("--html", run.html_out)]
 
 
 @contextlib.contextmanager

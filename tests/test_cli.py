@@ -336,6 +336,7 @@ def test_unusable_standard_input_names_standard_input_not_a_temporary_file(monke
     "options,expected",
     [
         (["--json", "-", "--csv", "-"], "--json and --csv both ask for standard output"),
+        (["--csv", "-", "--html", "-"], "--csv and --html both ask for standard output"),
         (["--xlsx", "-"], "--xlsx - is refused"),
         (["--plots", "-"], "--plots - is refused"),
     ],
