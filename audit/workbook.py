@@ -593,13 +593,19 @@ def _groups_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles)
                 excess.get("expected"),
                 excess.get("p_value"),
             ]
+            note = g.get("excess_significance_note")
+            height = row_heights([([note or ""], 60)], 1)[0]
+            if height is not None:
+                ws.set_row(r, height)  # the whole note shown, not cut at the column's edge
             _write_text(ws, r, 0, str(headers.get(column, column)), styles)
             _write_text(ws, r, 1, str(value), styles)
             for j, v in enumerate(cells, start=2):
-                _write_value(ws, r, j, v, styles)
-            note = g.get("excess_significance_note")
+                if isinstance(v, float) and j in (6, 7, 14):  # power, share, p-value
+                    ws.write_number(r, j, v, styles.number("0.000"))
+                else:
+                    _write_value(ws, r, j, v, styles)
             if note:
-                _write_text(ws, r, len(_GROUP_HEADER) - 1, note, styles)
+                _write_text(ws, r, len(_GROUP_HEADER) - 1, note, styles, styles.wrap)
     ws.autofilter(0, 0, max(r, 1), len(_GROUP_HEADER) - 1)
 
 

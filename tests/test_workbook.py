@@ -231,3 +231,22 @@ def test_libreoffice_opens_the_workbook_as_written(book_path, demo, tmp_path):
         for r, dim in mine.row_dimensions.items():
             if dim.height:
                 assert ws.row_dimensions[r].height == pytest.approx(dim.height, abs=1)
+
+
+def test_groups_sheet_is_laid_out_like_the_others(tmp_path):
+    from audit.cli import main
+
+    out = tmp_path / "g.xlsx"
+    assert main(["check", str(DEMO), "--quiet", "--group-by", "design", "--xlsx", str(out)]) == 0
+    book = load_workbook(out)
+    assert book.sheetnames[:2] == ["summary", "audit"] and "groups" in book.sheetnames
+    ws = book["groups"]
+    assert ws.freeze_panes == "A2"
+    assert ws.auto_filter.ref == f"A1:{ws.cell(1, ws.max_column).column_letter}{ws.max_row}"
+    col = _header(ws)
+    power = [ws.cell(r, col["median_power_at_planned_effect"]) for r in range(2, ws.max_row + 1)]
+    assert all(c.data_type == "n" for c in power if c.value is not None)
+    notes = [ws.cell(r, col["excess_note"]) for r in range(2, ws.max_row + 1)]
+    long = [c for c in notes if isinstance(c.value, str) and len(c.value) > 60]
+    assert long and all(c.alignment.wrap_text for c in long)
+    assert all((ws.row_dimensions[c.row].height or 0) >= 30 for c in long)
