@@ -13,8 +13,11 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import math
+import os
+import signal
 import sys
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -30,6 +33,9 @@ __all__ = ["main"]
 
 SEVERITIES = ("note", "warning", "serious")
 EXIT_OK, EXIT_FLAGGED, EXIT_UNUSABLE, EXIT_INTERNAL = 0, 1, 2, 3
+#: Standard output was closed by its reader (``study-audit check x --json - | head``): the
+#: shell's status for a writer ended by SIGPIPE, with nothing printed.
+EXIT_PIPE_CLOSED = 128 + 13
 #: A progress bar is shown for input files at least this large (about 2,000 rows of CSV), and
 #: only when standard error is a terminal.
 PROGRESS_MIN_BYTES = 200_000
@@ -76,7 +82,7 @@ def _parser() -> argparse.ArgumentParser:
     respond.add_argument("study_id", metavar="STUDY_ID", help="the study to write about")
     respond.add_argument(
         "--effect",
-        type=float,
+        type=_finite_number,
         help="also give design-based power at this effect (effect units), instead of the SESOI",
     )
     respond.add_argument("--out", type=Path, help="write the Markdown here instead of stdout")
@@ -149,6 +155,17 @@ def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) ->
     )
 
 
+def _finite_number(text: str) -> float:
+    """A finite number (``nan`` and ``inf`` are refused)."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not math.isfinite(value):
+        raise argparse.ArgumentTypeError(f"expected a finite number, such as 0.4, but got {text!r}")
+    return value
+
+
 def _reference_effects(text: str) -> tuple[float, ...]:
     """``--reference-effects 0.2,0.5,0.8``: positive numbers, comma-separated."""
     try:
@@ -190,10 +207,57 @@ def _add_check_options(p: argparse.ArgumentParser) -> None:
     _add_analysis_options(p)
 
 
+class _Stopped(BaseException):
+    """SIGTERM or SIGHUP arrived: unwinds like Ctrl-C, so unfinished exports are removed."""
+
+    def __init__(self, number: int) -> None:
+        super().__init__(number)
+        self.number = number
+
+
+def _stop(number: int, frame: object) -> None:
+    raise _Stopped(number)
+
+
+@contextlib.contextmanager
+def _stop_on_signals() -> Iterator[None]:
+    """While the command runs, SIGTERM and SIGHUP stop it through :class:`_Stopped` (the
+    temporary files of exports are removed on the way out); the previous handlers are put
+    back after. Outside the main thread nothing is installed (signals cannot be handled
+    there)."""
+    previous = {}
+    for name in ("SIGTERM", "SIGHUP"):
+        number = getattr(signal, name, None)
+        if number is None:
+            continue
+        try:
+            previous[number] = signal.signal(number, _stop)
+        except (ValueError, OSError):  # not the main thread
+            pass
+    try:
+        yield
+    finally:
+        for number, handler in previous.items():
+            signal.signal(number, handler)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = _parser()
     args = parser.parse_args(argv)
+    try:
+        with _stop_on_signals():
+            return _dispatch(parser, args)
+    except BrokenPipeError:
+        # The reader of standard output went away: stop quietly. Python would report the
+        # failed flush of stdout at exit; point stdout at /dev/null so that it has nothing to do.
+        with contextlib.suppress(OSError, ValueError):
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_PIPE_CLOSED
+
+
+def _dispatch(parser: argparse.ArgumentParser, args: argparse.Namespace) -> int:
     try:
         if args.command == "check":
             return _check(args)
@@ -211,6 +275,15 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("study-audit: interrupted.", file=sys.stderr)
         return 130
+    except _Stopped as stop:
+        from audit.export import remove_pending_temporary_files
+
+        remove_pending_temporary_files()
+        name = signal.Signals(stop.number).name
+        print(f"study-audit: stopped by {name}; no export was replaced.", file=sys.stderr)
+        return 128 + stop.number
+    except BrokenPipeError:
+        raise
     except Exception as exc:
         if getattr(args, "debug", False):
             raise
