@@ -344,6 +344,7 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
     for target in (run.json_out, run.csv_out, run.xlsx_out, run.report_out):
         if target is not None:
             refuse_overwrite(target, reads)
+    _refuse_shared_targets(run)
     to_stdout = "-" in (run.json_out, run.csv_out)
     exports = [
         ("writing JSON", run.json_out),
@@ -481,6 +482,35 @@ def _audit_with_exports(
             progress("writing workbook")
             workbook.finish(result)
     return result
+
+
+def _refuse_shared_targets(run: CheckRun) -> None:
+    """Two exports given the same file (``--json X --csv X``, or the same file by two names)
+    are refused: the second would silently replace the first. ``-`` (standard output) may be
+    given to one export only."""
+    named = [
+        (option, target)
+        for option, target in (
+            ("--json", run.json_out),
+            ("--csv", run.csv_out),
+            ("--xlsx", run.xlsx_out),
+            ("--report", run.report_out),
+        )
+        if target is not None
+    ]
+    for i, (first, a) in enumerate(named):
+        for second, b in named[i + 1 :]:
+            same = str(a) == str(b)
+            if not same and str(a) != "-" and str(b) != "-":
+                pa, pb = Path(a), Path(b)
+                same = pa.resolve() == pb.resolve()
+                with contextlib.suppress(OSError):
+                    same = same or (pa.exists() and pb.exists() and os.path.samefile(pa, pb))
+            if same:
+                where = "standard output" if str(a) == "-" else str(a)
+                raise ConfigError(
+                    f"{first} and {second} both write to {where}; give each export its own file."
+                )
 
 
 def exit_status(result: AuditResult, fail_on: str | None) -> int:

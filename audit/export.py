@@ -11,6 +11,7 @@ from __future__ import annotations
 import contextlib
 import csv
 import io
+import itertools
 import os
 import re
 import sys
@@ -383,12 +384,17 @@ def _csv_cells(column: pd.Series) -> tuple[list[object], np.ndarray | None]:
     ):
         values = column.to_numpy(dtype=float)
         cells = values.astype(object)
-        cells[np.isnan(values)] = None
+        # Blank where not computed, and where not finite: "inf" is no number a spreadsheet
+        # reads, and the JSON export writes null there too.
+        cells[~np.isfinite(values)] = None
         return cells.tolist(), None
     if pd.api.types.is_integer_dtype(column.dtype) and not column.hasnans:
         return column.to_numpy(dtype=np.int64).tolist(), None
     cells = np.array(column.astype(object).to_numpy(dtype=object), dtype=object)  # a copy
     cells[pd.isna(cells)] = None
+    floats = np.fromiter(map(isinstance, cells.tolist(), itertools.repeat(float)), dtype=bool)
+    if floats.any():  # a number held among text (a user column given as a frame)
+        cells[np.flatnonzero(floats)[~np.isfinite(cells[floats].astype(float))]] = None
     codes, uniques = pd.factorize(cells, use_na_sentinel=True)
     texts = np.asarray(uniques, dtype=object).tolist()
     with_return = [i for i, v in enumerate(texts) if isinstance(v, str) and "\r" in v]
