@@ -107,7 +107,8 @@ def normalise_header(text: object) -> str:
     'study_id'
     """
     s = str(text).strip().lower()
-    return re.sub(rf"[\s\-_{UNICODE_DASHES}]+", "_", s).strip("_")
+    # Control characters (invisible in a spreadsheet) count as spaces.
+    return re.sub(rf"[\s\-_{UNICODE_DASHES}\x00-\x1f\x7f-\x9f]+", "_", s).strip("_")
 
 
 #: Dashes other than the ASCII hyphen-minus that a header may hold (word processors and

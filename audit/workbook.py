@@ -30,6 +30,7 @@ import pandas as pd
 import xlsxwriter
 
 from audit._format import format_number
+from audit.errors import OutputError
 from audit.export import CAUTION, ILLEGAL_XLSX, atomic_output, files_read, refuse_overwrite
 from audit.jsonout import portfolio_document
 from audit.metrics import METRICS
@@ -515,4 +516,13 @@ class WorkbookExport:
         _rules_sheet(self._wb, result, self._styles)
         _invalid_sheet(self._wb, result, self._styles)
         _readme_sheet(self._wb, result, self._styles)
-        self._wb.close()
+        from xlsxwriter.exceptions import FileCreateError
+
+        try:
+            self._wb.close()
+        except FileCreateError as exc:  # xlsxwriter's wrapper of the OSError of a write
+            cause = exc.__cause__ or exc.__context__
+            reason = getattr(cause, "strerror", None) or str(exc)
+            raise OutputError(
+                f"{self._path}: the export could not be written ({reason}); nothing was replaced."
+            ) from exc
