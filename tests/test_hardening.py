@@ -823,9 +823,34 @@ def test_fuzz_workbook_parts(tmp_path_factory, parts):
     _read_or_refuse(path)
 
 
+#: Awkward pieces of text the fuzzers mix in: a lone separator, a bare carriage return,
+#: control characters and escape sequences, and digits of other scripts (Arabic-Indic,
+#: Extended Arabic-Indic, Devanagari, full-width), which a number parser must read or refuse.
+_AWKWARD = [
+    ",",
+    ";",
+    "\r",
+    "a\rb",
+    "\r\n",
+    "\x00",
+    "\x01",
+    "\x1b[31m",
+    "\x1b]52;c;aGk=\x07",
+    "\x85",
+    "\u202e",
+    "\u0663\u0660",  # ٣٠
+    "\u06f4\u06f0",  # ۴۰
+    "\u0968\u0966",  # २०
+    "\uff14\uff10",  # ４０
+    "\u0660.\u0665",  # ٠.٥
+]
+_AWKWARD_TEXT = st.lists(
+    st.one_of(st.sampled_from(_AWKWARD), st.text(max_size=3)), min_size=1, max_size=4
+).map("".join)
 _CELL = st.one_of(
     st.none(),
     st.text(max_size=12),
+    _AWKWARD_TEXT,
     st.sampled_from(
         [
             "NA",
@@ -923,7 +948,9 @@ def test_fuzz_random_cells(tmp_path_factory, columns, rows, data):
 @given(
     body=st.lists(
         st.lists(
-            st.text(alphabet=st.characters(codec="utf-8"), max_size=8), min_size=0, max_size=5
+            st.one_of(st.text(alphabet=st.characters(codec="utf-8"), max_size=8), _AWKWARD_TEXT),
+            min_size=0,
+            max_size=5,
         ),
         max_size=8,
     ),
