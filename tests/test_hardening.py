@@ -996,6 +996,8 @@ def test_archive_limit_constants_are_documented():
         "MAX_UNPACKED_BYTES",
         "MAX_PACKING_RATIO",
         "MAX_ARCHIVE_MEMBERS",
+        "SHEET_ROWS",
+        "MAX_CELL_CHARS",
     ):
         assert name in text, name
         assert getattr(rawtable, name) > 0
