@@ -684,8 +684,8 @@ def _audit_with_exports(
 
 def _refuse_shared_targets(run: CheckRun) -> None:
     """Two exports given the same file (``--json X --csv X``, or the same file by two names)
-    are refused: the second would silently replace the first. ``-`` (standard output) may be
-    given to one export only."""
+    are refused: the second would silently replace the first. Standard output (``-``) is
+    checked by :func:`check_stdout`."""
     named = [
         (option, target)
         for option, target in (
@@ -699,16 +699,15 @@ def _refuse_shared_targets(run: CheckRun) -> None:
     ]
     for i, (first, a) in enumerate(named):
         for second, b in named[i + 1 :]:
-            same = str(a) == str(b)
-            if not same and str(a) != "-" and str(b) != "-":
-                pa, pb = Path(a), Path(b)
-                same = pa.resolve() == pb.resolve()
-                with contextlib.suppress(OSError):
-                    same = same or (pa.exists() and pb.exists() and os.path.samefile(pa, pb))
+            if "-" in (str(a), str(b)):
+                continue  # standard output: at most one export, see check_stdout
+            pa, pb = Path(a), Path(b)
+            same = str(a) == str(b) or pa.resolve() == pb.resolve()
+            with contextlib.suppress(OSError):
+                same = same or (pa.exists() and pb.exists() and os.path.samefile(pa, pb))
             if same:
-                where = "standard output" if str(a) == "-" else str(a)
                 raise ConfigError(
-                    f"{first} and {second} both write to {where}; give each export its own file."
+                    f"{first} and {second} both write to {a}; give each export its own file."
                 )
 
 

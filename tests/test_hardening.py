@@ -1161,7 +1161,7 @@ def test_two_exports_to_one_file_are_refused(corpus, tmp_path, capsys, first, se
     assert main(["check", str(corpus["bom.csv"]), "--quiet", first, target, second, other]) == 2
     capsys.readouterr()
     assert main(["check", str(corpus["bom.csv"]), "--quiet", "--json", "-", "--csv", "-"]) == 2
-    assert "both write to standard output" in capsys.readouterr().err
+    assert "both ask for standard output" in capsys.readouterr().err
 
 
 @pytest.mark.parametrize("value", ["nan", "inf", "-inf", "NaN"])
