@@ -440,3 +440,85 @@ def test_respond_writes_the_non_inferiority_version():
     other = respond_text(result, "EQ")
     assert "two one-sided tests, each at α = 0.05" in other
     assert "90% CI" in other and "neither shows equivalence" in other
+
+
+# -- robustness -----------------------------------------------------------------------------------
+
+_SUPPORTED = (
+    "one_mean",
+    "paired_means",
+    "two_means",
+    "crossover",
+    "cluster_two_means",
+    "two_proportions",
+    "survival",
+    "estimate",
+)
+
+
+@pytest.mark.parametrize("seed", [4, 9])
+def test_random_margin_rows_audit_and_every_null_metric_has_a_note(seed):
+    # Random non-inferiority and equivalence rows of every supported design with random blanks:
+    # none raises (RuntimeWarnings are errors in the test run), and each null metric of an
+    # audited row is explained by a note.
+    from test_designs_all import _explained
+
+    rng = np.random.default_rng(seed)
+    k = 240
+    design = rng.choice(_SUPPORTED, k)
+    n1 = rng.integers(10, 300, k).astype(float)
+    survival = design == "survival"
+    p1 = rng.uniform(0.1, 0.9, k)
+    data = {
+        "study_id": [f"M{i}" for i in range(k)],
+        "design": design,
+        "hypothesis": rng.choice(["non_inferiority", "equivalence"], k),
+        "margin": np.where(survival, rng.uniform(1.05, 1.6, k), rng.uniform(0.05, 2.0, k)),
+        "direction": rng.choice(["increase", "decrease"], k),
+        "alpha": rng.choice([0.025, 0.05], k),
+        "target_power": rng.choice([0.8, 0.9], k),
+        "planned_n1": n1,
+        "planned_n2": np.round(n1 * rng.choice([0.5, 1.0, 2.0], k)),
+        "realized_n1": np.round(n1 * rng.uniform(0.5, 1.0, k)),
+        "realized_n2": np.round(n1 * rng.uniform(0.5, 1.0, k)),
+        "planned_sd": rng.uniform(0.5, 5.0, k),
+        "realized_sd": rng.uniform(0.5, 5.0, k),
+        "planned_effect": np.where(
+            survival, np.exp(rng.uniform(-0.1, 0.1, k)), rng.normal(0, 0.1, k)
+        ),
+        "planned_p1": p1,
+        "planned_p2": np.clip(p1 + rng.uniform(-0.05, 0.05, k), 0.01, 0.99),
+        "realized_p1": np.clip(p1 + rng.uniform(-0.05, 0.05, k), 0.01, 0.99),
+        "planned_icc": rng.uniform(0.0, 0.1, k),
+        "planned_cluster_size": rng.uniform(5, 30, k),
+        "planned_events": np.round(n1 * 1.5 * rng.uniform(0.3, 0.9, k)),
+        "realized_events": np.round(n1 * 1.5 * rng.uniform(0.2, 0.8, k)),
+        "planned_se": rng.uniform(0.05, 0.5, k),
+        "realized_se": rng.uniform(0.05, 0.5, k),
+        "control_effect": np.where(survival, rng.uniform(0.4, 0.9, k), rng.uniform(0.2, 3.0, k)),
+        "observed_effect": np.where(survival, np.exp(rng.normal(0, 0.1, k)), rng.normal(0, 0.2, k)),
+        "observed_se": rng.uniform(0.02, 0.4, k),
+        "planned_dropout": rng.choice([0.0, 0.1, 0.2], k),
+    }
+    binary = design == "two_proportions"
+    data["planned_effect"] = np.where(binary, np.nan, data["planned_effect"])
+    df = pd.DataFrame(data).astype(object)
+    blank = rng.uniform(size=df.shape) < 0.15
+    blank[:, :4] = False  # id, design, hypothesis, margin
+    for j, column in enumerate(df.columns):
+        blank[:, j] |= ~np.isin(
+            design, [n for n, d in audit.DESIGNS.items() if column in d.inputs()]
+        )
+    df = df.mask(blank)
+    result = audit.audit_table(df)
+    assert len(result.table) == k
+    audited = np.flatnonzero(result.valid)
+    assert len(audited) > k // 2
+    notes = result.by_row(result.notes, "text")
+    for i in audited:
+        row = result.metrics.iloc[i]
+        for metric in audit.METRICS:
+            if pd.isna(row[metric]):
+                assert _explained(metric, notes[i]), (design[i], metric, notes[i])
+        power = row["power_at_planned_effect"]
+        assert np.isnan(power) or 0.0 <= power <= 1.0
