@@ -7,6 +7,11 @@ Exit status (DESIGN.md section 7):
 * 2 — the input or the configuration could not be used (unreadable file, no header, no
   ``study_id``/``design`` column, bad rules file or option);
 * 3 — an internal error (a bug: please report it with the output of ``--debug``).
+
+Conventions: ``check -`` reads the portfolio from standard input (CSV text or an .xlsx
+workbook); ``-`` as an export's file sends it to standard output, for at most one export
+(JSON or CSV: a workbook or figures cannot go there), and the report then goes to standard
+error; ``study-audit`` alone prints the help.
 """
 
 from __future__ import annotations
@@ -14,13 +19,15 @@ from __future__ import annotations
 import argparse
 import contextlib
 import sys
+import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from audit import __version__
-from audit.errors import AuditError, ConfigError, OutputError
+from audit.errors import AuditError, ConfigError, InputError, OutputError
+from audit.terminal import clean_line
 
 if TYPE_CHECKING:
     from audit.result import AuditResult
@@ -32,12 +39,50 @@ EXIT_OK, EXIT_FLAGGED, EXIT_UNUSABLE, EXIT_INTERNAL = 0, 1, 2, 3
 #: A progress bar is shown for input files at least this large (about 2,000 rows of CSV), and
 #: only when standard error is a terminal.
 PROGRESS_MIN_BYTES = 200_000
+#: The name standard input goes by in messages, the report and the exports.
+STDIN_NAME = "standard input"
+
+_EXIT_CODES = """exit status:
+  0  the portfolio was audited (rows that fail validation are listed, not fatal)
+  1  a finding at or above --fail-on was raised
+  2  the input, an option or a rules file could not be used (one sentence says why)
+  3  internal error (run again with --debug and report the output)"""
+
+_MAIN_EPILOG = f"""examples:
+  study-audit demo                          the whole job on a bundled portfolio
+  study-audit template studies.xlsx         a blank input workbook to fill in
+  study-audit check studies.xlsx --xlsx audited.xlsx --json audit.json
+  study-audit check studies.csv --study KF-104
+  study-audit columns                       the input columns and the designs using them
+  study-audit rules power-below-target      one rule in full
+
+{_EXIT_CODES}"""
+
+_CHECK_EPILOG = f"""examples:
+  study-audit check studies.xlsx
+  study-audit check studies.csv --fail-on serious --quiet
+  study-audit check studies.xlsx --xlsx audited.xlsx --plots figures
+  study-audit check studies.csv --json - > audit.json      (the report goes to stderr)
+  cat studies.csv | study-audit check - --csv audited.csv
+  study-audit check studies.xlsx --rules exempt-pilots.toml
+
+FILE is .xlsx, .csv or .tsv ('-' reads standard input). At most one export may be '-'
+(standard output): --json or --csv; --xlsx and --plots need a file or folder.
+
+{_EXIT_CODES}"""
+
+
+def _formatter(prog: str) -> argparse.HelpFormatter:
+    return argparse.RawDescriptionHelpFormatter(prog, max_help_position=30)
 
 
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="study-audit",
-        description="Audit what completed studies could and could not detect.",
+        description="Audit what completed studies could and could not detect: design-based "
+        "power, minimal detectable effects, plan against reality, portfolio statistics.",
+        epilog=_MAIN_EPILOG,
+        formatter_class=_formatter,
     )
     parser.add_argument("--version", action="version", version=f"study-audit {__version__}")
     parser.add_argument(
@@ -46,43 +91,93 @@ def _parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
-    check = sub.add_parser("check", help="audit a portfolio file (.xlsx, .csv, .tsv)")
-    check.add_argument("file", type=Path, help="the portfolio: one row per study")
+    def command(name: str, summary: str, epilog: str = _EXIT_CODES) -> argparse.ArgumentParser:
+        return sub.add_parser(
+            name, help=summary, description=summary, epilog=epilog, formatter_class=_formatter
+        )
+
+    check = command(
+        "check", "audit a portfolio file (.xlsx, .csv, .tsv; '-' for standard input)", _CHECK_EPILOG
+    )
+    check.add_argument(
+        "file", type=Path, metavar="FILE", help="the portfolio, one row per study ('-': stdin)"
+    )
     _add_check_options(check)
 
-    demo = sub.add_parser(
-        "demo", help="run the whole audit on the bundled demo portfolio and write every export"
+    demo = command(
+        "demo",
+        "run the whole audit on the bundled demo portfolio and write every export",
+        "writes into DIR: report.txt, audit.json, audit.csv, audit.xlsx, plots/ and one\n"
+        "referee response (response_ID.md)\n\nexample:\n  study-audit demo --out demo\n\n"
+        + _EXIT_CODES,
     )
     demo.add_argument(
         "--out",
         type=Path,
+        metavar="DIR",
         default=Path("study-audit-demo"),
         help="folder for the exports (default: ./study-audit-demo)",
     )
-    demo.add_argument("--quiet", action="store_true", help="write the exports only")
+    demo.add_argument("--quiet", action="store_true", help="write the exports only, no report")
 
-    template = sub.add_parser("template", help="write a blank, documented input workbook")
-    template.add_argument("out", type=Path, metavar="OUT.xlsx", help="the workbook to write")
+    template = command(
+        "template",
+        "write a blank, documented input workbook to fill in",
+        "example:\n  study-audit template studies.xlsx\n\n" + _EXIT_CODES,
+    )
+    template.add_argument("out", type=Path, metavar="OUT", help="the workbook to write (.xlsx)")
+    template.add_argument(
+        "--force", action="store_true", help="replace OUT if it exists (default: refuse)"
+    )
 
-    rules = sub.add_parser("rules", help="list the audit rules, or show one in full")
-    rules.add_argument("id", nargs="?", help="a rule id: show its condition, parameters, rationale")
+    rules = command(
+        "rules",
+        "list the audit rules, or show one in full",
+        "examples:\n  study-audit rules\n  study-audit rules power-below-target --rules "
+        "mine.toml\n\n" + _EXIT_CODES,
+    )
+    rules.add_argument(
+        "id", nargs="?", metavar="ID", help="a rule id: show its condition, parameters, rationale"
+    )
     _add_rules_option(rules)
 
-    respond = sub.add_parser(
-        "respond", help="draft the paragraph on power an author can send to a referee"
+    columns = command(
+        "columns",
+        "list the input columns: name, meaning and the designs that use them",
+        "example:\n  study-audit columns --design two_means\n\n" + _EXIT_CODES,
     )
-    respond.add_argument("file", type=Path, help="the portfolio file")
-    respond.add_argument("study_id", metavar="STUDY_ID", help="the study to write about")
+    columns.add_argument(
+        "--design", metavar="NAME", help="only the columns this design uses (default: all)"
+    )
+
+    command(
+        "schema",
+        "print the JSON Schema (draft 2020-12) of the --json document",
+        "example:\n  study-audit schema > study-audit.schema.json\n\n" + _EXIT_CODES,
+    )
+
+    respond = command(
+        "respond",
+        "draft the paragraph on power an author can send to a referee",
+        "example:\n  study-audit respond studies.xlsx KF-104 --out response.md\n\n" + _EXIT_CODES,
+    )
+    respond.add_argument("file", type=Path, metavar="FILE", help="the portfolio file")
+    respond.add_argument("study_id", metavar="ID", help="the study_id of the study")
     respond.add_argument(
         "--effect",
         type=float,
+        metavar="X",
         help="also give design-based power at this effect (effect units), instead of the SESOI",
     )
-    respond.add_argument("--out", type=Path, help="write the Markdown here instead of stdout")
-    respond.add_argument("--sheet", help="worksheet to read (default: the first)")
+    respond.add_argument(
+        "--out", type=Path, metavar="OUT", help="write the Markdown here (default: stdout)"
+    )
+    respond.add_argument(
+        "--sheet", metavar="NAME", help="worksheet to read (default: the first visible one)"
+    )
     _add_analysis_options(respond, excess=False)
 
-    for p in (check, demo, template, rules, respond):
+    for p in sub.choices.values():
         p.add_argument(
             "--debug", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS
         )
@@ -136,7 +231,7 @@ def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) ->
         type=int,
         default=5,
         metavar="N",
-        help="fewest studies with a result for the excess-significance test (default 5)",
+        help="fewest studies with a result for the excess-significance test (default: 5)",
     )
     group.add_argument(
         "--reference-effects",
@@ -144,7 +239,7 @@ def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) ->
         default=(0.2, 0.5, 0.8),
         metavar="X,Y,...",
         help="standardized effects (each design's unit: d, d_z, h, r, f, f2, log HR) at which "
-        "every study's power is given (default 0.2,0.5,0.8)",
+        "every study's power is given (default: 0.2,0.5,0.8)",
     )
 
 
@@ -162,7 +257,9 @@ def _reference_effects(text: str) -> tuple[float, ...]:
 
 
 def _add_check_options(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--sheet", help="worksheet to read (default: the first)")
+    p.add_argument(
+        "--sheet", metavar="NAME", help="worksheet to read (default: the first visible one)"
+    )
     _add_rules_option(p)
     p.add_argument(
         "--study",
@@ -173,17 +270,34 @@ def _add_check_options(p: argparse.ArgumentParser) -> None:
     p.add_argument(
         "--fail-on",
         choices=SEVERITIES,
-        help="exit with status 1 when a flag of this severity or above is raised",
+        help="exit with status 1 when a flag of this severity or above is raised "
+        "(default: findings do not change the exit status)",
     )
-    out = p.add_argument_group("exports")
+    out = p.add_argument_group("exports (at most one may be '-', standard output)")
     out.add_argument("--json", metavar="OUT", help="write the JSON document ('-' for stdout)")
     out.add_argument(
         "--csv", metavar="OUT", help="write the per-study table as CSV ('-' for stdout)"
     )
-    out.add_argument("--xlsx", metavar="OUT", help="write the annotated workbook")
+    out.add_argument("--xlsx", metavar="OUT", help="write the annotated workbook (a file)")
+    out.add_argument(
+        "--html",
+        metavar="OUT",
+        help="write the report as one self-contained HTML file (opens offline, prints cleanly)",
+    )
     out.add_argument("--plots", metavar="DIR", type=Path, help="write figures into this folder")
     out.add_argument(
-        "--plot-format", choices=("png", "svg"), default="png", help="figure format (default png)"
+        "--plot-format",
+        choices=("png", "svg"),
+        default="png",
+        help="figure format (default: png)",
+    )
+    p.add_argument(
+        "--group-by",
+        metavar="COLUMN",
+        action="append",
+        default=[],
+        help="also summarise the portfolio per value of this column (a column of the file, such "
+        "as a programme or field; blank cells form their own group); repeatable",
     )
     p.add_argument("--quiet", action="store_true", help="write the exports only, no report")
     _add_analysis_options(p)
@@ -192,6 +306,10 @@ def _add_check_options(p: argparse.ArgumentParser) -> None:
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = _parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    if not argv:
+        parser.print_help()
+        return EXIT_OK
     args = parser.parse_args(argv)
     try:
         if args.command == "check":
@@ -202,10 +320,14 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _rules(args)
         if args.command == "template":
             return _template(args)
+        if args.command == "columns":
+            return _columns(args)
+        if args.command == "schema":
+            return _schema()
         if args.command == "respond":
             return _respond(args)
     except AuditError as exc:
-        print(f"study-audit: {exc}", file=sys.stderr)
+        print(f"study-audit: {clean_line(str(exc))}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print("study-audit: interrupted.", file=sys.stderr)
@@ -214,7 +336,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if getattr(args, "debug", False):
             raise
         print(
-            f"study-audit: internal error ({type(exc).__name__}: {exc}); "
+            f"study-audit: internal error ({type(exc).__name__}: {clean_line(str(exc))}); "
             "run again with --debug and report the output.",
             file=sys.stderr,
         )
@@ -235,11 +357,15 @@ class CheckRun:
     json_out: str | None = None
     csv_out: str | None = None
     xlsx_out: str | None = None
+    html_out: str | None = None
+    group_by: Sequence[str] = ()
     plots_dir: Path | None = None
     plot_format: str = "png"
     report_out: Path | None = None
     quiet: bool = False
     analysis: dict[str, Any] = field(default_factory=dict)
+    #: How the input is named in messages and the result (``check -``: standard input).
+    source_name: str | None = None
 
 
 def _analysis(args: argparse.Namespace) -> dict[str, Any]:
@@ -264,21 +390,26 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
     from audit.rules import load_rules
 
     # The rules are checked before the (possibly long) read, so a typo fails at once; so is
-    # an output that would replace a file the run reads.
+    # an output that would replace a file the run reads, or two outputs to standard output.
+    check_stdout(run)
     ruleset = load_rules(run.rule_files)
     reads = [("the input file", run.path), *(("a rules file", f) for f in run.rule_files)]
-    for target in (run.json_out, run.csv_out, run.xlsx_out, run.report_out):
+    for target in (run.json_out, run.csv_out, run.xlsx_out, run.html_out, run.report_out):
         if target is not None:
             refuse_overwrite(target, reads)
-    to_stdout = "-" in (run.json_out, run.csv_out)
+    to_stdout = "-" in (run.json_out, run.csv_out, run.html_out)
     exports = [
         ("writing JSON", run.json_out),
+        ("writing HTML", run.html_out),
         ("writing CSV", run.csv_out),
         ("writing workbook", run.xlsx_out),
         ("drawing figures", run.plots_dir),
     ]
     stages = [*STAGES, *(stage for stage, target in exports if target)]
-    with _progress(run.path, stages, show=not run.quiet) as progress:
+    with (
+        _stdin_copy(run) as run,
+        _progress(run.path, stages, show=not run.quiet) as progress,
+    ):
         result = _audit_with_exports(run, ruleset, reads, progress)
         positions: list[int] = []
         for study in run.study or ():
@@ -292,6 +423,11 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         if run.json_out:
             progress("writing JSON")
             write_json(result, run.json_out)
+        if run.html_out:
+            from audit.html import write_html
+
+            progress("writing HTML")
+            write_html(result, run.html_out, fail_on=run.fail_on)
         if run.plots_dir is not None:
             from audit.plots import write_plots
 
@@ -312,7 +448,14 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         from audit.report import THEME
 
         with atomic_output(run.report_out) as handle:
-            plain = Console(file=handle, width=100, color_system=None, theme=THEME, highlight=False)
+            plain = Console(
+                file=handle,
+                width=100,
+                color_system=None,
+                theme=THEME,
+                highlight=False,
+                markup=False,
+            )
             render_report(result, plain, fail_on=run.fail_on)
     if not run.quiet:
         console = make_console(stderr=to_stdout)
@@ -349,6 +492,64 @@ def _progress(path: Path, stages: Sequence[str], *, show: bool) -> Any:
     return _NoProgress()
 
 
+def check_stdout(run: CheckRun) -> None:
+    """Refuse what cannot go to standard output: a workbook or figures (binary files, which
+    would mix with the report), or two exports at once (they would run together).
+
+    Raises
+    ------
+    ConfigError
+        ``--xlsx -``, ``--plots -``, or more than one export given as ``-``.
+    """
+    if run.xlsx_out == "-":
+        raise ConfigError(
+            "--xlsx - is refused: a workbook is a binary file and cannot go to standard "
+            "output; give a file name such as audited.xlsx."
+        )
+    if run.plots_dir is not None and str(run.plots_dir) == "-":
+        raise ConfigError(
+            "--plots - is refused: figures are written as files into a folder; give a folder "
+            "name such as figures."
+        )
+    to_stdout = [name for name, target in _stdout_exports(run) if target == "-"]
+    if len(to_stdout) > 1:
+        raise ConfigError(
+            f"{' and '.join(to_stdout)} both ask for standard output ('-'); at most one export "
+            "may go there, so give the others a file name."
+        )
+
+
+def _stdout_exports(run: CheckRun) -> list[tuple[str, str | None]]:
+    """The exports that may go to standard output, by option."""
+    return [("--json", run.json_out), ("--csv", run.csv_out)]
+
+
+@contextlib.contextmanager
+def _stdin_copy(run: CheckRun) -> Any:
+    """``check -``: standard input copied to a temporary file (the reader decides the format
+    from the content, so CSV text and an .xlsx workbook both work), named "standard input" in
+    messages and the result; any other run is passed through."""
+    if str(run.path) != "-":
+        yield run
+        return
+    from dataclasses import replace
+
+    from audit.read import MAX_FILE_BYTES
+
+    data = sys.stdin.buffer.read(MAX_FILE_BYTES + 1)
+    if not data:
+        raise InputError(f"{STDIN_NAME} is empty; pipe a .csv, .tsv or .xlsx file into 'check -'.")
+    with tempfile.TemporaryDirectory(prefix="study-audit-") as folder:
+        zipped = data.startswith(b"PK")
+        copy = Path(folder) / ("stdin.xlsx" if zipped else "stdin.csv")
+        copy.write_bytes(data)
+        del data
+        try:
+            yield replace(run, path=copy, source_name=STDIN_NAME)
+        except AuditError as exc:
+            raise type(exc)(str(exc).replace(str(copy), STDIN_NAME)) from None
+
+
 def _audit_with_exports(
     run: CheckRun, ruleset: Any, reads: list[tuple[str, Any]], progress: Any
 ) -> AuditResult:
@@ -378,15 +579,20 @@ def _audit_with_exports(
             rules=ruleset,
             progress=progress,
             on_part=on_part if sinks else None,
+            group_by=run.group_by,
             **run.analysis,
         )
+        if run.source_name is not None:
+            result.settings["source"] = run.source_name
         if sinks and result.settings.get("rules_reapplied"):
             # A rule failed on a later part: the parts written carry findings a failing rule
             # does not have. The exports are written again from the whole file (rare: a bug).
             exports.pop_all()
             for sink in sinks:
                 sink.__exit__(RuntimeError, RuntimeError("rewritten"), None)
-            full = audit_file(run.path, sheet=run.sheet, rules=ruleset, **run.analysis)
+            full = audit_file(
+                run.path, sheet=run.sheet, rules=ruleset, group_by=run.group_by, **run.analysis
+            )
             if run.csv_out:
                 write_csv(full, run.csv_out)
             if run.xlsx_out:
@@ -424,6 +630,8 @@ def _check(args: argparse.Namespace) -> int:
             json_out=args.json,
             csv_out=args.csv,
             xlsx_out=args.xlsx,
+            html_out=args.html,
+            group_by=args.group_by,
             plots_dir=args.plots,
             plot_format=args.plot_format,
             quiet=args.quiet,
@@ -466,12 +674,13 @@ def _demo(args: argparse.Namespace) -> int:
             json_out=str(out / "audit.json"),
             csv_out=str(out / "audit.csv"),
             xlsx_out=str(out / "audit.xlsx"),
+            html_out=str(out / "report.html"),
             plots_dir=out / "plots",
             report_out=out / "report.txt",
             quiet=args.quiet,
         )
     )
-    written = ["report.txt", "audit.json", "audit.csv", "audit.xlsx", "plots/"]
+    written = ["report.txt", "report.html", "audit.json", "audit.csv", "audit.xlsx", "plots/"]
     example = _demo_response_study(result)
     if example is not None:
         name = f"response_{example}.md"
@@ -496,7 +705,14 @@ def _demo_response_study(result: AuditResult) -> str | None:
 def _template(args: argparse.Namespace) -> int:
     from audit.template import write_template
 
-    write_template(args.out)
+    out: Path = args.out
+    if out.suffix.lower() != ".xlsx":
+        raise ConfigError(
+            f"template writes an .xlsx workbook; give a name ending in .xlsx, not '{out}'."
+        )
+    if out.exists() and not args.force:
+        raise OutputError(f"{out} exists; add --force to replace it with a blank template.")
+    write_template(out)
     print(f"Input template written to {args.out}: fill the 'studies' sheet (see 'guide').")
     return EXIT_OK
 
@@ -515,5 +731,20 @@ def _respond(args: argparse.Namespace) -> int:
     else:
         with atomic_output(args.out) as handle:
             handle.write(text)
-        print(f"Response for {args.study_id} written to {args.out}", file=sys.stderr)
+        print(f"Response for {clean_line(args.study_id)} written to {args.out}", file=sys.stderr)
+    return EXIT_OK
+
+
+def _columns(args: argparse.Namespace) -> int:
+    from audit.columns import render_columns
+    from audit.report import make_console
+
+    render_columns(make_console(), design=args.design)
+    return EXIT_OK
+
+
+def _schema() -> int:
+    from audit.jsonout import schema_text
+
+    sys.stdout.write(schema_text())
     return EXIT_OK

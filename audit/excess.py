@@ -132,13 +132,16 @@ def poisson_binomial_sf(k: int, probs: np.ndarray) -> float:
         t = np.exp(log_t)
         return float(np.sum(p * t / (1.0 - p + p * t))) - k
 
-    # The tilted mean rises from sum(p) at t = 1 to the number of possible successes.
-    hi = 1.0
+    # The tilted mean rises from sum(p) at t = 1 to the number of possible successes: bracket
+    # its root in log t, then bisect (one scalar root per portfolio; any t near the root keeps
+    # the tilting exact, only the rounding of the terms depends on it).
+    lo, hi = 0.0, 1.0
     while tilted_mean(hi) < 0:
-        hi *= 2.0
-    from scipy import optimize  # one scalar root per portfolio: not worth importing up front
-
-    log_t = optimize.brentq(tilted_mean, 0.0, hi, xtol=1e-12)
+        lo, hi = hi, hi * 2.0
+    while hi - lo > 1e-12 * max(1.0, hi):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if tilted_mean(mid) < 0 else (lo, mid)
+    log_t = 0.5 * (lo + hi)
     t = np.exp(log_t)
     tilted = p * t / (1.0 - p + p * t)
     pmf = poisson_binomial_pmf(tilted)

@@ -16,7 +16,15 @@ import pandas as pd
 from audit.designs import DESIGNS, Design
 from audit.schema import COLUMNS, SPECS
 
-__all__ = ["ADJUSTMENT_INPUTS", "CLUSTER_INPUTS", "filled", "ignored_errors", "ignored_notes"]
+__all__ = [
+    "ADJUSTMENT_INPUTS",
+    "CLUSTER_INPUTS",
+    "column_rows",
+    "designs_using",
+    "filled",
+    "ignored_errors",
+    "ignored_notes",
+]
 
 #: Columns that describe clustering: read only by cluster designs. Elsewhere ignoring them would
 #: give the power of an individually randomised trial, far too high (an error, not a note).
@@ -133,3 +141,41 @@ def ignored_notes(design: Design, rows: pd.DataFrame) -> list[tuple[np.ndarray, 
         object
     )
     return [(hit, text)]
+
+
+def designs_using(name: str) -> tuple[str, ...]:
+    """The designs that read the input column ``name`` (in the order of ``DESIGNS``)."""
+    return tuple(d for d, design in DESIGNS.items() if name in design.inputs())
+
+
+def column_rows(design: str | None = None) -> list[tuple[str, str, str, str]]:
+    """The input columns as ``study-audit columns`` lists them: name, meaning (with the values
+    allowed and the default), and the designs that read the column ("all" where every one
+    does), in the order of :data:`audit.schema.COLUMNS` — the same specs that validate input.
+
+    ``design`` keeps only the columns that design reads.
+    """
+    every = tuple(DESIGNS)
+    rows = []
+    for column in COLUMNS:
+        users = designs_using(column.name)
+        if design is not None and design not in users:
+            continue
+        allowed = "text" if column.kind == "text" else column.range_text()
+        meaning = f"{column.meaning} Values: {allowed}"
+        if column.default not in (None, ""):
+            default = column.default
+            meaning += (
+                f"; blank means {default:g}"
+                if isinstance(default, float)
+                else (f"; blank means {default}")
+            )
+        others = [d for d in every if d not in users]
+        if not others:
+            users_text = "all"
+        elif len(others) <= 2 and len(users) > len(others):
+            users_text = "all but " + ", ".join(others)
+        else:
+            users_text = ", ".join(users) or "none"
+        rows.append((column.name, column.group, meaning + ".", users_text))
+    return rows

@@ -320,7 +320,11 @@ def _head(result: AuditResult) -> bytes:
 
 def _tail(result: AuditResult) -> bytes:
     """The keys after ``studies`` (compact), without the opening brace."""
-    tail = {"portfolio": _jsonable(result.portfolio), "caveats": result.caveats}
+    tail: dict[str, object] = {"portfolio": _jsonable(result.portfolio)}
+    if result.groups:
+        # --group-by: {column: {value: the portfolio summary over that value's rows}}.
+        tail["groups"] = _jsonable(result.groups)
+    tail["caveats"] = result.caveats
     return _encode(tail)[1:]
 
 

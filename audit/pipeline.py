@@ -24,10 +24,14 @@ from audit.metrics import METRICS, REFERENCE_EFFECTS, compute_metrics
 from audit.plan_methods import tolerance_in_force
 from audit.portfolio import (
     EXCESS_DEFAULTS,
+    MAX_GROUPS,
     ExcessSettings,
+    group_labels,
+    group_summaries,
     pooled_effect_power,
     portfolio_summary,
 )
+from audit.rawtable import normalise_header
 from audit.read import RawTable, raw_from_frame, read_table
 from audit.reaudit import set_aside_output_columns
 from audit.result import AuditResult
@@ -99,6 +103,41 @@ class RunSettings:
     continuity_correction: bool = False
     excess: ExcessSettings = EXCESS_DEFAULTS
     reference_effects: tuple[float, ...] = REFERENCE_EFFECTS
+    #: Columns (their names in the table) the portfolio is also summarised by, per value.
+    group_by: tuple[str, ...] = ()
+
+
+def group_columns(raw: RawTable, names: Any) -> tuple[str, ...]:
+    """The table columns of ``--group-by`` names (matched as headers are: case-insensitively,
+    spaces, dashes and underscores alike), each once.
+
+    Raises
+    ------
+    ConfigError
+        A name matches no column of the file, or its column holds more than
+        :data:`~audit.portfolio.MAX_GROUPS` distinct values.
+    """
+    if names is None or isinstance(names, str):
+        names = [] if names is None else [names]
+    out: list[str] = []
+    for name in names:
+        column = normalise_header(name)
+        if column not in raw.data.columns:
+            shown = ", ".join(raw.headers.get(c, c) for c in list(raw.data.columns)[:12])
+            more = ", ..." if len(raw.data.columns) > 12 else ""
+            raise ConfigError(
+                f"--group-by {name!r}: {raw.source} has no column of that name (its columns: "
+                f"{shown}{more})."
+            )
+        distinct = len(pd.unique(group_labels(raw.data[column].to_numpy(dtype=object))))
+        if distinct > MAX_GROUPS:
+            raise ConfigError(
+                f"--group-by {name!r}: the column holds {distinct:,} distinct values; at most "
+                f"{MAX_GROUPS:,} groups can be summarised (group by a coarser column)."
+            )
+        if column not in out:
+            out.append(column)
+    return tuple(out)
 
 
 def _with_family_power(
@@ -137,11 +176,14 @@ def audit_validated(
     continuity_correction: bool = False,
     excess: ExcessSettings = EXCESS_DEFAULTS,
     reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
+    group_by: Any = (),
     progress: Progress | None = None,
 ) -> AuditResult:
     """Audit an already validated table (see :func:`audit_table`)."""
     ruleset = resolve_rules(rules)
-    run = RunSettings(continuity_correction, excess, reference_effects)
+    run = RunSettings(
+        continuity_correction, excess, reference_effects, group_columns(validated.raw, group_by)
+    )
     table, metrics, notes, status = _metrics_of(validated, run, ruleset, progress)
     metrics, notes = _with_family_power(table, metrics, notes, validated.valid, excess.pooling)
     _announce(progress, "applying rules")
@@ -207,6 +249,11 @@ def _summarised(
         excess=run.excess,
         judged=evaluation.judged,
     )
+    groups = (
+        group_summaries(table, metrics, valid, findings, list(run.group_by), run.excess)
+        if run.group_by
+        else {}
+    )
     enabled = ruleset.enabled()
     settings = {
         "rules": [r.id for r in enabled],
@@ -225,6 +272,7 @@ def _summarised(
         # (plan_reproduced_by): max_discrepancy of rule sample-size-not-reproducible in force.
         "plan_reproduction_tolerance": tolerance_in_force(ruleset),
         "reference_effects": list(run.reference_effects),
+        "group_by": [validated.raw.headers.get(c, c) for c in run.group_by],
         "header_row": validated.raw.header_row,
         # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
         # title rows, merged or repeated headers).
@@ -245,6 +293,7 @@ def _summarised(
         rule_problems=evaluation.problems,
         rules_judged=dict(evaluation.judged),
         caveats=caveats(metrics, portfolio),
+        groups=groups,
     )
 
 
@@ -258,6 +307,7 @@ def audit_table(
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
     reference_effects: Any = REFERENCE_EFFECTS,
+    group_by: Any = (),
     progress: Progress | None = None,
 ) -> AuditResult:
     """Audit a table of studies given as a DataFrame (one row per study, contract columns).
@@ -290,13 +340,17 @@ def audit_table(
         Standardized effects, in each design's standardized unit (d, d_z, h, r, f, f2, log HR),
         at which every study's design-based power is given (``reference_power_<x>``; the JSON
         object ``reference_power``). Default 0.2, 0.5, 0.8.
+    group_by : sequence of str
+        Columns of the table (user columns or contract columns, named as headers are matched)
+        to summarise the portfolio by, per value: the result's ``groups`` (see
+        :func:`audit.portfolio.group_summaries`).
     progress
         Called with each stage name of :data:`STAGES` as it starts.
 
     Raises
     ------
     ConfigError
-        A rules file or one of the ``excess_*`` arguments is not valid.
+        A rules file, one of the ``excess_*`` arguments or a ``group_by`` column is not valid.
     """
     ruleset = resolve_rules(rules)  # a bad rules file fails before any work is done
     excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
@@ -308,6 +362,7 @@ def audit_table(
         continuity_correction=continuity_correction,
         excess=excess,
         reference_effects=references,
+        group_by=group_by,
         progress=progress,
     )
 
@@ -418,6 +473,7 @@ def audit_stream(
     continuity_correction: bool = False,
     excess: ExcessSettings = EXCESS_DEFAULTS,
     reference_effects: tuple[float, ...] = REFERENCE_EFFECTS,
+    group_by: Any = (),
     progress: Progress | None = None,
     on_part: Callable[[AuditResult], None] | None = None,
     consume: bool = False,
@@ -439,8 +495,10 @@ def audit_stream(
     kept until then).
     """
     ruleset = resolve_rules(rules)
-    run = RunSettings(continuity_correction, excess, reference_effects)
     raw = set_aside_output_columns(raw)
+    run = RunSettings(
+        continuity_correction, excess, reference_effects, group_columns(raw, group_by)
+    )
     families = _names_families(raw)
     if families:
         consume = False  # the single export at the end needs the cells
@@ -468,9 +526,7 @@ def audit_stream(
             rows = _rows_of(raw, start, stop, pieces[k] if pieces else None)
         if pieces:
             pieces[k] = None
-        part = _audit_part(
-            rows, start, chunk, ruleset, run, announce, apply_rules=not families
-        )
+        part = _audit_part(rows, start, chunk, ruleset, run, announce, apply_rules=not families)
         del rows
         if on_part is not None and not families:
             on_part(part.result(raw))
@@ -638,6 +694,7 @@ def audit_file(
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
     reference_effects: Any = REFERENCE_EFFECTS,
+    group_by: Any = (),
     progress: Progress | None = None,
 ) -> AuditResult:
     """Read and audit a spreadsheet or CSV file (keyword arguments as :func:`audit_table`)."""
@@ -654,6 +711,7 @@ def audit_file(
         excess_pooling=excess_pooling,
         excess_min_studies=excess_min_studies,
         reference_effects=reference_effects,
+        group_by=group_by,
         progress=progress,
     )
 
@@ -670,6 +728,7 @@ def stream_file(
     excess_pooling: str = "fixed",
     excess_min_studies: int = 5,
     reference_effects: Any = REFERENCE_EFFECTS,
+    group_by: Any = (),
     progress: Progress | None = None,
 ) -> AuditResult:
     """Read and audit a file as the command line does: each part of the studies is handed to
@@ -686,6 +745,7 @@ def stream_file(
         continuity_correction=continuity_correction,
         excess=excess,
         reference_effects=references,
+        group_by=group_by,
         progress=progress,
         on_part=on_part,
         consume=True,

@@ -119,7 +119,7 @@ class PlanInputs:
     @functools.cached_property
     def z_alpha(self) -> np.ndarray:
         """Critical value of the z test: ``z(1 − alpha / sides)``."""
-        return special.ndtri(1.0 - self.test.alpha / self.test.sides)
+        return -special.ndtri(self.test.alpha / self.test.sides)
 
     @functools.cached_property
     def z_power(self) -> np.ndarray:

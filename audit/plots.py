@@ -33,7 +33,17 @@ from audit.metrics import test_settings
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
 
-__all__ = ["PALETTE", "family_curves", "family_figures", "power_curves", "write_plots"]
+__all__ = [
+    "PALETTE",
+    "chosen_studies",
+    "curve_marks",
+    "family_curves",
+    "family_figures",
+    "portfolio_figures",
+    "power_curves",
+    "study_figure",
+    "write_plots",
+]
 
 #: The project's colours: planned design, realized design, markers, portfolio bars.
 PALETTE = {
@@ -153,7 +163,12 @@ def _margin_curves(design, rows, pos: np.ndarray, grid: int) -> dict[int, dict[s
     }
 
 
-def _choose(result: AuditResult, max_studies: int, study: str | Sequence[str] | None) -> np.ndarray:
+def chosen_studies(
+    result: AuditResult, max_studies: int, study: str | Sequence[str] | None = None
+) -> np.ndarray:
+    """Row positions of the studies whose figures are drawn, in input order: ``study`` (an id
+    or several) if given, else at most ``max_studies`` audited studies, those with the most
+    serious findings first."""
     audited = np.flatnonzero(result.valid)
     if study is not None:
         wanted = [study] if isinstance(study, str) else list(study)
@@ -202,100 +217,142 @@ def write_plots(
     import matplotlib.pyplot as plt
 
     written: list[Path] = []
-    positions = _choose(result, max_studies, study)
+    positions = chosen_studies(result, max_studies, study)
     curves = power_curves(result, positions)
-    table, metrics = result.table, result.metrics
+    ids = result.table["study_id"].to_numpy(dtype=object)
     for pos in positions:
-        c = curves.get(int(pos))
-        if c is None or not np.isfinite(c["realized"]).any():
+        fig = study_figure(result, int(pos), curves.get(int(pos)))
+        if fig is None:
             continue
-        row = table.iloc[pos]
-        design = design_of(table, pos)
-        fig, ax = plt.subplots(figsize=(6.4, 4.6), dpi=110)
-        _style(ax)
-        ax.plot(c["effect"], c["planned"], color=PALETTE["planned"], lw=2, label="as planned")
-        ax.plot(c["effect"], c["realized"], color=PALETTE["realized"], lw=2, label="as realized")
-        target = float(row["target_power"])
-        ax.axhline(target, color="#9A9A9A", lw=0.9, ls="-", zorder=0)
-        ax.text(
-            0.995,
-            target,
-            f"target {target:.0%}",
-            va="bottom",
-            ha="right",
-            fontsize=8,
-            color="#555555",
-            transform=ax.get_yaxis_transform(),
-        )
-        marks = [
-            (
-                design.planned_effect(table.iloc[[pos]])[0],
-                "planned effect",
-                PALETTE["planned_effect"],
-                "-",
-            ),
-            (metrics["mde"].iat[pos], "MDE (realized)", PALETTE["mde"], "--"),
-            (metrics["sesoi_used"].iat[pos], "SESOI", PALETTE["sesoi"], ":"),
-        ]
-        either = metrics["direction_used"].iat[pos] == "either"
-        if "margin_low" in c:
-            # A margin test: power against the true difference, the margin's edges marked.
-            truth = design.planned_effect(table.iloc[[pos]])[0]
-            none = float(design.from_analysis(np.zeros(1))[0])
-            marks = [
-                (truth if np.isfinite(truth) else none, "assumed true difference",
-                 PALETTE["planned_effect"], "-"),
-                (c["margin_low"], "margin", PALETTE["sesoi"], ":"),
-                (c["margin_high"], "margin", PALETTE["sesoi"], ":"),
-            ]  # fmt: skip
-            either = False
-        for x, label, colour, ls in marks:
-            if x is not None and np.isfinite(x):
-                ax.axvline(x, color=colour, lw=1.3, ls=ls, label=f"{label} = {x:.3g}")
-                if either and label != "planned effect":
-                    # Either way: the same magnitude on the other side of no effect.
-                    mirror = float(design.from_analysis(-design.to_analysis(np.array([x])))[0])
-                    ax.axvline(mirror, color=colour, lw=1.3, ls=ls)
-        achieved = metrics["power_at_planned_effect"].iat[pos]
-        if np.isfinite(achieved):
-            ax.plot([marks[0][0]], [achieved], "o", color=PALETTE["realized"], ms=6, zorder=5)
-            ax.annotate(
-                f"{achieved:.2f}",
-                (marks[0][0], achieved),
-                textcoords="offset points",
-                xytext=(6, -12),
-                fontsize=8,
-                color=PALETTE["realized"],
-            )
-        ax.set_ylim(0, 1.02)
-        hypothesis = row.get("hypothesis")
-        tested = (
-            f" ({str(hypothesis).replace('_', '-')} test)"
-            if hypothesis in hypotheses.MARGIN_HYPOTHESES
-            else ""
-        )
-        ax.set_xlabel(f"true effect: {design.effect_unit}{tested}")
-        ax.set_ylabel("design-based power")
-        title = str(row["study_id"])
-        if isinstance(row.get("title"), str):
-            title += " — " + textwrap.shorten(row["title"], width=64, placeholder="…")
-        ax.set_title(title, loc="left", fontsize=10)
-        ax.legend(
-            frameon=False, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=3
-        )
-        fig.tight_layout()
-        path = folder / f"study_{_safe_name(row['study_id'])}.{fmt}"
+        path = folder / f"study_{_safe_name(ids[pos])}.{fmt}"
         fig.savefig(path)
         plt.close(fig)
         written.append(path)
     if study is None:
-        written.extend(_portfolio_plots(result, folder, fmt, plt))
+        for name, fig in portfolio_figures(result):
+            path = folder / f"{name}.{fmt}"
+            fig.savefig(path)
+            plt.close(fig)
+            written.append(path)
         for name, fig in family_figures(result):
             path = folder / f"family_{_safe_name(name)}.{fmt}"
             fig.savefig(path)
             plt.close(fig)
             written.append(path)
     return written
+
+
+def study_figure(result: AuditResult, pos: int, curve: dict[str, np.ndarray] | None):
+    """The power-curve figure of the study at row position ``pos`` (its curve from
+    :func:`power_curves`), or None where the realized design has no power to draw. The caller
+    saves and closes it."""
+    if curve is None or not np.isfinite(curve["realized"]).any():
+        return None
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    c = curve
+    table, metrics = result.table, result.metrics
+    row = table.iloc[pos]
+    design = design_of(table, pos)
+    fig, ax = plt.subplots(figsize=(6.4, 4.6), dpi=110)
+    _style(ax)
+    ax.plot(c["effect"], c["planned"], color=PALETTE["planned"], lw=2, label="as planned")
+    ax.plot(c["effect"], c["realized"], color=PALETTE["realized"], lw=2, label="as realized")
+    target = float(row["target_power"])
+    ax.axhline(target, color="#9A9A9A", lw=0.9, ls="-", zorder=0)
+    ax.text(
+        0.995,
+        target,
+        f"target {target:.0%}",
+        va="bottom",
+        ha="right",
+        fontsize=8,
+        color="#555555",
+        transform=ax.get_yaxis_transform(),
+    )
+    styles = {"planned_effect": "-", "mde": "--", "sesoi": ":"}
+    marks = curve_marks(result, pos)
+    for mark in marks:
+        kind, x = mark["kind"], mark["x"]
+        colour = PALETTE[kind]
+        ax.axvline(x, color=colour, lw=1.3, ls=styles[kind], label=f"{mark['label']} = {x:.3g}")
+        if mark["mirror"] is not None:
+            ax.axvline(mark["mirror"], color=colour, lw=1.3, ls=styles[kind])
+    achieved = metrics["power_at_planned_effect"].iat[pos]
+    planned = [m["x"] for m in marks if m["kind"] == "planned_effect"]
+    if np.isfinite(achieved) and planned:
+        ax.plot(planned, [achieved], "o", color=PALETTE["realized"], ms=6, zorder=5)
+        ax.annotate(
+            f"{achieved:.2f}",
+            (planned[0], achieved),
+            textcoords="offset points",
+            xytext=(6, -12),
+            fontsize=8,
+            color=PALETTE["realized"],
+        )
+    ax.set_ylim(0, 1.02)
+    hypothesis = row.get("hypothesis")
+    tested = (
+        f" ({str(hypothesis).replace('_', '-')} test)"
+        if hypothesis in hypotheses.MARGIN_HYPOTHESES
+        else ""
+    )
+    ax.set_xlabel(f"true effect: {design.effect_unit}{tested}")
+    ax.set_ylabel("design-based power")
+    title = str(row["study_id"])
+    if isinstance(row.get("title"), str):
+        title += " — " + textwrap.shorten(row["title"], width=64, placeholder="…")
+    ax.set_title(title, loc="left", fontsize=10)
+    ax.legend(frameon=False, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=3)
+    fig.tight_layout()
+    return fig
+
+
+def curve_marks(result: AuditResult, pos: int) -> list[dict[str, object]]:
+    """The effects marked on a study's power curve: ``kind`` (``planned_effect``, ``mde``,
+    ``sesoi``), ``label``, ``x`` (effect units) and ``mirror``, the same magnitude on the other
+    side of no effect for a study that looked either way (None otherwise; never for the
+    planned effect). Marks that are not known are left out."""
+    table, metrics = result.table, result.metrics
+    design = design_of(table, pos)
+    rows = table.iloc[[pos]]
+    if hypotheses.margin_rows(rows)[0]:
+        return _margin_marks(design, rows)
+    either = metrics["direction_used"].iat[pos] == "either"
+    out: list[dict[str, object]] = []
+    for kind, label, x in (
+        ("planned_effect", "planned effect", design.planned_effect(table.iloc[[pos]])[0]),
+        ("mde", "MDE (realized)", metrics["mde"].iat[pos]),
+        ("sesoi", "SESOI", metrics["sesoi_used"].iat[pos]),
+    ):
+        if x is None or not np.isfinite(x):
+            continue
+        mirror = None
+        if either and kind != "planned_effect":
+            mirror = float(design.from_analysis(-design.to_analysis(np.array([x])))[0])
+        out.append({"kind": kind, "label": label, "x": float(x), "mirror": mirror})
+    return out
+
+
+def _margin_marks(design, rows) -> list[dict[str, object]]:  # type: ignore[no-untyped-def]
+    """A non-inferiority or equivalence study's marks: the assumed true difference (no
+    difference where the row gives none) and the margin's edges, drawn as the SESOI is."""
+    mt = hypotheses.margin_test(design, rows, test_settings(rows, design))
+    low, high = hypotheses.margin_bounds(design, mt)
+    truth = design.planned_effect(rows)[0]
+    if not np.isfinite(truth):
+        truth = design.from_analysis(np.zeros(1))[0]
+    out: list[dict[str, object]] = [
+        {"kind": "planned_effect", "label": "assumed true difference", "x": float(truth),
+         "mirror": None},
+    ]  # fmt: skip
+    for edge in (low[0], high[0]):
+        if edge is not None and np.isfinite(edge):
+            out.append({"kind": "sesoi", "label": "margin", "x": float(edge), "mirror": None})
+    return out
 
 
 def family_curves(
@@ -389,7 +446,14 @@ def family_figures(result: AuditResult, grid: int = _GRID) -> list[tuple[str, ob
     return out
 
 
-def _portfolio_plots(result: AuditResult, folder: Path, fmt: str, plt) -> list[Path]:
+def portfolio_figures(result: AuditResult) -> list[tuple[str, object]]:
+    """The portfolio figures, ``(name, figure)``: ``portfolio_power`` (the spread of
+    design-based power) and ``portfolio_mde`` (standardized MDE against size), where there is
+    something to draw. The caller saves and closes them."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
     from matplotlib.ticker import FuncFormatter
 
     from audit.portfolio import power_by_basis
@@ -444,10 +508,7 @@ def _portfolio_plots(result: AuditResult, folder: Path, fmt: str, plt) -> list[P
         ax.set_title(title, loc="left", fontsize=10)
         ax.legend(frameon=False, fontsize=7 if not only_planned else 8)
         fig.tight_layout()
-        path = folder / f"portfolio_power.{fmt}"
-        fig.savefig(path)
-        plt.close(fig)
-        written.append(path)
+        written.append(("portfolio_power", fig))
     table = result.table
     mde_std = np.abs(metrics["mde_std"].to_numpy(dtype=float))
     size = np.nansum(
@@ -480,8 +541,5 @@ def _portfolio_plots(result: AuditResult, folder: Path, fmt: str, plt) -> list[P
         ax.set_title("What each study could detect, by size", loc="left", fontsize=10)
         ax.legend(frameon=False, fontsize=7, ncol=2)
         fig.tight_layout()
-        path = folder / f"portfolio_mde.{fmt}"
-        fig.savefig(path)
-        plt.close(fig)
-        written.append(path)
+        written.append(("portfolio_mde", fig))
     return written

@@ -13,7 +13,16 @@ from audit.designs._base import _margin_rows
 from audit.designs._power import t_power
 from audit.excess import deficit_p_value, excess_significance_test
 
-__all__ = ["EXCESS_DEFAULTS", "ExcessSettings", "excess_significance", "portfolio_summary"]
+__all__ = [
+    "BLANK_GROUP",
+    "EXCESS_DEFAULTS",
+    "MAX_GROUPS",
+    "ExcessSettings",
+    "excess_significance",
+    "group_labels",
+    "group_summaries",
+    "portfolio_summary",
+]
 
 
 @dataclass(frozen=True)
@@ -617,25 +626,10 @@ def excess_significance(
     sig = metrics["result_significant"].to_numpy(dtype=float)
     with_result = valid & np.isfinite(sig)
     extra: dict[str, Any] = {}
-    if settings.basis == "planned":
-        power = metrics["power_at_planned_effect"].to_numpy(dtype=float)
-        basis = (
-            "planned effect: each study's design-based power at its planned effect, with the "
-            "realized design"
-        )
-    else:
-        power = metrics["power_at_pooled_effect"].to_numpy(dtype=float)
+    power, basis = _excess_power(metrics, settings)
+    if settings.basis != "planned":
         if pool is None:
             pool = pool_families(table, metrics, valid, settings.pooling)
-        kind = (
-            "fixed-effect (inverse-variance)"
-            if settings.pooling == "fixed"
-            else "random-effects (Paule-Mandel)"
-        )
-        basis = (
-            f"pooled estimate: each study's design-based power at the {kind} pooled estimate of "
-            "its outcome_family (analysis scale)"
-        )
         families = {
             name: {
                 "studies": block["results_pooled"],
@@ -657,6 +651,24 @@ def excess_significance(
     if block is not None:
         block.update(extra)
     return block, note
+
+
+def _excess_power(metrics: pd.DataFrame, settings: ExcessSettings) -> tuple[np.ndarray, str]:
+    """Each study's power at the basis of the excess-significance test, and the basis in words."""
+    if settings.basis == "planned":
+        return metrics["power_at_planned_effect"].to_numpy(dtype=float), (
+            "planned effect: each study's design-based power at its planned effect, with the "
+            "realized design"
+        )
+    kind = (
+        "fixed-effect (inverse-variance)"
+        if settings.pooling == "fixed"
+        else "random-effects (Paule-Mandel)"
+    )
+    return metrics["power_at_pooled_effect"].to_numpy(dtype=float), (
+        f"pooled estimate: each study's design-based power at the {kind} pooled estimate of "
+        "its outcome_family (analysis scale)"
+    )
 
 
 def excess_block(
@@ -791,3 +803,126 @@ def power_by_basis(metrics: pd.DataFrame, valid: np.ndarray) -> tuple[np.ndarray
         power[take] = values[take]
         basis[take] = name
     return power, basis, key
+
+
+#: Most distinct values a ``--group-by`` column may hold: a summary per value of a column that
+#: is nearly unique (an id, a title) summarises nothing, and the report would list them all.
+MAX_GROUPS = 1000
+#: The group of the rows that leave a ``--group-by`` column blank.
+BLANK_GROUP = "(blank)"
+
+
+def group_labels(values: np.ndarray | pd.Series) -> np.ndarray:
+    """Each cell's group: its text without surrounding spaces, a whole number written as one
+    (``2019.0`` from a spreadsheet is the group ``2019``, as ``"2019"`` in a CSV file is), and
+    :data:`BLANK_GROUP` for a blank cell.
+
+    >>> cells = np.array([" north ", 2019.0, "2019", None, float("nan"), "", 0.5], dtype=object)
+    >>> group_labels(cells).tolist()
+    ['north', '2019', '2019', '(blank)', '(blank)', '(blank)', '0.5']
+    """
+    cells = pd.Series(np.asarray(values, dtype=object), dtype=object)
+    codes, uniques = pd.factorize(cells, use_na_sentinel=True)
+    labels = []
+    for v in uniques.tolist():  # once per distinct value, not per row
+        if isinstance(v, (float, np.floating)) and np.isfinite(v) and float(v).is_integer():
+            v = int(v)
+        text = format(v, ".15g") if isinstance(v, (float, np.floating)) else str(v)
+        labels.append(text.strip() or BLANK_GROUP)
+    out = np.empty(len(labels) + 1, dtype=object)
+    out[:-1] = labels
+    out[-1] = BLANK_GROUP
+    return out[codes]
+
+
+def group_summaries(
+    table: pd.DataFrame,
+    metrics: pd.DataFrame,
+    valid: np.ndarray,
+    findings: pd.DataFrame,
+    columns: list[str],
+    excess: ExcessSettings = EXCESS_DEFAULTS,
+) -> dict[str, dict[str, dict[str, Any]]]:
+    """The portfolio summary per value of each column of ``columns`` (``--group-by``):
+    ``{column: {value: summary}}``, the values in sorted order, :data:`BLANK_GROUP` last.
+
+    Each summary holds, over the group's rows, the portfolio's own keys (the same functions
+    compute them): ``studies``, ``audited``, ``invalid``, ``studies_with_power``,
+    ``median_power_at_planned_effect``, ``share_at_target_power``, ``median_mde_std`` (per
+    design), ``flag_counts``, ``studies_by_worst_finding``, ``ci_verdict_counts``, and the
+    group's own test of excess significance on the run's basis (``excess_significance``, or
+    None and ``excess_significance_note``). Pooled powers are those of the whole table: a
+    family is pooled over all its studies, whichever group they are in.
+    """
+    n = len(table)
+    power = metrics["power_at_planned_effect"].to_numpy(dtype=float)
+    target = table["target_power"].to_numpy(dtype=float)
+    designs = table["design"].to_numpy(dtype=object)
+    mde_std = metrics["mde_std"].to_numpy(dtype=float)
+    verdicts = (
+        metrics["ci_verdict"].to_numpy(dtype=object)
+        if "ci_verdict" in metrics
+        else np.full(n, None, dtype=object)
+    )
+    sig = metrics["result_significant"].to_numpy(dtype=float)
+    basis_power, basis = _excess_power(metrics, excess)
+    rank = {s: i for i, s in enumerate(_WORST_FIRST)}
+    worst = np.full(n, len(_WORST_FIRST))
+    finding_pos = findings["pos"].to_numpy(dtype=int) if len(findings) else np.zeros(0, int)
+    if len(findings):
+        np.minimum.at(worst, finding_pos, findings["severity"].map(rank).to_numpy(dtype=int))
+    rules = findings["rule"].to_numpy(dtype=object) if len(findings) else np.zeros(0, object)
+    out: dict[str, dict[str, dict[str, Any]]] = {}
+    for column in columns:
+        labels = group_labels(table[column].to_numpy(dtype=object))
+        names = sorted(set(labels.tolist()) - {BLANK_GROUP}) + (
+            [BLANK_GROUP] if (labels == BLANK_GROUP).any() else []
+        )
+        codes = pd.Categorical(labels, categories=names).codes
+        # Rows (and findings) sorted by group once; each group is then a slice.
+        order = np.argsort(codes, kind="stable")
+        ends = np.cumsum(np.bincount(codes, minlength=len(names)))
+        f_codes = codes[finding_pos]
+        f_order = np.argsort(f_codes, kind="stable")
+        f_ends = np.cumsum(np.bincount(f_codes, minlength=len(names)))
+        blocks: dict[str, dict[str, Any]] = {}
+        for g, name in enumerate(names):
+            pos = order[(ends[g - 1] if g else 0) : ends[g]]
+            ok = pos[valid[pos]]
+            spread = power_distribution(power[ok], target[ok])
+            mde = mde_std_distribution(designs[ok], mde_std[ok])
+            mine = f_order[(f_ends[g - 1] if g else 0) : f_ends[g]]
+            rule_ids, counts = np.unique(rules[mine].astype(str), return_counts=True)
+            verdict_ids, verdict_counts = np.unique(
+                [v for v in verdicts[ok].tolist() if isinstance(v, str)], return_counts=True
+            )
+            test, note = excess_block(
+                sig[ok] == 1.0,
+                basis_power[ok],
+                np.isfinite(sig[ok]),
+                method=excess.method,
+                min_studies=excess.min_studies,
+                basis=basis,
+            )
+            by_worst = {s: int((worst[ok] == i).sum()) for i, s in enumerate(_WORST_FIRST)}
+            by_worst["none"] = int((worst[ok] == len(_WORST_FIRST)).sum())
+            blocks[name] = {
+                "studies": len(pos),
+                "audited": len(ok),
+                "invalid": len(pos) - len(ok),
+                "studies_with_power": spread["studies"],
+                "median_power_at_planned_effect": _median(pd.Series(power[ok])),
+                "share_at_target_power": (
+                    spread["at_target"] / spread["studies"] if spread["studies"] else None
+                ),
+                "median_mde_std": {k: d["median"] for k, d in mde.items()},
+                "flag_counts": {str(r): int(c) for r, c in zip(rule_ids, counts, strict=True)},
+                "studies_by_worst_finding": by_worst,
+                "ci_verdict_counts": {
+                    str(v): int(c) for v, c in zip(verdict_ids, verdict_counts, strict=True)
+                },
+                "excess_significance": test,
+                "excess_significance_note": note,
+            }
+        out[column] = blocks
+    return out

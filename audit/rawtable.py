@@ -15,11 +15,13 @@ import pandas as pd
 __all__ = [
     "HEADER_SEARCH_ROWS",
     "MAX_ARCHIVE_MEMBERS",
+    "MAX_CELL_CHARS",
     "MAX_COLUMNS",
     "MAX_FILE_BYTES",
     "MAX_PACKING_RATIO",
     "MAX_ROWS",
     "MAX_UNPACKED_BYTES",
+    "SHEET_ROWS",
     "UNCACHED",
     "RawTable",
     "Sheet",
@@ -40,6 +42,13 @@ MAX_UNPACKED_BYTES = 2**30
 MAX_PACKING_RATIO = 100
 #: Most parts (files) a workbook archive may hold.
 MAX_ARCHIVE_MEMBERS = 10_000
+#: Most rows a worksheet can have (Excel's own limit): a row number beyond it is a crafted file.
+SHEET_ROWS = 1_048_576
+#: Longest text one cell may hold, in characters (Excel's limit for a cell). A longer cell is
+#: refused with the file: no spreadsheet program writes one, and a long text repeated by
+#: reference (a shared string) would multiply in every export.
+MAX_CELL_CHARS = 32_767
+
 #: The header row is looked for among this many non-blank rows at the top of a sheet.
 HEADER_SEARCH_ROWS = 20
 
@@ -125,6 +134,20 @@ def too_many_columns(source: object, count: int) -> str:
     return (
         f"{source}: the table has {count:,} columns, more than the limit of {MAX_COLUMNS:,}; "
         "remove unused columns."
+    )
+
+
+def too_far_down(source: object, number: int) -> str:
+    return (
+        f"{source}: the worksheet has a row numbered {number:,}, beyond the {SHEET_ROWS:,} rows "
+        "a worksheet can have; the file is damaged or was not written by a spreadsheet program."
+    )
+
+
+def cell_too_long(source: object, where: str, length: int) -> str:
+    return (
+        f"{source}: {where} holds {length:,} characters, more than the limit of "
+        f"{MAX_CELL_CHARS:,} (a spreadsheet cell's maximum); shorten that cell."
     )
 
 

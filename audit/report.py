@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -26,8 +26,10 @@ from rich.theme import Theme
 from audit._format import format_number
 from audit.designs import design_of
 from audit.metrics import METRICS, REFERENCE_PREFIX
+from audit.portfolio import BLANK_GROUP
 from audit.rules import CONTRACT_METRICS, SEVERITIES, SEVERITY_RANK, Rule, RuleSet, known_columns
 from audit.schema import COLUMNS
+from audit.terminal import clean, clean_frame, clean_value
 
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
@@ -78,7 +80,8 @@ NARROW = 80
 
 def make_console(*, stderr: bool = False) -> Console:
     """The console the command line prints to (honours ``NO_COLOR`` and the terminal width)."""
-    return Console(theme=THEME, stderr=stderr, highlight=False)
+    # No markup: user values (a title such as "[/]" or "[link=...]") are shown as written.
+    return Console(theme=THEME, stderr=stderr, highlight=False, markup=False)
 
 
 def _severity(severity: str) -> Text:
@@ -671,8 +674,11 @@ def _render_families(view: Overview, console: Console, references: str) -> None:
         console.print(Padding(table, (0, 0, 0, 3)))
     if len(view.families) > len(shown):
         console.print(
-            f"[audit.muted]   {len(view.families) - len(shown):,} more families are not listed; "
-            "the JSON export (portfolio.families) holds them all.[/]"
+            Text(
+                f"   {len(view.families) - len(shown):,} more families are not listed; "
+                "the JSON export (portfolio.families) holds them all.",
+                style="audit.muted",
+            )
         )
     console.print(
         Padding(
@@ -735,8 +741,11 @@ def _render_flagged(view: Overview, console: Console) -> None:
         console.print(table)
     if view.flagged_total > shown:
         console.print(
-            f"[audit.muted] {view.flagged_total - shown:,} more studies with findings are not "
-            "listed; the --json and --csv exports hold every study.[/]"
+            Text(
+                f" {view.flagged_total - shown:,} more studies with findings are not "
+                "listed; the --json and --csv exports hold every study.",
+                style="audit.muted",
+            )
         )
     if view.clean_total:
         more = (
@@ -785,8 +794,11 @@ def _render_invalid(view: Overview, console: Console) -> None:
     console.print(Padding(table, (0, 0, 0, 1)))
     if view.invalid > len(view.invalid_rows):
         console.print(
-            f"[audit.muted] {view.invalid - len(view.invalid_rows):,} more rows not audited; "
-            "the exports list them all with their errors.[/]"
+            Text(
+                f" {view.invalid - len(view.invalid_rows):,} more rows not audited; "
+                "the exports list them all with their errors.",
+                style="audit.muted",
+            )
         )
 
 
@@ -809,6 +821,66 @@ def _render_problems(view: Overview, console: Console) -> None:
         )
 
 
+def _render_groups(result: AuditResult, console: Console) -> None:
+    """The portfolio summary per value of each ``--group-by`` column (``result.groups``, from
+    :func:`audit.portfolio.group_summaries`): one line per value, at most ``MAX_LISTED``."""
+    headers = dict(zip(result.groups, result.settings.get("group_by", []), strict=False))
+    for column, groups in result.groups.items():
+        _section(console, f"By {headers.get(column, column)} ({_plural(len(groups), 'group')})")
+        table = Table(box=None, padding=(0, 1), pad_edge=False, header_style="audit.label")
+        longest = max((len(v) for v in groups), default=1)
+        table.add_column(headers.get(column, column), overflow="fold", min_width=min(longest, 26))
+        for name in ("studies", "audited", "power", "at target", "serious", "warning"):
+            table.add_column(name, justify="right", no_wrap=True)
+        tested = []
+        for value, g in list(groups.items())[:MAX_LISTED]:
+            excess = g.get("excess_significance")
+            worst = g["studies_by_worst_finding"]
+            median = g["median_power_at_planned_effect"]
+            table.add_row(
+                Text(value, style="audit.muted" if value == BLANK_GROUP else ""),
+                f"{g['studies']:,}",
+                f"{g['audited']:,}",
+                "-" if median is None else f"{median:.2f}",
+                _pct(g["share_at_target_power"]),
+                f"{worst['serious']:,}",
+                f"{worst['warning']:,}",
+            )
+            if excess:
+                tested.append(
+                    f"{value}: {_plural(excess['observed'], 'significant result')} against "
+                    f"{excess['expected']:.1f} expected, one-sided p = "
+                    f"{format_number(excess['p_value'])}"
+                )
+        console.print(Padding(table, (0, 0, 0, 1)))
+        if len(groups) > MAX_LISTED:
+            console.print(
+                Padding(
+                    Text(
+                        f"{len(groups) - MAX_LISTED:,} more groups in the JSON, HTML and "
+                        "workbook exports",
+                        "audit.muted",
+                    ),
+                    (0, 1, 0, 1),
+                )
+            )
+        if tested:
+            console.print(
+                Padding("excess significance within a group: " + "; ".join(tested), (0, 1, 0, 1))
+            )
+        console.print(
+            Padding(
+                Text(
+                    "power: median design-based power at the planned effect; at target: share "
+                    "of those studies at their own target; serious / warning: audited studies "
+                    "by their most severe finding",
+                    "audit.muted",
+                ),
+                (0, 1, 0, 1),
+            )
+        )
+
+
 def _render_caveats(result: AuditResult, console: Console) -> None:
     """The closing section: the caveats that apply to this audit (see :mod:`audit.caveats`)."""
     _section(console, "Reading these results")
@@ -822,6 +894,32 @@ def _render_caveats(result: AuditResult, console: Console) -> None:
         )
 
 
+def terminal_safe(result: AuditResult) -> AuditResult:
+    """A copy of ``result`` whose user values (cells, errors, notes, messages, settings, rule
+    texts) hold no escape sequence or control character (:mod:`audit.terminal`), for the
+    renderers that print to a terminal. The frames are copied only where a column needs it."""
+    return replace(
+        result,
+        table=clean_frame(result.table),
+        errors=clean_frame(result.errors),
+        notes=clean_frame(result.notes),
+        findings=clean_frame(result.findings),
+        rule_problems=clean_frame(result.rule_problems),
+        portfolio=clean_value(result.portfolio),
+        settings=clean_value(result.settings),
+        rules=[_safe_rule(r) for r in result.rules],
+    )
+
+
+def _safe_rule(rule: Rule) -> Rule:
+    texts = {"title": rule.title, "rationale": rule.rationale, "source": rule.source}
+    cleaned = {k: clean_value(v) for k, v in texts.items()}
+    references = clean_value(rule.references)
+    if cleaned == texts and references == rule.references:
+        return rule
+    return replace(rule, references=references, **cleaned)
+
+
 def render_report(
     result: AuditResult,
     console: Console,
@@ -830,11 +928,13 @@ def render_report(
     limit: int = MAX_LISTED,
 ) -> None:
     """The full report: header, portfolio, studies with findings, rows not audited, caveats."""
+    result = terminal_safe(result)
     view = build_overview(result, limit=limit)
     _render_header(view, console, fail_on)
     _render_portfolio(view, console)
     effects = result.settings.get("reference_effects") or []
     _render_families(view, console, "/".join(f"{e:g}" for e in effects) or "reference")
+    _render_groups(result, console)
     _render_problems(view, console)
     _render_flagged(view, console)
     _render_invalid(view, console)
@@ -943,6 +1043,7 @@ def _not_applicable(result: AuditResult, pos: int) -> set[str]:
 def render_study(result: AuditResult, console: Console, positions: Sequence[int]) -> None:
     """One study in depth: planned versus realized, every metric with its meaning, each finding
     with its rationale, and the notes on what could not be computed."""
+    result = terminal_safe(result)
     rules = {r.id: r for r in result.rules}
     meanings = {**known_columns(), **CONTRACT_METRICS, **METRICS}
     errors = result.error_texts()
@@ -1085,7 +1186,11 @@ def _rule_state(rule: Rule) -> str:
     if not rule.enabled:
         return "switched off"
     missing = rule.missing(known_columns().keys() - CONTRACT_METRICS.keys() | METRICS.keys())
-    return "waits for " + ", ".join(missing) if missing else "active"
+    own = rule.own_columns()
+    state = "waits for " + ", ".join(missing) if missing else "active"
+    if own:
+        state += "; reads the file's own column " + ", ".join(own)
+    return state
 
 
 def _source_label(source: str) -> str:
@@ -1104,7 +1209,7 @@ def render_rules(ruleset: RuleSet, console: Console) -> None:
     table.add_column("rule", no_wrap=True, style="audit.rule_id")
     table.add_column("severity", no_wrap=True)
     table.add_column("flags a study when")
-    for rule in ruleset.rules.values():
+    for rule in map(_safe_rule, ruleset.rules.values()):
         state = _rule_state(rule)
         what = Text(rule.title)
         if state != "active":
@@ -1112,18 +1217,22 @@ def render_rules(ruleset: RuleSet, console: Console) -> None:
         table.add_row(rule.id, _severity(rule.severity), what)
     console.print(table)
     console.print(
-        "[audit.muted]study-audit rules ID shows a rule in full: its condition, parameters, "
-        "rationale and references.[/]"
+        Text(
+            "study-audit rules ID shows a rule in full: its condition, parameters, "
+            "rationale and references.",
+            style="audit.muted",
+        )
     )
 
 
 def render_rule(rule: Rule, console: Console) -> None:
     """One rule in full: its definition is its documentation."""
+    rule = _safe_rule(rule)
     console.print(Text.assemble((rule.id, "audit.title"), "  ", _severity(rule.severity)))
     console.print(rule.title)
     grid = _grid()
     grid.add_row("flags when", rule.condition_text())
-    grid.add_row("message", rule.message.text)
+    grid.add_row("message", Text(clean(rule.message.text)))
     if rule.supersedes:
         grid.add_row("replaces", ", ".join(rule.supersedes) + " on the studies it flags")
     grid.add_row("state", _rule_state(rule))
@@ -1139,7 +1248,9 @@ def render_rule(rule: Rule, console: Console) -> None:
         params.add_column("allowed", no_wrap=True)
         params.add_column("meaning")
         for p in rule.parameters.values():
-            params.add_row(p.name, format_number(p.value), f"{p.low:g} – {p.high:g}", p.meaning)
+            params.add_row(
+                p.name, format_number(p.value), f"{p.low:g} – {p.high:g}", Text(clean(p.meaning))
+            )
         console.print(Padding(params, (0, 0, 0, 1)))
     else:
         console.print(" none")

@@ -21,6 +21,7 @@ from audit.designs import Design, design_of
 from audit.designs.means import standardized_rows
 from audit.errors import ConfigError
 from audit.metrics import directed_mde, test_settings
+from audit.terminal import clean
 
 if TYPE_CHECKING:
     from audit.pipeline import AuditResult
@@ -442,7 +443,9 @@ def _assemble(heading: str, paragraphs: list[str], refs: list[str], row) -> str:
         "against the analysis actually reported. It supports, and does not replace, the "
         "judgment of a qualified statistician._"
     )
-    return "\n".join(out) + "\n"
+    # The draft is shown in a terminal or pasted into a letter: no user value in it carries an
+    # escape sequence or a control character (audit.terminal).
+    return clean("\n".join(out)) + "\n"
 
 
 def _margin_paragraphs(

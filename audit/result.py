@@ -38,6 +38,8 @@ class AuditResult:
     rules_judged : rule id -> audited rows its condition could judge (true or false).
     caveats : plain-language caveats that apply (``topic``, ``title``, ``text``), for the
         report's caveats section.
+    groups : ``{column: {value: summary}}``, the portfolio summary per value of each
+        ``group_by`` column (see :func:`audit.portfolio.group_summaries`); empty without one.
     """
 
     table: pd.DataFrame
@@ -57,6 +59,7 @@ class AuditResult:
     caveats: list[dict[str, str]] = field(default_factory=list)
     #: rule id -> audited rows on which the rule's condition was known (true or false).
     rules_judged: dict[str, int] = field(default_factory=dict)
+    groups: dict[str, dict[str, dict[str, Any]]] = field(default_factory=dict)
 
     @property
     def valid(self) -> np.ndarray:

@@ -258,7 +258,7 @@ def sign_and_magnitude_errors(
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         lam = np.where(se > 0, effect / se, np.nan)
         lam = np.where(lam == 0, np.nan, lam)
-        c = special.ndtri(1.0 - alpha / sides)
+        c = -special.ndtri(alpha / sides)
         two = sides == 2
         mag = np.abs(lam)
         # Two-sided: by symmetry work with |lam|; "lo" is the wrong-sign rejection region.

@@ -21,13 +21,20 @@ A rule file holds new rules as ``[[rule]]`` tables and changes to existing rules
     severity = "serious"
     sesoi_multiple = 1.5                      # a parameter, by name
 
-Conditions are data, never code: a *test* names a ``column`` (a metric or an input column) and
+Conditions are data, never code: a *test* names a ``column`` (a metric, an input column of the
+contract, or one of the file's own columns, such as ``study_type``) and
 one comparison — ``below``, ``at_most``, ``above``, ``at_least`` (against a number, a parameter
 or another column; optionally ``magnitude = true`` to compare absolute values, ``factor`` to
 multiply the threshold, ``margin`` to move it away from the column's value), ``is`` (text, or a
 list of texts) or ``blank`` (true/false) — and tests combine with ``all``, ``any`` and ``not``.
 Logic is three-valued: a comparison with a blank value is *unknown*, never true, and ``not``
 keeps it unknown, so a blank cell never raises a flag by accident.
+
+A rule (or an override) may add an exemption, ``unless = { column = "study_type", is = "pilot" }``:
+the rule then raises no flag where that condition is true; a blank or unknown exemption does not
+exempt. A condition naming a column that is neither a contract column nor a metric names one of
+the file's own columns: a file without it is a configuration error naming the column (the rule
+would otherwise be judged on nothing), never a rule that silently does not fire.
 
 Message templates quote columns and parameters as ``{name}`` (3 significant digits) or
 ``{name:spec}`` with a Python format specification (``{n_ratio:.0%}``). A rule that names a
@@ -52,6 +59,7 @@ import pandas as pd
 from audit._format import format_number
 from audit.errors import ConfigError
 from audit.metrics import METRICS, TEXT_METRICS
+from audit.rawtable import normalise_header
 from audit.schema import COLUMNS
 
 __all__ = [
@@ -93,6 +101,10 @@ TEXT_COLUMNS = frozenset(
 _ID = re.compile(r"^[a-z][a-z0-9]*(?:-[a-z0-9]+)+$")
 _NAME = re.compile(r"^[a-z][a-z0-9_]*$")
 _FIELD = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)(?::([^{}]*))?\}")
+#: Largest width or precision a message field may ask for (``{n_ratio:>12.3f}``): a message
+#: is a sentence, and ``{n_ratio:>2000000000}`` would write two gigabytes per finding.
+MAX_FORMAT_WIDTH = 100
+_SPEC_NUMBER = re.compile(r"\d+")
 _NUMERIC_OPS = {"below": "<", "at_most": "≤", "above": ">", "at_least": "≥"}
 _RULE_KEYS = {
     "id": "kebab-case identifier that says what the rule flags",
@@ -103,9 +115,9 @@ _RULE_KEYS = {
     "rationale": "a paragraph: why the finding matters and where the threshold comes from",
     "references": "list of references (may be empty in a user's own rule)",
 }
-_RULE_OPTIONAL = {"parameters", "supersedes", "enabled"}
+_RULE_OPTIONAL = {"parameters", "supersedes", "enabled", "unless"}
 _PARAMETER_KEYS = {"value", "range", "meaning"}
-_OVERRIDE_RESERVED = {"severity", "enabled"}
+_OVERRIDE_RESERVED = {"severity", "enabled", "unless"}
 
 
 def known_columns() -> dict[str, str]:
@@ -114,6 +126,9 @@ def known_columns() -> dict[str, str]:
     names.update(CONTRACT_METRICS)
     names.update(METRICS)
     return names
+
+
+_KNOWN = known_columns()
 
 
 def _suggest(name: str, valid: Iterable[str]) -> str:
@@ -145,8 +160,11 @@ class _Data:
             values = self.raw(name)
             if values.dtype.kind in "fiub":
                 out = values.astype(float)
-            else:  # text-typed columns ('sides' is "1"/"2"); anything not a number is blank
-                out = pd.to_numeric(pd.Series(values), errors="coerce").to_numpy(dtype=float)
+            else:
+                # Text-typed columns ('sides' is "1"/"2", a file's own column as written):
+                # plain numbers, trimmed; anything else is blank (the test is unknown).
+                text = pd.Series(values, dtype=object).str.strip()
+                out = pd.to_numeric(text, errors="coerce").to_numpy(dtype=float)
             self._numeric[name] = out
         return self._numeric[name]
 
@@ -580,10 +598,33 @@ class Rule:
     enabled: bool = True
     source: str = ""
     overridden_by: tuple[str, ...] = ()
+    #: Exemption: no flag where this condition is true (a blank or unknown one does not exempt).
+    unless: Condition | None = None
 
     def condition_text(self) -> str:
         """The condition in words, with parameter names as written in the rule."""
-        return self.when.describe(set(self.parameters))
+        text = self.when.describe(set(self.parameters))
+        if self.unless is not None:
+            text += f", unless {self.unless.describe(set(self.parameters))}"
+        return text
+
+    def evaluate(self, data: _Data) -> Truth:
+        """Rows where the rule fires (true), where it does not (false); others are unknown.
+
+        An exempt row (``unless`` true) is false: judged, and not flagged. An unknown
+        exemption leaves the rule's own condition in force, so a blank cell never exempts.
+        """
+        params = self.param_values()
+        true, false = self.when.evaluate(data, params)
+        if self.unless is not None:
+            exempt, _ = self.unless.evaluate(data, params)
+            true, false = true & ~exempt, false | exempt
+        return true, false
+
+    def own_columns(self) -> list[str]:
+        """The file's own columns the rule reads (names that are no contract column or
+        metric), in name order."""
+        return sorted(c for c in self.columns() if c not in _KNOWN)
 
     def param_values(self) -> dict[str, float]:
         return {name: p.value for name, p in self.parameters.items()}
@@ -606,12 +647,16 @@ class Rule:
 
     def columns(self) -> set[str]:
         """Columns (metrics or inputs) the rule reads, in its condition or its message."""
-        return (self.when.names() | self.message.names()) - set(self.parameters)
+        names = self.when.names() | self.message.names()
+        if self.unless is not None:
+            names |= self.unless.names()
+        return names - set(self.parameters)
 
     def missing(self, available: Iterable[str]) -> list[str]:
-        """Columns the rule needs that are not among ``available`` (it waits for them)."""
+        """Columns the rule needs that are not among ``available`` (it waits for them); the
+        file's own columns are not waited for (a file without them is an error)."""
         have = set(available)
-        return sorted(c for c in self.columns() if c not in have)
+        return sorted(c for c in self.columns() if c not in have and c in _KNOWN)
 
 
 @dataclass
@@ -664,13 +709,19 @@ class _Parser:
         self.columns = known_columns()
 
     def column(self, name: Any) -> str:
+        """A column the rule reads: a contract column or metric, else one of the file's own
+        columns (checked against the file when the rule is applied)."""
         _expect(str, name, self.where, "'column'")
-        if name not in self.columns:
+        if name in self.columns:
+            return name
+        own = normalise_header(name)
+        if not own or not _NAME.match(own):
             raise ConfigError(
-                f"{self.where}: unknown column '{name}'{_suggest(name, self.columns)}; rules can "
-                "test the input columns and metrics listed in DEVELOPERS.md."
+                f"{self.where}: column '{name}' is neither an input column, a metric nor a "
+                "usable name for a column of the file (letters, digits and underscores, "
+                f"starting with a letter){_suggest(name, self.columns)}."
             )
-        return name
+        return own
 
     def ref(self, value: Any, key: str) -> float | str:
         if isinstance(value, bool):
@@ -727,8 +778,9 @@ class _Parser:
             )
         if op == "blank":
             return Blank(column, _expect(bool, spec["blank"], self.where, "'blank'"))
+        own = column not in self.columns
         if op == "is":
-            if column not in TEXT_COLUMNS:
+            if column not in TEXT_COLUMNS and not own:
                 raise ConfigError(
                     f"{self.where}: 'is' compares text; '{column}' is a number (use below, "
                     "at_most, above or at_least)."
@@ -739,6 +791,8 @@ class _Parser:
             raise ConfigError(
                 f"{self.where}: '{column}' holds text; compare it with 'is' or 'blank'."
             )
+        # A file's own column compared as a number: its cells are read as plain numbers
+        # (2019, 0.3); a cell that is not one leaves the test unknown for that row.
         return Compare(
             column,
             op,
@@ -752,7 +806,8 @@ class _Parser:
 def _parameter(name: str, spec: Any, where: str) -> Parameter:
     if not _NAME.match(name) or name in _OVERRIDE_RESERVED:
         raise ConfigError(
-            f"{where}: parameter name '{name}' must be snake_case and not severity or enabled."
+            f"{where}: parameter name '{name}' must be snake_case and not severity, enabled "
+            "or unless."
         )
     if name in known_columns():
         raise ConfigError(f"{where}: parameter '{name}' has the name of a column; rename it.")
@@ -827,11 +882,18 @@ def parse_rule(spec: Any, source: str) -> Rule:
     parameters = {name: _parameter(name, p, where) for name, p in params_spec.items()}
     parser = _Parser(where, parameters)
     when = parser.condition(spec["when"])
+    unless = parser.condition(spec["unless"]) if "unless" in spec else None
     message = Template.parse(_expect(str, spec["message"], where, "message"), where)
     for name, fmt in message.fields:
         if name not in parameters:
             parser.column(name)
-        sample: Any = "text" if name in TEXT_COLUMNS else 0.5
+        own = name not in parser.columns and name not in parameters
+        sample: Any = "text" if name in TEXT_COLUMNS or (own and not fmt) else 0.5
+        if any(len(n) > 3 or int(n) > MAX_FORMAT_WIDTH for n in _SPEC_NUMBER.findall(fmt or "")):
+            raise ConfigError(
+                f"{where}: bad format '{{{name}:{fmt[:40]}}}' in the message: a width or "
+                f"precision above {MAX_FORMAT_WIDTH} (a message is one sentence)."
+            )
         try:
             format(sample, fmt or "")
         except ValueError as exc:
@@ -846,6 +908,8 @@ def parse_rule(spec: Any, source: str) -> Rule:
     for ref in supersedes:
         _expect(str, ref, where, "each superseded rule id")
     unused = set(parameters) - when.names() - message.names()
+    if unless is not None:
+        unused -= unless.names()
     if unused:
         raise ConfigError(f"{where}: parameter {', '.join(sorted(unused))} is never used.")
     text = {k: _expect(str, spec[k], where, k).strip() for k in ("title", "rationale")}
@@ -864,6 +928,7 @@ def parse_rule(spec: Any, source: str) -> Rule:
         supersedes=tuple(supersedes),
         enabled=_expect(bool, spec.get("enabled", True), where, "enabled"),
         source=source,
+        unless=unless,
     )
 
 
@@ -877,10 +942,15 @@ def _apply_override(rule: Rule, spec: Any, source: str) -> Rule:
             changes["severity"] = _severity(value, where)
         elif key == "enabled":
             changes["enabled"] = _expect(bool, value, where, "enabled")
+        elif key == "unless":
+            # An exemption added to the rule's own (either exempts): files stack.
+            extra = _Parser(where, params).condition(value)
+            before = changes.get("unless", rule.unless)
+            changes["unless"] = extra if before is None else AnyOf((before, extra))
         elif key in params:
             params[key] = _set_value(params[key], value, where)
         else:
-            valid = ["severity", "enabled", *params]
+            valid = ["severity", "enabled", "unless", *params]
             raise ConfigError(
                 f"{where}: unknown setting '{key}'{_suggest(key, valid)}; "
                 f"valid: {', '.join(valid)}."
@@ -979,6 +1049,29 @@ def resolve_rules(rules: Any) -> RuleSet:
 
 # -- evaluation -----------------------------------------------------------------------------------
 
+
+def check_own_columns(rules: Iterable[Rule], columns: Iterable[str]) -> None:
+    """Raise a ConfigError when a rule reads a column of its own that the file lacks.
+
+    The rule would be judged on nothing: an exemption would exempt no row, a condition would
+    never fire, and the audit would not say so. Every such column of every rule is named.
+    """
+    have = set(columns)
+    lacking = [(rule, name) for rule in rules for name in rule.own_columns() if name not in have]
+    if not lacking:
+        return
+    listed = "; ".join(
+        f"rule '{rule.id}' ({rule.overridden_by[-1] if rule.overridden_by else rule.source}) "
+        f"reads '{name}'{_suggest(name, [*have, *_KNOWN])}"
+        for rule, name in lacking
+    )
+    own = sorted(c for c in have if c not in _KNOWN and not c.startswith("_"))
+    raise ConfigError(
+        f"{listed}, which is neither an input column, a metric nor a column of this file "
+        f"(the file's own columns: {', '.join(own) or 'none'})."
+    )
+
+
 _FINDING_COLUMNS = ["pos", "rule", "severity", "message"]
 
 
@@ -1023,6 +1116,7 @@ def evaluate_rules(
     fired: dict[str, np.ndarray] = {}
     judged: dict[str, int] = {}
     enabled = ruleset.enabled()
+    check_own_columns(enabled, data.table.columns)
     for order, rule in enumerate(enabled):
         if on_rule is not None:
             on_rule(rule)
@@ -1032,7 +1126,7 @@ def evaluate_rules(
             continue
         try:
             params = rule.param_values()
-            true, false = rule.when.evaluate(data, params)
+            true, false = rule.evaluate(data)
             pos = np.flatnonzero(true & valid)
             known = int(((true | false) & valid).sum())
             values = {

@@ -11,14 +11,19 @@ import zlib
 from collections.abc import Iterator
 from pathlib import Path
 
-from audit.archive import check_sizes, scan_archive
+from audit.archive import PartScan, check_sizes, scan_archive, scan_part
 from audit.errors import InputError
 from audit.rawtable import (
     HEADER_SEARCH_ROWS,
+    MAX_CELL_CHARS,
     MAX_COLUMNS,
     MAX_ROWS,
+    SHEET_ROWS,
     UNCACHED,
     Sheet,
+    cell_too_long,
+    column_letter,
+    too_far_down,
     too_many_columns,
     too_many_rows,
 )
@@ -44,7 +49,7 @@ def read_xlsx(path: Path, sheet: str | None) -> Sheet:
             try:
                 check_sizes(path, archive)
                 with early.start(path, archive, sheet):
-                    special = scan_archive(path, archive)
+                    special = scan_archive(path, archive, early.scans)
             except (
                 zipfile.BadZipFile,
                 zipfile.LargeZipFile,
@@ -122,11 +127,25 @@ def _read_sheet(path: Path, book: object, sheet: str | None) -> Sheet:
     return found
 
 
+#: The first two sheets of the workbook ``check --xlsx`` writes (audit/workbook.py): a file
+#: laid out so is read from its second sheet unless ``--sheet`` says otherwise.
+EXPORT_FIRST_SHEETS = ("summary", "audit")
+
+
 def _choose_sheet(
     path: Path, names: list[str], states: list[str], sheet: str | None
 ) -> tuple[int, list[str]]:
     """Index of the worksheet to read (``sheet``, or the first visible one) and notes."""
     notes: list[str] = []
+    if sheet is None and names[:2] == list(EXPORT_FIRST_SHEETS) and states[1] == "visible":
+        # A workbook this tool wrote (check --xlsx): its studies are on 'audit', after the
+        # one-line-per-study summary a panel reads first. Re-auditing it reads them.
+        notes.append(
+            f"the workbook is a study-audit export; its '{names[1]}' sheet was read, not "
+            + ", ".join(f"'{n}'" for i, n in enumerate(names) if i != 1)
+            + " (use --sheet to choose)"
+        )
+        return 1, notes
     if sheet is None:
         visible = [i for i, state in enumerate(states) if state == "visible"]
         index = visible[0] if visible else 0
@@ -180,6 +199,10 @@ def _parse_worksheet(path: Path, book: object, ws: object) -> Sheet:
             timedelta_formats=book._timedelta_formats,  # type: ignore[attr-defined]
         )
         for number, row in parser.parse():
+            if int(number) > SHEET_ROWS:
+                # Refused before the rows in between are counted as blank (a run of two
+                # billion blank rows would not fit in memory).
+                raise InputError(too_far_down(path, int(number)))
             # Styled but empty cells (formatting applied to a whole column) are not data.
             filled = {c["column"]: c["value"] for c in row if c["value"] is not None}
             if not filled:
@@ -187,6 +210,10 @@ def _parse_worksheet(path: Path, book: object, ws: object) -> Sheet:
             width = max(filled)
             if width > MAX_COLUMNS:
                 raise InputError(too_many_columns(path, width))
+            for column, value in filled.items():
+                if isinstance(value, str) and len(value) > MAX_CELL_CHARS:
+                    where = f"cell {column_letter(column - 1)}{number}"
+                    raise InputError(cell_too_long(path, where, len(value)))
             values: list[object] = [None] * width
             for column, value in filled.items():
                 values[column - 1] = value
@@ -271,10 +298,13 @@ class _EarlyParse:
         self._rows: list[list[object]] | None = None
         self._error: BaseException | None = None
         self._thread: object = None
+        self.scans: dict[str, PartScan] = {}  # parts scanned before the parse was started
 
     @contextlib.contextmanager
     def start(self, path: Path, archive: zipfile.ZipFile, sheet: str | None) -> Iterator[None]:
-        """Start the parse (where it applies); wait for it on exit."""
+        """Scan the worksheet (and the shared strings) first; start the parse only where
+        calamine reads the sheet as the careful reader would and its grid fits in memory
+        (:meth:`PartScan.plain`); wait for it on exit."""
         import threading
 
         try:
@@ -283,6 +313,10 @@ class _EarlyParse:
             self.target, self.ready = _large_sheet(path, archive, sheet), True
         except Exception:  # decided again after the scan, with errors reported then
             self.target, self.ready = None, False
+        if self.target is not None:
+            self.scans = _first_scans(archive, self.target[1])
+            if not _plain(self.scans, self.target[1]):
+                self.target = None
         thread = None
         if self.target is not None:
             thread = threading.Thread(target=self._parse, args=(path, self.target[0]), daemon=True)
@@ -311,7 +345,7 @@ def _fast_worksheet(
     path: Path,
     archive: zipfile.ZipFile,
     sheet: str | None,
-    special: dict[str, bool],
+    special: dict[str, PartScan],
     early: _EarlyParse | None = None,
 ) -> Sheet | None:
     """Rows of a large, plain worksheet read by calamine (a Rust reader), or None.
@@ -333,7 +367,7 @@ def _fast_worksheet(
     try:
         started = early is not None and early.ready
         target = early.target if started else _large_sheet(path, archive, sheet)
-        if target is None or special.get(target[1], True):
+        if target is None or not _plain(special, target[1]):
             return None
         name, _, notes = target
         rows = early.rows() if started else _calamine_rows(path, name)
@@ -345,9 +379,38 @@ def _fast_worksheet(
     width = max((len(r) for r in rows), default=0)
     if width > MAX_COLUMNS:
         raise InputError(too_many_columns(path, width))
-    if len(rows) > MAX_ROWS + HEADER_SEARCH_ROWS:
+    # Blank rows do not count (a value far down leaves a run of them), as on the careful path.
+    most = MAX_ROWS + HEADER_SEARCH_ROWS
+    if len(rows) > most and _filled_rows(rows) > most:
         raise InputError(too_many_rows(path))
     return Sheet(rows, list(range(1, len(rows) + 1)), notes=notes, name=name)
+
+
+_SHARED_STRINGS = "xl/sharedStrings.xml"
+
+
+def _first_scans(archive: zipfile.ZipFile, part: str) -> dict[str, PartScan]:
+    """Scans of the worksheet ``part`` and the shared strings, before calamine may start."""
+    scans = {}
+    for name in (part, _SHARED_STRINGS):
+        with contextlib.suppress(KeyError):
+            scans[name] = scan_part(archive, archive.getinfo(name))
+    return scans
+
+
+def _plain(scans: dict[str, PartScan], part: str) -> bool:
+    """The worksheet is plain (:meth:`PartScan.plain`) and no shared string is too long."""
+    sheet = scans.get(part)
+    strings = scans.get(_SHARED_STRINGS)
+    if sheet is None or not isinstance(sheet, PartScan) or not sheet.plain():
+        return False
+    return strings is None or strings.longest_text <= MAX_CELL_CHARS
+
+
+def _filled_rows(rows: list[list[object]]) -> int:
+    from audit.tabulate import blank_mask
+
+    return int((~blank_mask(rows)).sum())
 
 
 def _range_bounds(ref: str) -> tuple[int, int, int, int] | None:

@@ -37,7 +37,7 @@ def _row_is_blank(values: list[object]) -> bool:
     return True
 
 
-def _blank_mask(rows: list[list[object]]) -> np.ndarray:
+def blank_mask(rows: list[list[object]]) -> np.ndarray:
     """For each row, True when no cell holds anything.
 
     Text rows (every row of a delimited file) are joined and tested by C-level maps, with no
@@ -208,7 +208,7 @@ def to_raw(
         )
     body = cells[h + header_rows :]
     body_numbers = sheet.numbers[h + header_rows :]
-    blank_row = _blank_mask(body)
+    blank_row = blank_mask(body)
     data_rows, numbers = body, body_numbers
     if blank_row.any():
         data_rows = list(itertools.compress(body, ~blank_row))

@@ -14,9 +14,11 @@ import numpy as np
 from audit.errors import InputError
 from audit.rawtable import (
     HEADER_SEARCH_ROWS,
+    MAX_CELL_CHARS,
     MAX_COLUMNS,
     MAX_ROWS,
     RawTable,
+    cell_too_long,
     column_letter,
     too_many_columns,
     too_many_rows,
@@ -156,8 +158,12 @@ def parse_delimited(
             for r in records:
                 if len(r) > MAX_COLUMNS and any(r[MAX_COLUMNS:]):
                     raise InputError(too_many_columns(source, len(r)))
+        if len(text) > MAX_CELL_CHARS:
+            _check_cell_lengths(records, source)
         return records, problems
     _check_limits_in_order(records, source)
+    if len(text) > MAX_CELL_CHARS:
+        _check_cell_lengths(records, source)
     if failure is not None:
         raise InputError(
             f"{source}: the file could not be read as delimited text near record "
@@ -183,6 +189,23 @@ def parse_delimited(
             if index >= well_formed:
                 problems.extend(_swallowed(records[index], delimiter, index))  # type: ignore[arg-type]
     return records, problems
+
+
+def _check_cell_lengths(records: list[list[object]], source: object) -> None:
+    """Refuse the first cell longer than :data:`MAX_CELL_CHARS`, as a workbook cell would be
+    (the lengths of all cells at C speed; the record is found only when one is too long)."""
+    lengths = np.fromiter(
+        map(len, itertools.chain.from_iterable(records)),  # type: ignore[arg-type]
+        dtype=np.int64,
+    )
+    if lengths.max(initial=0) <= MAX_CELL_CHARS:
+        return
+    at = int(np.argmax(lengths > MAX_CELL_CHARS))
+    ends = np.cumsum(np.fromiter(map(len, records), dtype=np.int64, count=len(records)))
+    record = int(np.searchsorted(ends, at, side="right"))
+    field = at - (int(ends[record - 1]) if record else 0)
+    where = f"cell {column_letter(field)}{record + 1}"
+    raise InputError(cell_too_long(source, where, int(lengths[at])))
 
 
 def _lines(text: str) -> Iterator[str]:

@@ -174,6 +174,7 @@ def validate(raw: RawTable, whole: WholeTable | None = None) -> Validated:
     _check_ids(table, whole, found)
     _check_designs(table, found)
     _check_results(table, found)
+    _check_df(table, found)
     extra = [c for c in data.columns if c not in SPECS]
     for c in extra:
         table[c] = data[c].reset_index(drop=True)
@@ -352,6 +353,32 @@ def _check_results(table: pd.DataFrame, found: _Findings) -> None:
             "observed_effect",
             "must lie within the confidence interval (observed_ci_low to observed_ci_high)",
         )
+
+
+def _check_df(table: pd.DataFrame, found: _Findings) -> None:
+    """A ``df`` so small that the t test's critical value at the row's alpha lies beyond double
+    precision (it grows like alpha ** (-1 / df): about 1e260 at df 0.005 and alpha 0.05) is
+    refused: the critical value cannot be computed, and a power computed from the largest
+    representable one would be wrong (0.17 instead of 0.05 at a zero effect). The smallest tail
+    any test of the row uses (alpha / comparisons / 2) is checked by computing the critical
+    value and its tail back."""
+    from audit.designs._power import t_critical_computable
+
+    df = table["df"].to_numpy(dtype=float)
+    alpha = table["alpha"].to_numpy(dtype=float) / table["comparisons"].to_numpy(dtype=float)
+    check = np.isfinite(df) & (df > 0) & (df < 1) & (alpha > 0) & (alpha < 1)
+    if not check.any():
+        return
+    ok = t_critical_computable(alpha[check] / 2.0, df[check])
+    bad = np.zeros(len(table), dtype=bool)
+    bad[np.flatnonzero(check)[~ok]] = True
+    found.fail(
+        bad,
+        "df",
+        "is too small for a t test at this alpha: the critical value lies beyond the range "
+        "of double precision (blank df means a normal test; a t test needs more degrees of "
+        "freedom)",
+    )
 
 
 def _duplicate_ids(ids: pd.Series, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -1,7 +1,9 @@
 """The annotated workbook (``check --xlsx OUT``): the user's table with the audit beside it.
 
-Sheets:
+Sheets, in the order a panel reads them:
 
+* ``summary`` — one line per study: id, title, design, status, power at the planned effect, the
+  MDE, and the most severe finding (or why the row could not be audited).
 * ``audit`` — the user's columns first, as they were (numbers of contract columns stored as
   numbers), then the row number, status, highest severity, findings, every metric (stored as
   numbers with formats) and the notes. Severity shows as text *and* as a fill, so it survives
@@ -11,9 +13,16 @@ Sheets:
 * ``invalid rows`` — every rejected cell with its reason.
 * ``read me`` — what the sheets hold and the cautions that go with them.
 
+Every sheet has its header frozen, an autofilter, set column widths, and row heights that show
+every line of a wrapped cell (spreadsheet programs do not grow a row for wrapped text written by
+another program, so the lines would be cut off or overprint the next row). Numbers are stored as
+numbers, including the user's own number-like cells (``sides`` = 2, a year), where the text can be
+recovered exactly from the number.
+
 Text that a spreadsheet would take for a formula is stored as text with a quote prefix, so it
 cannot run. Re-auditing the ``audit`` sheet gives the same metrics: the user's cells are written
-back exactly as the audit read them.
+back exactly as the audit read them, and the reader takes the ``audit`` sheet of a workbook laid
+out as this one (``summary`` first) unless ``--sheet`` says otherwise.
 """
 
 from __future__ import annotations
@@ -21,6 +30,7 @@ from __future__ import annotations
 import contextlib
 import datetime as _dt
 import math
+import re
 from collections.abc import Iterable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -39,7 +49,10 @@ from audit.schema import SPECS
 if TYPE_CHECKING:
     from audit.result import AuditResult
 
-__all__ = ["SEVERITY_FILLS", "WorkbookExport", "write_workbook"]
+__all__ = ["SEVERITY_FILLS", "SHEETS", "WorkbookExport", "row_heights", "write_workbook"]
+
+#: The sheets of the annotated workbook, in order (the reader recognises the layout).
+SHEETS = ("summary", "audit", "portfolio", "rules", "invalid rows", "read me")
 
 #: Fill colours of the severity cell; the severity is also written as text.
 SEVERITY_FILLS = {"serious": "#E8A0A0", "warning": "#F5D58C", "note": "#CFE0F1"}
@@ -49,6 +62,16 @@ _SEVERITY_ORDER = {"note": 0, "warning": 1, "serious": 2}
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 #: Excel's limit on the characters of a cell.
 _CELL_CHARS = 32_767
+#: Points per line of the default 11-point font, and the tallest row a spreadsheet allows.
+_LINE_POINTS = 15.0
+_MAX_ROW_POINTS = 409.0
+#: Column widths (characters) of the audit sheet's own columns.
+_WIDE_TEXT = 60
+_METRIC_WIDTH = 12
+#: User text that is exactly a number's canonical spelling is stored as that number (the text
+#: comes back from the number: "2", "-0.5", "2019"; not "007", "1.50", "+3" or "1e3").
+_CANONICAL_INT = re.compile(r"-?(?:0|[1-9][0-9]{0,14})")
+_CANONICAL_DECIMAL = re.compile(r"-?(?:0|[1-9][0-9]{0,14})\.[0-9]{0,14}[1-9]")
 
 #: Number formats by metric; anything else gets four significant-looking decimals.
 _FORMATS = {
@@ -89,6 +112,7 @@ class _Styles:
             )
             for name, colour in SEVERITY_FILLS.items()
         }
+        self.wrap_quoted = wb.add_format({"text_wrap": True, "valign": "top", "quote_prefix": True})
         self.date = wb.add_format({"num_format": "yyyy-mm-dd hh:mm:ss"})
         self._numbers: dict[str, Any] = {}
         self._wb = wb
@@ -108,9 +132,53 @@ def _write_text(ws: Any, row: int, col: int, value: str, styles: _Styles, fmt: A
     """A string cell, never a formula; text that starts like one gets a quote prefix (shown as
     typed, and kept text when the cell is edited)."""
     value = _clean(value)
-    if fmt is None and value.startswith(_FORMULA_START):
-        fmt = styles.quoted
+    if value.startswith(_FORMULA_START):
+        if fmt is None:
+            fmt = styles.quoted
+        elif fmt is styles.wrap:
+            fmt = styles.wrap_quoted
     ws.write_string(row, col, value, fmt)
+
+
+def row_heights(columns: Iterable[tuple[list[str], float]], n: int) -> list[float | None]:
+    """The height (points) each of ``n`` rows needs to show every line of its wrapped cells.
+
+    ``columns`` gives, per wrapped column, its texts (one per row, ``""`` for none) and its width
+    in characters. A line longer than the width wraps onto ``ceil(len / width)`` lines. Rows of
+    one line keep the default height (``None``), so a sheet of short cells stays compact.
+    """
+    lines = np.ones(n, dtype=np.int64)
+    for texts, width in columns:
+        chars = max(int(width) - 1, 1)
+        counts = [
+            sum(max(1, -(-len(line) // chars)) for line in text.split("\n")) if text else 1
+            for text in texts
+        ]
+        lines = np.maximum(lines, np.asarray(counts, dtype=np.int64))
+    points = np.minimum(lines * _LINE_POINTS, _MAX_ROW_POINTS)
+    return [
+        None if k == 1 else float(h) for k, h in zip(lines.tolist(), points.tolist(), strict=True)
+    ]
+
+
+def _canonical_numbers(values: np.ndarray) -> np.ndarray:
+    """``values`` with each text that is exactly a number's canonical spelling replaced by the
+    number (decided once per distinct text)."""
+    text = np.fromiter((type(v) is str for v in values.tolist()), dtype=bool, count=len(values))
+    if not text.any():
+        return values
+    codes, uniques = pd.factorize(values[text])
+    converted: list[object] = []
+    for u in uniques.tolist():
+        if _CANONICAL_INT.fullmatch(u):
+            converted.append(int(u))
+        elif _CANONICAL_DECIMAL.fullmatch(u) and repr(float(u)) == u:
+            converted.append(float(u))
+        else:
+            converted.append(u)
+    out = values.copy()
+    out[text] = np.array(converted, dtype=object)[codes]
+    return out
 
 
 def _write_value(ws: Any, row: int, col: int, value: object, styles: _Styles) -> None:
@@ -157,6 +225,10 @@ def _user_columns(result: AuditResult) -> tuple[list[str], list[np.ndarray]]:
             )
             ok = (problem == "").to_numpy() & parsed.notna().to_numpy()
             values[ok] = parsed.to_numpy()[ok]
+        elif spec is None or (spec.kind == "choice" and all(x.isdigit() for x in spec.choices)):
+            # ``sides`` ("2") and the user's own number-like cells, from a CSV: numbers in the
+            # workbook (a re-audit reads 2 as "2"); identifiers and titles stay text.
+            values = _canonical_numbers(values)
         names.append(raw.headers[c])
         columns.append(values)
     return names, columns
@@ -164,6 +236,42 @@ def _user_columns(result: AuditResult) -> tuple[list[str], list[np.ndarray]]:
 
 def _by_row_text(result: AuditResult, frame: pd.DataFrame, column: str) -> list[str]:
     return ["\n".join(str(v) for v in items) for items in result.by_row(frame, column)]
+
+
+def _text_width(name: str, values: np.ndarray | None, low: int = 8, high: int = 40) -> int:
+    """A column width (characters) fitting its header and most of its cells, within bounds."""
+    width = len(str(name)) + 2
+    if values is not None and len(values):
+        lengths = pd.Series(values, dtype=object).dropna().astype(str).str.len()
+        if len(lengths):
+            width = max(width, int(np.quantile(lengths.to_numpy(), 0.9)) + 2)
+    return int(min(max(width, low), high))
+
+
+def _finding_texts(result: AuditResult) -> tuple[np.ndarray, list[str], list[str]]:
+    """Per row: the highest severity (``""`` for none), all findings as lines, and the most
+    severe finding (the first in rule order among those of the highest severity)."""
+    findings = result.findings
+    n = len(result.table)
+    worst = np.full(n, "", dtype=object)
+    first = np.full(n, "", dtype=object)
+    if not len(findings):
+        return worst, [""] * n, [""] * n
+    text = (
+        findings["rule"].astype(str)
+        + " ("
+        + findings["severity"].astype(str)
+        + "): "
+        + findings["message"].astype(str)
+    )
+    rank = findings["severity"].map(_SEVERITY_ORDER).fillna(-1).to_numpy()
+    # Ascending severity, stable: the last write per row is the most severe finding, and among
+    # equals the one the rules list first.
+    order = np.lexsort((-np.arange(len(findings)), rank))
+    pos = findings["pos"].to_numpy(dtype=int)[order]
+    worst[pos] = findings["severity"].to_numpy(dtype=object)[order]
+    first[pos] = text.to_numpy(dtype=object)[order]
+    return worst, _by_row_text(result, findings.assign(text=text), "text"), first.tolist()
 
 
 class _AuditSheet:
@@ -174,6 +282,7 @@ class _AuditSheet:
         self.styles = styles
         self.next_row = 1
         self.columns: list[str] | None = None
+        self.wrapped: dict[int, int] = {}
 
     def add(self, result: AuditResult) -> None:
         """Append the studies of ``result`` (the header with the first ones)."""
@@ -185,10 +294,31 @@ class _AuditSheet:
             self.columns = [*user_names, *ours]
             _header(ws, self.columns, len(user_names), styles)
             ws.freeze_panes(1, 1)
+            self._widths(user_names, user_values, len(metric_names))
         elif self.columns != [*user_names, *ours]:
             raise ValueError("a part of the studies has other columns than the first")
-        _audit_rows(ws, result, self.next_row, len(user_names), user_values, styles)
+        _audit_rows(ws, result, self.next_row, len(user_names), user_values, styles, self.wrapped)
         self.next_row += len(result.table)
+
+    def _widths(self, names: list[str], values: list[np.ndarray], metrics: int) -> None:
+        """Column widths from the header and the first part's cells (set once: the widths are
+        written with the sheet's head, whatever the number of parts)."""
+        ws = self.ws
+        for j, (name, cells) in enumerate(zip(names, values, strict=True)):
+            ws.set_column(j, j, _text_width(name, cells))
+        ours = len(names)
+        ws.set_column(ours, ours, 6)
+        ws.set_column(ours + 1, ours + 2, 16)
+        ws.set_column(ours + 3, ours + 3, _WIDE_TEXT)
+        if metrics:
+            ws.set_column(ours + 4, ours + 3 + metrics, _METRIC_WIDTH)
+        after = ours + 4 + metrics
+        ws.set_column(after, after + 1, _WIDE_TEXT)
+        self.wrapped = {ours + 3: _WIDE_TEXT, after: _WIDE_TEXT, after + 1: _WIDE_TEXT}
+
+    def finish(self) -> None:
+        if self.columns is not None:
+            self.ws.autofilter(0, 0, max(self.next_row - 1, 0), len(self.columns) - 1)
 
 
 def _audit_rows(
@@ -198,28 +328,13 @@ def _audit_rows(
     ours_at: int,
     user_values: list[np.ndarray],
     styles: _Styles,
+    wrapped: dict[int, int],
 ) -> None:
     """The rows of ``result``'s studies, from sheet row ``first_row`` (0-based) on."""
     metrics = result.metrics
     metric_names = list(metrics.columns)
     n = len(result.table)
-    findings = result.findings
-    worst = np.full(n, "", dtype=object)
-    if len(findings):
-        rank = findings["severity"].map(_SEVERITY_ORDER).fillna(-1).to_numpy()
-        order = np.argsort(rank, kind="stable")
-        pos = findings["pos"].to_numpy(dtype=int)[order]
-        worst[pos] = findings["severity"].to_numpy(dtype=object)[order]
-        text = (
-            findings["rule"].astype(str)
-            + " ("
-            + findings["severity"].astype(str)
-            + "): "
-            + findings["message"].astype(str)
-        )
-        finding_text = _by_row_text(result, findings.assign(text=text), "text")
-    else:
-        finding_text = [""] * n
+    worst, finding_text, _ = _finding_texts(result)
     errors = ["\n".join(e) for e in result.error_texts()]
     notes = _by_row_text(result, result.notes, "text")
     rows = result.table["_row"].to_numpy().tolist()
@@ -239,12 +354,24 @@ def _audit_rows(
             cells = np.where(np.isfinite(x), x, np.nan).tolist()
             metric_columns.append((first + j, cells, styles.number(_format_for(name))))
     after = first + len(metric_names)
-    write_number, write_string = ws.write_number, ws.write_string
+    heights = row_heights(
+        [
+            (finding_text, wrapped.get(ours_at + 3, _WIDE_TEXT)),
+            (errors, wrapped.get(after, _WIDE_TEXT)),
+            (notes, wrapped.get(after + 1, _WIDE_TEXT)),
+        ],
+        n,
+    )
+    write_number, write_string, set_row = ws.write_number, ws.write_string, ws.set_row
+    wrap = styles.wrap
     # Each user column prepared once: its text cleaned and checked per distinct value.
     user = [(j, *_prepared(values, styles)) for j, values in enumerate(user_values)]
     invalid = styles.invalid
     for i in range(n):
         r = first_row + i
+        if heights[i] is not None:
+            # Before the row's cells: in constant-memory mode a row is final once left.
+            set_row(r, heights[i])
         for j, cells, formats, text in user:
             v = cells[i]
             if v is not None:
@@ -257,7 +384,7 @@ def _audit_rows(
         if worst_list[i]:
             write_string(r, ours_at + 2, worst_list[i], styles.severity[worst_list[i]])
         if finding_text[i]:
-            _write_text(ws, r, ours_at + 3, finding_text[i], styles)
+            _write_text(ws, r, ours_at + 3, finding_text[i], styles, wrap)
         for j, cells, fmt in metric_columns:
             v = cells[i]
             if fmt is None:
@@ -266,9 +393,92 @@ def _audit_rows(
             elif v == v:  # not nan
                 write_number(r, j, v, fmt)
         if errors[i]:
-            _write_text(ws, r, after, errors[i], styles)
+            _write_text(ws, r, after, errors[i], styles, wrap)
         if notes[i]:
-            _write_text(ws, r, after + 1, notes[i], styles)
+            _write_text(ws, r, after + 1, notes[i], styles, wrap)
+
+
+#: The summary sheet's columns: (header, width in characters).
+_SUMMARY_COLUMNS = (
+    ("study_id", 14),
+    ("title", 40),
+    ("design", 22),
+    ("status", 10),
+    ("power at planned effect", 12),
+    ("MDE", 11),
+    ("MDE (standardized)", 13),
+    ("findings", 9),
+    ("highest severity", 10),
+    ("most severe finding", 70),
+)
+
+
+class _SummarySheet:
+    """The ``summary`` sheet (first): one line per study for a panel, written with each part."""
+
+    def __init__(self, wb: xlsxwriter.Workbook, styles: _Styles) -> None:
+        self.ws = wb.add_worksheet("summary")
+        self.styles = styles
+        self.next_row = 1
+        ws = self.ws
+        _header(ws, [name for name, _ in _SUMMARY_COLUMNS], len(_SUMMARY_COLUMNS), styles)
+        for j, (_, width) in enumerate(_SUMMARY_COLUMNS):
+            ws.set_column(j, j, width)
+        ws.freeze_panes(1, 1)
+
+    def add(self, result: AuditResult) -> None:
+        ws, styles = self.ws, self.styles
+        n = len(result.table)
+        table, metrics = result.table, result.metrics
+        worst, _, most = _finding_texts(result)
+        errors = ["; ".join(e) for e in result.error_texts()]
+        counts = np.bincount(result.findings["pos"].to_numpy(dtype=int), minlength=n).tolist()
+        status = np.asarray(result.status, dtype=object).tolist()
+        # Invalid rows say why they were not audited in the same place.
+        reason = [
+            most[i] if status[i] == "audited" else f"not audited: {errors[i]}" for i in range(n)
+        ]
+        texts = {
+            c: table[c].to_numpy(dtype=object).tolist() if c in table.columns else [None] * n
+            for c in ("study_id", "title", "design")
+        }
+        numbers = []
+        for name, fmt in (
+            ("power_at_planned_effect", "0.000"),
+            ("mde", "0.0000"),
+            ("mde_std", "0.000"),
+        ):
+            if name in metrics.columns and metrics[name].dtype != object:
+                x = metrics[name].to_numpy(dtype=float)
+                numbers.append((np.where(np.isfinite(x), x, np.nan).tolist(), styles.number(fmt)))
+            else:
+                numbers.append(([math.nan] * n, None))
+        heights = row_heights(
+            [(reason, _SUMMARY_COLUMNS[-1][1]), ([str(t or "") for t in texts["title"]], 40)], n
+        )
+        worst_list = worst.tolist()
+        for i in range(n):
+            r = self.next_row + i
+            if heights[i] is not None:
+                ws.set_row(r, heights[i])
+            for j, c in enumerate(("study_id", "title", "design")):
+                v = texts[c][i]
+                if v is not None and v == v:
+                    _write_text(ws, r, j, str(v), styles, styles.wrap if j == 1 else None)
+            ws.write_string(r, 3, status[i], None if status[i] == "audited" else styles.invalid)
+            for j, (cells, fmt) in enumerate(numbers, start=4):
+                if cells[i] == cells[i]:
+                    ws.write_number(r, j, cells[i], fmt)
+            if status[i] == "audited":
+                ws.write_number(r, 7, counts[i])
+            if worst_list[i]:
+                ws.write_string(r, 8, worst_list[i], styles.severity[worst_list[i]])
+            if reason[i]:
+                _write_text(ws, r, 9, reason[i], styles, styles.wrap)
+        self.next_row += n
+
+    def finish(self) -> None:
+        self.ws.autofilter(0, 0, max(self.next_row - 1, 0), len(_SUMMARY_COLUMNS) - 1)
 
 
 def _prepared(values: np.ndarray, styles: _Styles) -> tuple[list, list, list[bool]]:
@@ -283,6 +493,10 @@ def _prepared(values: np.ndarray, styles: _Styles) -> tuple[list, list, list[boo
         quoted = np.array([u.startswith(_FORMULA_START) for u in clean.tolist()], dtype=bool)
         cells[text] = clean[codes]
         formats[np.flatnonzero(text)[quoted[codes]]] = styles.quoted
+        # A blank cell as read (an empty field of a CSV) stays blank, not an empty text cell
+        # that a filter would list and a number column would hold as text.
+        empty = np.flatnonzero(text)[(clean == "")[codes]]
+        cells[empty] = None
     return cells.tolist(), formats.tolist(), text.tolist()
 
 
@@ -309,9 +523,14 @@ def _flatten(prefix: str, value: Any, out: list[tuple[str, Any]]) -> None:
 
 def _portfolio_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
     ws = wb.add_worksheet("portfolio")
-    _header(ws, ["quantity", "value"], 0, styles)
+    _header(ws, ["quantity", "value"], 2, styles)
     items: list[tuple[str, Any]] = []
     _flatten("", portfolio_document(result), items)
+    ws.set_column(
+        0, 0, _text_width("quantity", np.array([k for k, _ in items], dtype=object), high=70)
+    )
+    ws.set_column(1, 1, 40)
+    ws.freeze_panes(1, 0)
     for r, (key, value) in enumerate(items, start=1):
         _write_text(ws, r, 0, key, styles)
         if isinstance(value, float):
@@ -320,6 +539,68 @@ def _portfolio_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styl
             ws.write_string(r, 1, "-")
         else:
             _write_value(ws, r, 1, value, styles)
+    ws.autofilter(0, 0, max(len(items), 1), 1)
+
+
+#: The ``groups`` sheet: one line per (column, value) of ``--group-by``, from result.groups.
+_GROUP_HEADER = [
+    "column",
+    "value",
+    "studies",
+    "audited",
+    "invalid",
+    "studies_with_power",
+    "median_power_at_planned_effect",
+    "share_at_target_power",
+    "worst_serious",
+    "worst_warning",
+    "worst_note",
+    "worst_none",
+    "excess_observed",
+    "excess_expected",
+    "excess_p_value",
+    "excess_note",
+]
+
+
+def _groups_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
+    """The portfolio summary per value of each --group-by column (numbers stored as numbers)."""
+    ws = wb.add_worksheet("groups")
+    ws.freeze_panes(1, 0)
+    ws.set_column(0, 1, 24)
+    ws.set_column(2, len(_GROUP_HEADER) - 2, 12)
+    ws.set_column(len(_GROUP_HEADER) - 1, len(_GROUP_HEADER) - 1, 60)
+    _header(ws, _GROUP_HEADER, 0, styles)
+    headers = dict(zip(result.groups, result.settings.get("group_by", []), strict=False))
+    r = 0
+    for column, groups in result.groups.items():
+        for value, g in groups.items():
+            r += 1
+            worst = g["studies_by_worst_finding"]
+            excess = g.get("excess_significance") or {}
+            cells = [
+                g["studies"],
+                g["audited"],
+                g["invalid"],
+                g["studies_with_power"],
+                g["median_power_at_planned_effect"],
+                g["share_at_target_power"],
+                worst["serious"],
+                worst["warning"],
+                worst["note"],
+                worst["none"],
+                excess.get("observed"),
+                excess.get("expected"),
+                excess.get("p_value"),
+            ]
+            _write_text(ws, r, 0, str(headers.get(column, column)), styles)
+            _write_text(ws, r, 1, str(value), styles)
+            for j, v in enumerate(cells, start=2):
+                _write_value(ws, r, j, v, styles)
+            note = g.get("excess_significance_note")
+            if note:
+                _write_text(ws, r, len(_GROUP_HEADER) - 1, note, styles)
+    ws.autofilter(0, 0, max(r, 1), len(_GROUP_HEADER) - 1)
 
 
 def _rule_rows(result: AuditResult) -> list[list[str]]:
@@ -339,29 +620,61 @@ def _rule_rows(result: AuditResult) -> list[list[str]]:
     return rows
 
 
+_RULE_COLUMNS = (
+    ("rule", 30),
+    ("severity", 10),
+    ("what it checks", 50),
+    ("why it matters", 80),
+    ("references", 50),
+)
+
+
 def _rules_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
     ws = wb.add_worksheet("rules")
-    ws.set_column(0, 0, 30)
-    ws.set_column(2, 2, 50)
-    ws.set_column(3, 3, 80)
-    ws.set_column(4, 4, 50)
-    _header(ws, ["rule", "severity", "what it checks", "why it matters", "references"], 0, styles)
-    for r, row in enumerate(_rule_rows(result), start=1):
+    for j, (_, width) in enumerate(_RULE_COLUMNS):
+        ws.set_column(j, j, width)
+    _header(ws, [name for name, _ in _RULE_COLUMNS], len(_RULE_COLUMNS), styles)
+    ws.freeze_panes(1, 1)
+    rows = _rule_rows(result)
+    heights = row_heights(
+        [([row[j] for row in rows], width) for j, (_, width) in enumerate(_RULE_COLUMNS)],
+        len(rows),
+    )
+    for r, (row, height) in enumerate(zip(rows, heights, strict=True), start=1):
+        if height is not None:
+            ws.set_row(r, height)
         for j, value in enumerate(row):
             fmt = styles.wrap
             if j == 1 and value in SEVERITY_FILLS:
                 fmt = styles.wrap_severity[value]
             ws.write_string(r, j, _clean(value), fmt)
+    ws.autofilter(0, 0, max(len(rows), 1), len(_RULE_COLUMNS) - 1)
+
+
+_INVALID_COLUMNS = (
+    ("row", 6),
+    ("study_id", 14),
+    ("column", 22),
+    ("value as written", 20),
+    ("why it was rejected", 80),
+)
 
 
 def _invalid_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles) -> None:
     ws = wb.add_worksheet("invalid rows")
-    _header(ws, ["row", "study_id", "column", "value as written", "why it was rejected"], 0, styles)
+    _header(ws, [name for name, _ in _INVALID_COLUMNS], len(_INVALID_COLUMNS), styles)
+    for j, (_, width) in enumerate(_INVALID_COLUMNS):
+        ws.set_column(j, j, width)
+    ws.freeze_panes(1, 0)
     e = result.errors
     ids = result.table["study_id"].to_numpy(dtype=object)
+    reasons = [str(v) for v in e["reason"]]
+    heights = row_heights([(reasons, _INVALID_COLUMNS[-1][1])], len(reasons))
     for r, (pos, row, column, value, reason) in enumerate(
-        zip(e["pos"], e["row"], e["column"], e["value"], e["reason"], strict=True), start=1
+        zip(e["pos"], e["row"], e["column"], e["value"], reasons, strict=True), start=1
     ):
+        if heights[r - 1] is not None:
+            ws.set_row(r, heights[r - 1])
         study = ids[int(pos)]
         ws.write_number(r, 0, int(row))
         if study is not None:
@@ -369,7 +682,8 @@ def _invalid_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles
         _write_text(ws, r, 2, str(column), styles)
         if value not in (None, ""):
             _write_text(ws, r, 3, str(value), styles)
-        _write_text(ws, r, 4, str(reason), styles)
+        _write_text(ws, r, 4, reason, styles, styles.wrap)
+    ws.autofilter(0, 0, max(len(reasons), 1), len(_INVALID_COLUMNS) - 1)
 
 
 _READ_ME = (
@@ -398,10 +712,24 @@ def _readme_sheet(wb: xlsxwriter.Workbook, result: AuditResult, styles: _Styles)
         lines.append((key, str(value) if value is not None else None))
     lines += [("input note", str(note)) for note in result.settings.get("input_notes", [])]
     lines += list(METRICS.items())
-    for r, (first, second) in enumerate(lines):
-        _write_text(ws, r, 0, first, styles)
-        if second is not None:
-            _write_text(ws, r, 1, second, styles)
+    # A first-column sentence (no second cell) spills over the empty cell beside it, so it is
+    # measured against both columns together.
+    heights = row_heights(
+        [
+            ([a if b is not None else "" for a, b in lines], 40),
+            ([a if b is None else "" for a, b in lines], 140),
+            ([b or "" for _, b in lines], 100),
+        ],
+        len(lines),
+    )
+    for r, ((first, second), height) in enumerate(zip(lines, heights, strict=True)):
+        if height is not None:
+            ws.set_row(r, height)
+        if second is None:
+            _write_text(ws, r, 0, first, styles)
+        else:
+            _write_text(ws, r, 0, first, styles, styles.wrap)
+            _write_text(ws, r, 1, second, styles, styles.wrap)
 
 
 def write_workbook(result: AuditResult, path: str | Path) -> None:
@@ -436,6 +764,8 @@ class WorkbookExport:
             {"constant_memory": True, "strings_to_formulas": False, "strings_to_urls": False},
         )
         self._styles = _Styles(self._wb)
+        # Sheets appear in the order they are added: the summary first, a panel's first page.
+        self._summary = _SummarySheet(self._wb, self._styles)
         self._audit = _AuditSheet(self._wb, self._styles)
         return self
 
@@ -443,12 +773,17 @@ class WorkbookExport:
         return self._stack.__exit__(*exc)  # type: ignore[arg-type]
 
     def add(self, result: AuditResult) -> None:
-        """Append the studies of ``result`` to the ``audit`` sheet."""
+        """Append the studies of ``result`` to the ``summary`` and ``audit`` sheets."""
+        self._summary.add(result)
         self._audit.add(result)
 
     def finish(self, result: AuditResult) -> None:
         """The portfolio, rules, invalid-rows and read-me sheets of the whole ``result``."""
+        self._summary.finish()
+        self._audit.finish()
         _portfolio_sheet(self._wb, result, self._styles)
+        if result.groups:
+            _groups_sheet(self._wb, result, self._styles)
         _rules_sheet(self._wb, result, self._styles)
         _invalid_sheet(self._wb, result, self._styles)
         _readme_sheet(self._wb, result, self._styles)

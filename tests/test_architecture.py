@@ -116,5 +116,5 @@ def test_a_result_is_plain_data():
     names = {f.name for f in dataclasses.fields(AuditResult)}
     assert names == {
         "table", "metrics", "status", "errors", "notes", "findings", "portfolio", "settings",
-        "raw", "rules", "rules_waiting", "rule_problems", "caveats", "rules_judged",
+        "raw", "rules", "rules_waiting", "rule_problems", "caveats", "rules_judged", "groups",
     }  # fmt: skip

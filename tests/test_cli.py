@@ -149,7 +149,8 @@ def test_bad_rules_file_exits_2_before_reading(tmp_path, capsys):
     rules.write_text("[override.power-below-target]\nthreshold = 0.5\n")
     assert main(["check", str(tmp_path / "missing.csv"), "--rules", str(rules)]) == 2
     err = capsys.readouterr().err
-    assert "unknown setting 'threshold'" in err and "valid: severity, enabled, tolerance" in err
+    assert "unknown setting 'threshold'" in err
+    assert "valid: severity, enabled, unless, tolerance" in err
     assert "Traceback" not in err
 
 
@@ -287,3 +288,139 @@ def test_no_export_writes_over_the_input_through_a_link(tmp_path, capsys):
     assert main(["check", str(source), "--csv", str(link), "--quiet"]) == 2
     assert "is the input file this run reads" in capsys.readouterr().err
     assert source.read_bytes() == before and link.is_symlink()
+
+
+# -- command-line conventions (issue 19) -----------------------------------------------------
+
+
+def _stdin(monkeypatch, data: bytes) -> None:
+    import io
+
+    monkeypatch.setattr("sys.stdin", io.TextIOWrapper(io.BytesIO(data)))
+
+
+def test_check_dash_reads_csv_from_standard_input(monkeypatch, tmp_path, capsys):
+    _stdin(monkeypatch, DEMO.read_bytes())
+    out = tmp_path / "a.json"
+    assert main(["check", "-", "--quiet", "--json", str(out)]) == 0
+    doc = json.loads(out.read_text("utf-8"))
+    direct = tmp_path / "b.json"
+    assert main(["check", str(DEMO), "--quiet", "--json", str(direct)]) == 0
+    expected = json.loads(direct.read_text("utf-8"))
+    assert [s["metrics"] for s in doc["studies"]] == [s["metrics"] for s in expected["studies"]]
+    assert doc["settings"]["source"] == "standard input"
+
+
+def test_check_dash_reads_a_workbook_from_standard_input(monkeypatch, tmp_path):
+    _stdin(monkeypatch, (bundled_dir("demo_data") / "demo_portfolio.xlsx").read_bytes())
+    out = tmp_path / "a.json"
+    assert main(["check", "-", "--quiet", "--json", str(out)]) == 0
+    assert len(json.loads(out.read_text("utf-8"))["studies"]) > 40
+
+
+def test_empty_standard_input_is_one_sentence(monkeypatch, capsys):
+    _stdin(monkeypatch, b"")
+    assert main(["check", "-", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("study-audit: standard input is empty") and err.count("\n") == 1
+
+
+def test_unusable_standard_input_names_standard_input_not_a_temporary_file(monkeypatch, capsys):
+    _stdin(monkeypatch, b"title,notes\nx,y\n")
+    assert main(["check", "-", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "standard input" in err and "stdin.csv" not in err and "/tmp" not in err
+
+
+@pytest.mark.parametrize(
+    "options,expected",
+    [
+        (["--json", "-", "--csv", "-"], "--json and --csv both ask for standard output"),
+        (["--xlsx", "-"], "--xlsx - is refused"),
+        (["--plots", "-"], "--plots - is refused"),
+    ],
+)
+def test_standard_output_takes_at_most_one_text_export(options, expected, capsys):
+    assert main(["check", str(DEMO), *options]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""  # nothing half-written to standard output
+    assert expected in captured.err and captured.err.count("\n") == 1
+
+
+def test_csv_to_stdout_keeps_the_report_off_it(capsys):
+    assert main(["check", str(DEMO), "--csv", "-"]) == 0
+    captured = capsys.readouterr()
+    rows = list(csv.reader(captured.out.splitlines()))
+    assert rows[0][0] == "study_id" and len(rows) > 40
+    assert "KF-101" in captured.err
+    assert not any("─" in line for line in captured.out.splitlines())  # no report lines
+
+
+def test_piped_stdin_to_stdout_in_a_real_process(tmp_path):
+    import subprocess
+    import sys
+
+    done = subprocess.run(
+        [sys.executable, "-m", "audit", "check", "-", "--json", "-"],
+        input=DEMO.read_bytes(),
+        capture_output=True,
+        timeout=300,
+        check=False,
+    )
+    assert done.returncode == 0, done.stderr
+    doc = json.loads(done.stdout)
+    assert doc["studies"][0]["study_id"] == "KF-101"
+    assert b"KF-101" in done.stderr  # the report, on standard error
+
+
+def test_template_refuses_to_overwrite_and_needs_xlsx(tmp_path, capsys):
+    out = tmp_path / "t.xlsx"
+    assert main(["template", str(out)]) == 0
+    before = out.read_bytes()
+    assert main(["template", str(out)]) == 2
+    assert "exists; add --force" in capsys.readouterr().err
+    assert out.read_bytes() == before
+    assert main(["template", str(out), "--force"]) == 0
+    assert main(["template", str(tmp_path / "t.csv")]) == 2
+    assert "ending in .xlsx" in capsys.readouterr().err
+    assert not (tmp_path / "t.csv").exists()
+
+
+def test_bare_command_prints_the_help(capsys):
+    assert main([]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("usage: study-audit")
+    for command in ("check", "demo", "template", "columns", "schema", "rules", "respond"):
+        assert command in out
+    assert "exit status:" in out and "examples:" in out
+
+
+@pytest.mark.parametrize("command", ["check", "demo", "template", "rules", "columns", "respond"])
+def test_help_texts_have_examples_defaults_and_exit_codes(command, capsys):
+    with pytest.raises(SystemExit) as exc:
+        main([command, "--help"])
+    assert exc.value.code == 0
+    out = capsys.readouterr().out
+    assert "exit status:" in out and "example" in out
+    assert "3  internal error" in out
+    if command == "check":
+        assert "(default: png)" in out and "(default: 5)" in out
+        # Metavars: FILE for what is read, OUT for files written, DIR for folders.
+        for option in ("--json OUT", "--csv OUT", "--xlsx OUT", "--plots DIR", "--rules FILE"):
+            assert option in out
+
+
+def test_columns_lists_every_contract_column_with_its_designs(capsys):
+    from audit.designs import DESIGNS
+    from audit.schema import COLUMNS
+
+    assert main(["columns"]) == 0
+    out = capsys.readouterr().out
+    for column in COLUMNS:
+        assert column.name in out
+    assert main(["columns", "--design", "survival"]) == 0
+    survival = capsys.readouterr().out
+    assert "planned_events" in survival and "planned_icc" not in survival
+    for name in DESIGNS["survival"].inputs():
+        assert name in survival
+    assert main(["columns", "--design", "nope"]) == 2

@@ -19,6 +19,7 @@ MODULES = [
     "audit.hypotheses",
     "audit.numbers",
     "audit.pipeline",
+    "audit.portfolio",
 ]
 
 

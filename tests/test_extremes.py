@@ -17,6 +17,7 @@ import time
 import warnings
 from collections.abc import Callable
 
+import mpmath
 import numpy as np
 import pandas as pd
 import pytest
@@ -26,7 +27,13 @@ from scipy import integrate, special, stats
 
 import audit
 from audit.designs import DESIGNS
-from audit.designs._power import t_ncp_for_power, t_power
+from audit.designs._power import (
+    f_upper_point,
+    t_critical,
+    t_critical_computable,
+    t_ncp_for_power,
+    t_power,
+)
 from audit.designs._solve import solve_increasing
 from audit.metrics import test_settings as settings_for
 from audit.read import raw_from_frame
@@ -446,3 +453,106 @@ def test_power_at_zero_effect_is_alpha(name, params):
     design, sc, test = _realized(name, _rows(name, params))
     zero = design.from_analysis(np.zeros(len(params)))  # no effect: 0, or a hazard ratio of 1
     np.testing.assert_allclose(design.power(sc, zero, test), test.alpha, rtol=1e-9)
+
+
+# -- extreme tails: upper points from the small tail itself (issue 20) ---------------------------
+
+
+def _mp_z_upper(tail: float) -> mpmath.mpf:
+    """Upper ``tail`` point of the standard normal, with mpmath (40 digits beyond the tail's
+    exponent, so that 2 tail - 1 keeps the tail's digits)."""
+    with mpmath.workdps(40 + int(-math.log10(tail))):
+        return -mpmath.sqrt(2) * mpmath.erfinv(2 * mpmath.mpf(tail) - 1)
+
+
+@pytest.mark.parametrize("tail", [0.5, 0.025, 1e-6, 1e-12, 5e-17, 1e-100, 1e-300])
+def test_z_upper_point_keeps_every_digit_of_a_small_tail(tail):
+    # 1 - 1e-12 rounds away 4 of the tail's digits (z was off in the 6th digit); below 1.1e-16
+    # it is 1 and ndtri(1) is infinite. Reference: mpmath at 50 digits.
+    got = float(t_critical(tail, 1, np.inf))
+    want = float(_mp_z_upper(tail))
+    assert got == pytest.approx(want, rel=1e-12, abs=1e-15)
+
+
+def test_t_upper_point_against_mpmath():
+    # Upper point of Student's t on random df (0.02 to 1e4) and tails (1e-15 to 0.5): where it
+    # is accepted (t_critical_computable), its tail computed back with mpmath's incomplete
+    # beta is the tail asked for; where it is not, the true point is beyond 1e150 (mpmath's
+    # tail there is still above the one asked for).
+    rng = np.random.default_rng(20)
+    df = 10 ** rng.uniform(np.log10(0.02), 4, 80)
+    tail = 10 ** rng.uniform(-15, np.log10(0.5), 80)
+    c = t_critical(tail, np.ones(80), df)
+    ok = t_critical_computable(tail, df)
+    assert ok[df >= 1].all() and not ok.all()
+
+    def mp_tail(d, x):
+        return mpmath.betainc(d / 2, 0.5, 0, d / (d + mpmath.mpf(x) ** 2), regularized=True) / 2
+
+    with mpmath.workdps(40):
+        for d, t, x, fine in zip(df, tail, c, ok, strict=True):
+            if fine:
+                assert float(mp_tail(d, x)) == pytest.approx(t, rel=1e-9), (d, t, x)
+            else:
+                assert mp_tail(d, 1e150) > t, (d, t)
+
+
+@pytest.mark.parametrize("dfn,dfd", [(1, 10), (3, 40), (12, 2.5), (2, 1e4)])
+@pytest.mark.parametrize("alpha", [0.05, 1e-9, 1e-14])
+def test_f_upper_point_against_mpmath(dfn, dfd, alpha):
+    f = float(f_upper_point(np.float64(dfn), np.float64(dfd), alpha))
+    with mpmath.workdps(40):
+        x = mpmath.mpf(dfd) / (dfd + dfn * mpmath.mpf(f))
+        back = mpmath.betainc(mpmath.mpf(dfd) / 2, mpmath.mpf(dfn) / 2, 0, x, regularized=True)
+    assert float(back) == pytest.approx(alpha, rel=1e-9)
+
+
+def test_two_sided_alpha_1e_16_at_20_se_is_power_one_not_zero():
+    # Exact: P(Z > c - 20) + P(Z < -c - 20) with c the upper 5e-17 point: 1 - 5.6e-32, which is
+    # 1.0 in double precision. ndtri(1 - 5e-17) = ndtri(1) = inf gave power 0 and a serious
+    # flag. Reference: mpmath at 50 digits.
+    with mpmath.workdps(50):
+        c = _mp_z_upper(5e-17)
+        exact = mpmath.ncdf(20 - c) + mpmath.ncdf(-20 - c)
+        assert 1e-32 < 1 - exact < 1e-31
+    assert float(t_power(20.0, np.inf, 1e-16, 2)) == 1.0 == float(exact)
+    table = pd.DataFrame(
+        {
+            "study_id": ["T-1"],
+            "design": ["estimate"],
+            "realized_se": [1.0],
+            "planned_effect": [20.0],
+            "alpha": [1e-16],
+            "sides": [2],
+        }
+    )
+    study = audit.audit_table(table).to_dict()["studies"][0]
+    assert study["status"] == "audited"
+    assert study["metrics"]["power_at_planned_effect"] == 1.0
+    assert not [f for f in study["flags"] if f["severity"] == "serious"]
+
+
+@pytest.mark.parametrize("df", [0.01, 0.05, 0.2, 0.5, 0.999, 1.0, 3.0, 1e3, np.inf])
+@pytest.mark.parametrize("alpha,sides", [(0.05, 2), (0.05, 1), (1e-6, 2), (1e-12, 1), (0.6, 1)])
+def test_power_at_zero_effect_is_alpha_at_every_df_that_is_accepted(df, alpha, sides):
+    # Common practice: the size of the test. Rows whose critical value cannot be computed are
+    # refused by validation (below); every other df gives alpha at a zero effect.
+    if not t_critical_computable(alpha / sides, df):
+        # Refused by validation (see the next test); checked to be so only where df < 1.
+        assert df < 1
+        return
+    assert float(t_power(0.0, df, alpha, sides)) == pytest.approx(alpha, rel=1e-9)
+
+
+@pytest.mark.parametrize("df", [1e-4, 0.001, 0.005])
+def test_df_too_small_for_the_alpha_is_refused(df):
+    # At df 0.005 and alpha 0.05 the critical value is about 1e260, past what scipy returns
+    # (about 5e152): the power at a zero effect came out 0.17 (0.70 at df 0.001), not 0.05.
+    table = pd.DataFrame(
+        {"study_id": ["D-1", "D-2"], "design": ["estimate"] * 2, "realized_se": [1.0, 1.0]}
+    )
+    table["df"] = [df, 30.0]
+    studies = audit.audit_table(table).to_dict()["studies"]
+    assert studies[0]["status"] == "invalid"
+    assert any("df = " in e and "too small for a t test" in e for e in studies[0]["errors"])
+    assert studies[1]["status"] == "audited"

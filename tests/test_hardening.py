@@ -93,6 +93,7 @@ UNUSABLE = {
     "far_cell.xlsx": rf"16,384 columns, more than the limit of {MAX_COLUMNS:,}",
     "many_columns.csv": rf"more than the limit of {MAX_COLUMNS:,}",
     "many_rows.csv": rf"more than {MAX_ROWS:,} study rows",
+    "long_cell.csv": r"cell G3 holds 40,005 characters, more than the limit of 32,767",
 }
 
 
@@ -119,7 +120,7 @@ def test_entities_refused_by_defusedxml_too(corpus, monkeypatch):
     import audit.sheets as sheets
 
     assert openpyxl.DEFUSEDXML is True
-    monkeypatch.setattr(sheets, "scan_archive", lambda path, archive: {})
+    monkeypatch.setattr(sheets, "scan_archive", lambda path, archive, known=None: {})
     for name in ("entity_expansion.xlsx", "external_entity.xlsx"):
         with pytest.raises(InputError, match="XML entities or external references; refused"):
             read_table(corpus[name])
@@ -158,8 +159,103 @@ def test_every_workbook_reads_the_same_when_calamine_may_read_it(corpus, monkeyp
     monkeypatch.setattr(sheets, "_calamine_rows", spy)
     for name in books:
         assert _read_outcome(corpus[name]) == careful[name], name
-    # calamine did parse, the hostile files among them (refused after the scan all the same).
-    assert {"stray_blanks.xlsx", "entity_expansion.xlsx", "hidden_rows.xlsx"} <= set(parsed)
+    # calamine parsed the plain sheets; the worksheet is scanned before calamine starts, so
+    # sheets with a DTD, hidden rows, merges or a grid out of proportion to their cells
+    # (stray_blanks: one styled cell at XFD1048576) never reach it.
+    assert {"title_rows.xlsx", "several_sheets.xlsx"} <= set(parsed)
+    careful_only = {"stray_blanks.xlsx", "entity_expansion.xlsx", "hidden_rows.xlsx"}
+    careful_only |= {"far_cell.xlsx", "merged_header.xlsx", "merged_body_cells.xlsx"}
+    assert not careful_only & set(parsed)
+
+
+@pytest.fixture(scope="session")
+def pairs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, tuple[Path, Path]]:
+    return make_fixtures.build_pairs(tmp_path_factory.mktemp("pairs"))
+
+
+def _audit_outcome(path: Path) -> tuple:
+    """The sentence of a refusal, or per study (row, id, status, errors, notes) and the notes."""
+    try:
+        doc = audit.audit_file(path).to_dict()
+    except InputError as exc:
+        return ("refused", str(exc).replace(str(path), "FILE"))
+    studies = [
+        (s["row"], s["study_id"], s["status"], s["errors"], s["notes"]) for s in doc["studies"]
+    ]
+    return ("read", doc["settings"]["input_notes"], studies)
+
+
+def _rows_ok(outcome, expected_rows=(2, 3, 4)):
+    assert outcome[0] == "read", outcome
+    return [s[0] for s in outcome[2]] == list(expected_rows)
+
+
+#: pair name -> what both copies give: a refusal (regex) or a check of the audit.
+PAIR_OUTCOMES = {
+    "plain": lambda o: _rows_ok(o) and all(s[2] == "audited" for s in o[2]),
+    "empty_cell_xfd": lambda o: _rows_ok(o) and all(s[2] == "audited" for s in o[2]),
+    "value_column_2109": r"columns, more than the limit of 1,000",
+    "error_cells": lambda o: (
+        _rows_ok(o)
+        and o[2][0][3] == ["planned_sd = '#DIV/0!': not a number"]
+        and o[2][1][3] == ["planned_effect = '#N/A': not a number"]
+    ),
+    # The row at 1,048,576 is one more (invalid) study, not "more than 1,000,000 study rows".
+    "value_last_row": lambda o: _rows_ok(o, (2, 3, 4, 1_048_576)),
+    "prefixed_formula": lambda o: (
+        _rows_ok(o) and any("formula" in e for e in o[2][1][3] + o[2][1][4])
+    ),
+    "prefixed_hidden_merged": lambda o: (
+        _rows_ok(o)
+        and any("hidden" in n for n in o[2][1][4])
+        and any("merged cell B2:B3" in n for n in o[2][1][4])
+    ),
+    "row_two_billion": r"a row numbered 2,000,000,000, beyond the 1,048,576 rows",
+    "row_99999999": r"a row numbered 99,999,999, beyond the 1,048,576 rows",
+    "long_shared_string": r"cell G2 holds 1,048,576 characters, more than the limit of 32,767",
+}
+
+
+def test_every_pair_has_an_expected_outcome():
+    assert set(make_fixtures.PAIRS) == set(PAIR_OUTCOMES)
+
+
+@pytest.mark.parametrize("name", sorted(PAIR_OUTCOMES))
+def test_same_file_same_answer_small_or_large(name, pairs, monkeypatch):
+    # The large copy (padded with comments past FAST_READ_MIN_BYTES) may be read by calamine;
+    # its outcome must be the small copy's. Sheets whose grid calamine would lay out out of
+    # proportion (XFD30001, row 2,000,000,000) never reach calamine: they are refused or read
+    # by the careful path before anything is allocated.
+    import time
+
+    import audit.sheets as sheets
+
+    small, large = pairs[name]
+    assert zipfile.ZipFile(large).getinfo("xl/worksheets/sheet1.xml").file_size > (
+        sheets.FAST_READ_MIN_BYTES
+    )
+    parsed = []
+    original = sheets._calamine_rows
+    monkeypatch.setattr(
+        sheets, "_calamine_rows", lambda p, n: (parsed.append(p.name), original(p, n))[1]
+    )
+    started = time.perf_counter()
+    outcome = _audit_outcome(small)
+    assert _audit_outcome(large) == outcome
+    assert time.perf_counter() - started < 20
+    expected = PAIR_OUTCOMES[name]
+    if isinstance(expected, str):
+        assert outcome[0] == "refused" and re.search(expected, outcome[1]), outcome
+    else:
+        assert expected(outcome), outcome
+    # calamine reads only the large plain copies.
+    assert parsed == ([large.name] if name == "plain" else [])
+
+
+def test_far_row_in_a_tiny_workbook_is_one_sentence(pairs, tmp_path, capsys):
+    for name in ("row_two_billion", "row_99999999"):
+        status, err, _ = _check(pairs[name][0], tmp_path, capsys)
+        assert status == 2 and err.count("\n") == 1 and "beyond the 1,048,576 rows" in err
 
 
 def test_sheet_option(corpus, tmp_path, capsys):
@@ -328,6 +424,13 @@ def _usable_formula_text(doc):
     assert doc["studies"][0]["study_id"].startswith("=HYPERLINK")  # JSON keeps text as written
 
 
+def _usable_terminal_escapes(doc):
+    # The title with escape sequences is read and kept (the exports are faithful); what the
+    # terminal shows is checked in tests/test_terminal.py.
+    assert len(doc["studies"]) == 63
+    assert all(s["status"] == "audited" for s in doc["studies"])
+
+
 def _usable_bad_values(doc):
     pass  # checked case by case in test_bad_values
 
@@ -354,6 +457,7 @@ USABLE = {
     "duplicate_ids.csv": _usable_duplicate_ids,
     "formula_text.csv": _usable_formula_text,
     "bad_values.csv": _usable_bad_values,
+    "terminal_escapes.csv": _usable_terminal_escapes,
 }
 
 

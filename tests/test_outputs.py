@@ -54,7 +54,7 @@ def test_workbook_reaudits_to_identical_metrics(demo, tmp_path):
     again = audit.audit_file(out, sheet="audit")
     _same_metrics(demo, again)
     book = load_workbook(out, read_only=True)
-    assert book.sheetnames == ["audit", "portfolio", "rules", "invalid rows", "read me"]
+    assert book.sheetnames == ["summary", "audit", "portfolio", "rules", "invalid rows", "read me"]
 
 
 def test_workbook_keeps_user_columns_first_and_numbers_as_numbers(demo, tmp_path):
@@ -232,7 +232,7 @@ def test_demo_csv_and_xlsx_audit_alike(demo):
 def test_demo_command_writes_every_export(tmp_path, capsys):
     out = tmp_path / "demo"
     assert main(["demo", "--out", str(out), "--quiet"]) == 0
-    for name in ("report.txt", "audit.json", "audit.csv", "audit.xlsx"):
+    for name in ("report.txt", "report.html", "audit.json", "audit.csv", "audit.xlsx"):
         assert (out / name).stat().st_size > 1000, name
     assert any((out / "plots").glob("study_*.png"))
     assert list(out.glob("response_*.md"))

@@ -182,7 +182,10 @@ parameters.min_units = { value = 10, range = [1, 1000], meaning = "smallest grou
     [
         ("[override.power-below-targt]\nseverity='note'\n", "did you mean 'power-below-target'"),
         ("[override.nope]\nseverity='note'\n", "known rules: .*power-below-target"),
-        ("[override.power-below-target]\ntolerence = 0.1\n", "valid: severity, enabled, tolerance"),
+        (
+            "[override.power-below-target]\ntolerence = 0.1\n",
+            "valid: severity, enabled, unless, tolerance",
+        ),
         (
             "[override.power-below-target]\ntolerance = 0.9\n",
             r"outside its allowed range \[0, 0.5\]",
@@ -216,15 +219,19 @@ def _rule_text(**changes) -> str:
     "changes,expected",
     [
         ({"id": '"MyRule"'}, "kebab-case"),
-        ({"when": '{ column = "power_at_planed_effect", below = 0.5 }'}, "did you mean"),
         ({"when": '{ column = "ci_verdict", below = 0.5 }'}, "holds text"),
         ({"when": '{ column = "mde", is = "big" }'}, "'is' compares text"),
         ({"when": '{ column = "mde", below = 1, above = 2 }'}, "exactly one of"),
         ({"when": '{ column = "mde", below = "threshold" }'}, "neither a parameter"),
         ({"when": "{ all = [] }"}, "at least one"),
         ({"when": '{ column = "mde", blank = true, factor = 2 }'}, "unexpected factor"),
-        ({"message": '"power {powr}"'}, "unknown column 'powr'"),
+        ({"when": '{ column = "2nd arm", below = 0.5 }'}, "usable name for a column"),
         ({"message": '"power {mde:.2q}"'}, "bad format"),
+        # A width or precision past MAX_FORMAT_WIDTH is refused before anything is formatted
+        # (format(0.5, ">2000000000") alone would take two gigabytes).
+        ({"message": '"power {mde:>2000000000}"'}, "a width or precision above 100"),
+        ({"message": '"power {mde:.101f}"'}, "a width or precision above 100"),
+        ({"message": '"power {mde:' + "9" * 5000 + '}"'}, "a width or precision above 100"),
         ({"message": '"power {mde"'}, "brace"),
         ({"colour": '"red"'}, "unknown key colour"),
         ({"supersedes": '["no-such-rule"]'}, "supersedes unknown rule"),
@@ -483,3 +490,132 @@ def test_evaluation_is_vectorised_over_many_rows():
     assert counts["mde-exceeds-sesoi"] == (metrics["mde"] > table["sesoi"]).sum()
     assert len(evaluation.findings) == counts.sum()
     assert counts["size-short-of-plan"] == (metrics["n_ratio"] < 0.8).sum()
+
+
+# -- rules on the file's own columns (issue 19) --------------------------------------------------
+
+
+def _with_type(types, n=40) -> pd.DataFrame:
+    # 40 per group at d = 0.5: power about 0.60 (Cohen 1988, table 2.3.5, from memory), so
+    # power-below-target fires on every row unless exempted.
+    return _two_means([n] * len(types), **{"Study Type": types, "year": ["2019", "2021", "x"]})
+
+
+EXEMPT_PILOTS = {
+    "override": {"power-below-target": {"unless": {"column": "study_type", "is": "pilot"}}}
+}
+
+
+def test_an_override_exempts_rows_by_a_user_column():
+    df = _with_type(["pilot", "main", ""])
+    before = audit.audit_table(df)
+    assert _flagged(before, "power-below-target") == ["S0", "S1", "S2"]
+    after = audit.audit_table(df, rules=EXEMPT_PILOTS)
+    # Only the pilot is exempt; a blank study type does not exempt (three-valued logic).
+    assert _flagged(after, "power-below-target") == ["S1", "S2"]
+    # The other rules are untouched; the exempt row is judged (known false), not unknown.
+    assert _flagged(after, "power-critically-low") == _flagged(before, "power-critically-low")
+    assert after.rules_judged["power-below-target"] == before.rules_judged["power-below-target"]
+    assert "unless study_type is 'pilot'" in after.rules[0].condition_text() or any(
+        "unless study_type is 'pilot'" in r.condition_text() for r in after.rules
+    )
+
+
+def test_a_rule_condition_may_test_user_columns_as_text_and_number():
+    rules = _only(
+        _rule_text(
+            when='{ all = [ { column = "Study Type", is = ["main", "pilot"] },'
+            ' { column = "year", at_least = 2020 } ] }',
+            message='"a {study_type} study of {year}"',
+        )
+    )
+    df = _with_type(["pilot", "main", "main"])
+    result = audit.audit_table(df, rules=rules)
+    # S0: 2019 < 2020; S1: main, 2021; S2: year 'x' is no number -> unknown, not flagged.
+    assert _flagged(result, "my-rule") == ["S1"]
+    assert result.findings["message"].tolist() == ["a main study of 2021"]
+
+
+def test_overrides_add_exemptions_from_each_file():
+    second = {"override": {"power-below-target": {"unless": {"column": "year", "below": 2020}}}}
+    df = _with_type(["pilot", "main", "main"])
+    result = audit.audit_table(df, rules=[EXEMPT_PILOTS, second])
+    # S0 is a pilot (and of 2019); S1 of 2021 and S2 (year unknown) stay flagged.
+    assert _flagged(result, "power-below-target") == ["S1", "S2"]
+    result = audit.audit_table(_with_type(["main", "main", "main"]), rules=[EXEMPT_PILOTS, second])
+    assert _flagged(result, "power-below-target") == ["S1", "S2"]
+
+
+@pytest.mark.parametrize(
+    "rules,expected",
+    [
+        (
+            {
+                "override": {
+                    "power-below-target": {"unless": {"column": "trial_type", "is": "pilot"}}
+                }
+            },
+            r"rule 'power-below-target' .*reads 'trial_type' \(did you mean 'study_type'\?\), "
+            r"which is neither .*the file's own columns: study_type, year",
+        ),
+        (
+            {
+                "rule": [
+                    tomllib.loads(
+                        _rule_text(when='{ column = "power_at_planed_effect", below = 0.5 }')
+                    )["rule"][0]
+                ]
+            },
+            "reads 'power_at_planed_effect' \\(did you mean 'power_at_planned_effect'",
+        ),
+    ],
+)
+def test_a_rule_reading_a_column_the_file_lacks_is_an_error(rules, expected):
+    # Documented choice (rules/README.md): an exemption or condition on a missing column is a
+    # configuration error, never a rule that silently exempts or fires on nothing.
+    with pytest.raises(ConfigError, match=expected):
+        audit.audit_table(_with_type(["pilot", "main", ""]), rules=rules)
+
+
+def test_cli_exemption_and_missing_column_exit_codes(tmp_path):
+    from audit.cli import main
+
+    source = tmp_path / "in.csv"
+    _with_type(["pilot", "main", ""]).to_csv(source, index=False)
+    good = _write(
+        tmp_path,
+        '[override.power-below-target]\nunless = { column = "study_type", is = "pilot" }\n',
+    )
+    out = tmp_path / "o.json"
+    assert main(["check", str(source), "--quiet", "--rules", str(good), "--json", str(out)]) in (
+        0,
+        1,
+    )
+    bad = tmp_path / "bad.toml"
+    bad.write_text(
+        '[override.power-below-target]\nunless = { column = "trial_type", is = "pilot" }\n'
+    )
+    assert main(["check", str(source), "--quiet", "--rules", str(bad)]) == 2
+
+
+def test_unless_is_checked_like_a_condition(tmp_path):
+    with pytest.raises(ConfigError, match="exactly one of"):
+        load_rules(
+            [
+                {
+                    "override": {
+                        "power-below-target": {"unless": {"column": "x", "below": 1, "above": 2}}
+                    }
+                }
+            ]
+        )
+    with pytest.raises(ConfigError, match="not severity, enabled or unless"):
+        load_rules(
+            [
+                _write(
+                    tmp_path,
+                    _rule_text(when='{ column = "mde", above = "unless" }')
+                    + "[rule.parameters.unless]\nvalue = 1\nrange = [0, 2]\nmeaning = 'm'\n",
+                )
+            ]
+        )

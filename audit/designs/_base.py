@@ -687,7 +687,7 @@ class TDesign(Design):
         with np.errstate(divide="ignore", invalid="ignore"):
             # SE at n1 = 1 scales as 1 / sqrt(n1): the normal approximation sizes the start.
             se1 = self.se(unit)
-            z = special.ndtri(1.0 - test.alpha / test.sides) + special.ndtri(test.power)
+            z = -special.ndtri(test.alpha / test.sides) + special.ndtri(test.power)
             guess = (z * se1 / np.abs(effect)) ** 2
             # One refinement with the t distribution at the df of that first guess (normal
             # approximation to the noncentral t, Abramowitz & Stegun 26.7.10): the bracket

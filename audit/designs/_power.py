@@ -27,6 +27,7 @@ __all__ = [
     "f_lambda_for_power",
     "f_power",
     "t_critical",
+    "t_critical_computable",
     "t_ncp_for_power",
     "t_power",
 ]
@@ -146,10 +147,39 @@ def t_critical(alpha: np.ndarray, sides: np.ndarray, df: np.ndarray) -> np.ndarr
 def _upper_point(tail: np.ndarray, df: np.ndarray) -> np.ndarray:
     out = np.empty(tail.shape)
     normal = np.isinf(df)
-    out[normal] = special.ndtri(1.0 - tail[normal])
-    # stdtrit(df, p) is the t quantile; stdtrit works on the lower tail, so use 1 - tail.
-    out[~normal] = special.stdtrit(df[~normal], 1.0 - tail[~normal])
+    # The upper point is minus the lower point of the small tail (both distributions are
+    # symmetric): ndtri(1 - tail) would lose the tail's digits to the rounding of 1 - tail
+    # (z off in the 6th digit at alpha 1e-12, infinite below 1.1e-16).
+    out[normal] = -special.ndtri(tail[normal])
+    usual = ~normal & (df >= 1.0)
+    out[usual] = -special.stdtrit(df[usual], tail[usual])
+    small = ~normal & ~usual
+    if small.any():
+        # Below one degree of freedom the point grows like tail ** (-1 / df) (1e260 at df =
+        # 0.005, alpha 0.05), past where stdtrit stops (it returns about 5e152 instead). From
+        # P(|T| > c) = I_x(df / 2, 1 / 2) at x = df / (df + c^2): c = sqrt(df (1 - x) / x),
+        # infinite when x underflows (rows validation refuses, see audit.validate).
+        d, t = df[small], tail[small]
+        q = np.minimum(t, 1.0 - t)
+        x = special.betaincinv(d / 2.0, 0.5, 2.0 * q)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            magnitude = np.sqrt(d * (1.0 - x) / x)
+        out[small] = np.where(t <= 0.5, magnitude, -magnitude)
     return out
+
+
+def t_critical_computable(tail: np.ndarray, df: np.ndarray) -> np.ndarray:
+    """Where the upper ``tail`` point of t(``df``) is computed correctly: finite, and its tail
+    computed back agrees to 1e-9. False only for df below 1 with a small tail, where the point
+    (about tail ** (-1 / df)) passes 1e152 and scipy's inverses stop short of it."""
+    tail = np.asarray(tail, dtype=float)
+    df = np.asarray(df, dtype=float)
+    tail, df = np.broadcast_arrays(tail, df)
+    with np.errstate(all="ignore"):
+        c = t_critical(tail, np.ones(tail.shape), df)
+        q = np.minimum(tail, 1.0 - tail)
+        back = np.where(np.isinf(df), special.ndtr(-np.abs(c)), special.stdtr(df, -np.abs(c)))
+        return np.isfinite(c) & (np.abs(back - q) <= 1e-9 * q)
 
 
 #: Above this |ncp| scipy's noncentral t is replaced (see :func:`_upper_tail`).
@@ -437,6 +467,23 @@ def t_ncp_for_power(
     return out
 
 
+def f_upper_point(dfn: np.ndarray, dfd: np.ndarray, alpha: np.ndarray) -> np.ndarray:
+    """Upper ``alpha`` point of the central F on (``dfn``, ``dfd``) degrees of freedom.
+
+    P(F > f) is the regularized incomplete beta I_x(dfd/2, dfn/2) at x = dfd / (dfd + dfn f),
+    so the point comes from the inverse of that beta at ``alpha`` itself, not from
+    ``fdtri(dfn, dfd, 1 - alpha)``, which loses the digits of a small alpha to ``1 - alpha``.
+
+    Examples
+    --------
+    >>> round(float(f_upper_point(2.0, 30.0, 0.05)), 4)
+    3.3158
+    """
+    x = special.betaincinv(np.asarray(dfd, float) / 2.0, np.asarray(dfn, float) / 2.0, alpha)
+    with np.errstate(divide="ignore"):
+        return dfd * (1.0 - x) / (dfn * x)
+
+
 def f_power(lam: np.ndarray, dfn: np.ndarray, dfd: np.ndarray, alpha: np.ndarray) -> np.ndarray:
     """Power of an F test with noncentrality ``lam`` on (``dfn``, ``dfd``) degrees of freedom.
 
@@ -458,8 +505,7 @@ def f_power(lam: np.ndarray, dfn: np.ndarray, dfd: np.ndarray, alpha: np.ndarray
         # (lambda of 1e12 in the extremes tests); the value it returns is its closest estimate,
         # which there is 1 to double precision except with a denominator df of 1 or 2.
         warnings.simplefilter("ignore", RuntimeWarning)
-        # Upper alpha point of the central F: fdtri inverts its distribution function.
-        crit = special.fdtri(dfn, dfd, 1.0 - alpha)
+        crit = f_upper_point(dfn, dfd, alpha)
         out = alpha.copy()
         positive = lam > 0
         out[positive] = threaded(
@@ -482,7 +528,7 @@ def f_lambda_for_power(
     (p, d1, d2, a), inverse = unique_rows(power[ok], dfn[ok], dfd[ok], alpha[ok])
     # For large dfd, dfn * F is close to a noncentral chi-square; its square-root scale is nearly
     # normal, which gives a serviceable starting point.
-    z = special.ndtri(1.0 - a) + special.ndtri(p)
+    z = -special.ndtri(a) + special.ndtri(p)
     guess = np.maximum(z * z + d1, 1e-2)
     root = solve_increasing(f_power, p, guess, lower=0.0, args=(d1, d2, a))
     out[ok] = root[inverse]

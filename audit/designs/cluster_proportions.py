@@ -275,7 +275,7 @@ class ClusterTwoProportions(TwoProportions):
         )
         e1, e2 = self._effective(sc)
         with np.errstate(divide="ignore", invalid="ignore"):
-            z = special.ndtri(1.0 - test.alpha[ok] / test.sides[ok]) + special.ndtri(test.power[ok])
+            z = -special.ndtri(test.alpha[ok] / test.sides[ok]) + special.ndtri(test.power[ok])
             guess = z * np.sqrt(p1[ok] * (1.0 - p1[ok]) * (1.0 / e1[ok] + 1.0 / e2[ok]))
         guess = np.clip(guess, 1e-6, 0.5 * room[ok])
         magnitude = solve_increasing(

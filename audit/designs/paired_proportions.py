@@ -54,7 +54,7 @@ def mcnemar_power(n, p1, p2, alpha, sides, direction=1.0) -> np.ndarray:
     )
     psi = p1 + p2
     delta = direction * (p2 - p1)
-    c = special.ndtri(1.0 - alpha / sides)
+    c = -special.ndtri(alpha / sides)
     with np.errstate(divide="ignore", invalid="ignore"):
         spread = np.sqrt(psi - delta * delta)
         root_n = np.sqrt(n)
@@ -78,7 +78,7 @@ def connor_pairs(p1, p2, alpha, sides, power) -> np.ndarray:
     )
     psi = p1 + p2
     delta = p2 - p1
-    c = special.ndtri(1.0 - alpha / sides)
+    c = -special.ndtri(alpha / sides)
     zb = special.ndtri(power)
     with np.errstate(divide="ignore", invalid="ignore"):
         return (c * np.sqrt(psi) + zb * np.sqrt(psi - delta * delta)) ** 2 / (delta * delta)
@@ -268,7 +268,7 @@ class PairedProportions(Design):
         if not ok.any():
             return out
         with np.errstate(divide="ignore", invalid="ignore"):
-            z = special.ndtri(1.0 - test.alpha / test.sides) + special.ndtri(test.power)
+            z = -special.ndtri(test.alpha / test.sides) + special.ndtri(test.power)
             guess = np.clip(z * np.sqrt(2.0 * p1 / n), 1e-6, 0.5 * room)
         args = (n[ok], p1[ok], test.alpha[ok], test.sides[ok], test.direction[ok])
         magnitude = solve_increasing(

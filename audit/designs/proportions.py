@@ -144,7 +144,7 @@ def proportions_power(
         *(np.asarray(a, dtype=float) for a in (n1, n2, p1, p2, alpha, sides, corrected, direction))
     )
     se0, se1, inverse = _standard_errors(n1, n2, p1, p2)
-    c = special.ndtri(1.0 - alpha / sides)
+    c = -special.ndtri(alpha / sides)
     shift = np.where(corrected > 0, 0.5 * inverse, 0.0)
     delta = direction * (p2 - p1)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -180,7 +180,7 @@ def fleiss_n1(
     with np.errstate(divide="ignore", invalid="ignore"):
         delta = np.abs(p2 - p1)
         pooled = (p1 + r * p2) / (1.0 + r)
-        c = special.ndtri(1.0 - alpha / sides)
+        c = -special.ndtri(alpha / sides)
         zb = special.ndtri(power)
         root = c * np.sqrt((1.0 + r) * pooled * (1.0 - pooled)) + zb * np.sqrt(
             r * p1 * (1.0 - p1) + p2 * (1.0 - p2)
@@ -534,7 +534,7 @@ class TwoProportions(Design):
         args = tuple(a[ok] for a in (sc["n1"], sc["n2"], p1, *self._test_args(sc, test)))
         with np.errstate(divide="ignore", invalid="ignore"):
             # Normal approximation with the control-group variance in both groups.
-            z = special.ndtri(1.0 - test.alpha[ok] / test.sides[ok]) + special.ndtri(test.power[ok])
+            z = -special.ndtri(test.alpha[ok] / test.sides[ok]) + special.ndtri(test.power[ok])
             guess = z * np.sqrt(p1[ok] * (1.0 - p1[ok]) * (1.0 / args[0] + 1.0 / args[1]))
         guess = np.clip(guess, 1e-6, 0.5 * room[ok])
         magnitude = solve_increasing(
