@@ -37,6 +37,17 @@ CAVEATS: dict[str, tuple[str, str]] = {
         "and a p-value or standard error assume a symmetric interval on the analysis scale "
         "(log for ratios).",
     ),
+    "margins": (
+        "Non-inferiority and equivalence trials.",
+        "Rows whose hypothesis is non_inferiority or equivalence are audited against their "
+        "margin: power is the chance of showing non-inferiority (or equivalence) at the planned "
+        "true difference, detectable_margin replaces the MDE, and the interval at level "
+        "1 - 2 alpha is read against the margin ('non_inferior', 'inferior', 'equivalent', "
+        "'not_equivalent', 'inconclusive'). Failing to show non-inferiority is not evidence of "
+        "inferiority, and a non-significant test of difference never shows similarity. The "
+        "audit takes the margin as given; whether it is clinically justified, and whether the "
+        "analysis population suits a non-inferiority question, it cannot judge.",
+    ),
     "type_sm": (
         "Sign and size of a significant result.",
         "type_s and exaggeration describe what a significant result from this design would look "
@@ -115,6 +126,7 @@ def caveats(metrics: pd.DataFrame, portfolio: dict[str, Any]) -> list[dict[str, 
         "thresholds": True,
         "observed_power": True,
         "ci_verdict": present("ci_verdict"),
+        "margins": present("detectable_margin") or present("margin_share_of_control_effect"),
         "type_sm": present("type_s") or present("exaggeration"),
         "precision": present("ci_halfwidth_observed"),
         "excess_significance": portfolio.get("excess_significance") is not None,

@@ -18,9 +18,12 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import math
+import os
+import signal
 import sys
 import tempfile
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -36,6 +39,9 @@ __all__ = ["main"]
 
 SEVERITIES = ("note", "warning", "serious")
 EXIT_OK, EXIT_FLAGGED, EXIT_UNUSABLE, EXIT_INTERNAL = 0, 1, 2, 3
+#: Standard output was closed by its reader (``study-audit check x --json - | head``): the
+#: shell's status for a writer ended by SIGPIPE, with nothing printed.
+EXIT_PIPE_CLOSED = 128 + 13
 #: A progress bar is shown for input files at least this large (about 2,000 rows of CSV), and
 #: only when standard error is a terminal.
 PROGRESS_MIN_BYTES = 200_000
@@ -165,7 +171,7 @@ def _parser() -> argparse.ArgumentParser:
     respond.add_argument("study_id", metavar="ID", help="the study_id of the study")
     respond.add_argument(
         "--effect",
-        type=float,
+        type=_finite_number,
         metavar="X",
         help="also give design-based power at this effect (effect units), instead of the SESOI",
     )
@@ -243,6 +249,17 @@ def _add_analysis_options(p: argparse.ArgumentParser, *, excess: bool = True) ->
     )
 
 
+def _finite_number(text: str) -> float:
+    """A finite number (``nan`` and ``inf`` are refused)."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not math.isfinite(value):
+        raise argparse.ArgumentTypeError(f"expected a finite number, such as 0.4, but got {text!r}")
+    return value
+
+
 def _reference_effects(text: str) -> tuple[float, ...]:
     """``--reference-effects 0.2,0.5,0.8``: positive numbers, comma-separated."""
     try:
@@ -303,6 +320,40 @@ def _add_check_options(p: argparse.ArgumentParser) -> None:
     _add_analysis_options(p)
 
 
+class _Stopped(BaseException):
+    """SIGTERM or SIGHUP arrived: unwinds like Ctrl-C, so unfinished exports are removed."""
+
+    def __init__(self, number: int) -> None:
+        super().__init__(number)
+        self.number = number
+
+
+def _stop(number: int, frame: object) -> None:
+    raise _Stopped(number)
+
+
+@contextlib.contextmanager
+def _stop_on_signals() -> Iterator[None]:
+    """While the command runs, SIGTERM and SIGHUP stop it through :class:`_Stopped` (the
+    temporary files of exports are removed on the way out); the previous handlers are put
+    back after. Outside the main thread nothing is installed (signals cannot be handled
+    there)."""
+    previous = {}
+    for name in ("SIGTERM", "SIGHUP"):
+        number = getattr(signal, name, None)
+        if number is None:
+            continue
+        try:
+            previous[number] = signal.signal(number, _stop)
+        except (ValueError, OSError):  # not the main thread
+            pass
+    try:
+        yield
+    finally:
+        for number, handler in previous.items():
+            signal.signal(number, handler)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = _parser()
@@ -311,6 +362,19 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.print_help()
         return EXIT_OK
     args = parser.parse_args(argv)
+    try:
+        with _stop_on_signals():
+            return _dispatch(parser, args)
+    except BrokenPipeError:
+        # The reader of standard output went away: stop quietly. Python would report the
+        # failed flush of stdout at exit; point stdout at /dev/null so that it has nothing to do.
+        with contextlib.suppress(OSError, ValueError):
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_PIPE_CLOSED
+
+
+def _dispatch(parser: argparse.ArgumentParser, args: argparse.Namespace) -> int:
     try:
         if args.command == "check":
             return _check(args)
@@ -332,6 +396,15 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("study-audit: interrupted.", file=sys.stderr)
         return 130
+    except _Stopped as stop:
+        from audit.export import remove_pending_temporary_files
+
+        remove_pending_temporary_files()
+        name = signal.Signals(stop.number).name
+        print(f"study-audit: stopped by {name}; no export was replaced.", file=sys.stderr)
+        return 128 + stop.number
+    except BrokenPipeError:
+        raise
     except Exception as exc:
         if getattr(args, "debug", False):
             raise
@@ -397,6 +470,7 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
     for target in (run.json_out, run.csv_out, run.xlsx_out, run.html_out, run.report_out):
         if target is not None:
             refuse_overwrite(target, reads)
+    _refuse_shared_targets(run)
     to_stdout = "-" in (run.json_out, run.csv_out, run.html_out)
     exports = [
         ("writing JSON", run.json_out),
@@ -606,6 +680,35 @@ def _audit_with_exports(
             progress("writing workbook")
             workbook.finish(result)
     return result
+
+
+def _refuse_shared_targets(run: CheckRun) -> None:
+    """Two exports given the same file (``--json X --csv X``, or the same file by two names)
+    are refused: the second would silently replace the first. Standard output (``-``) is
+    checked by :func:`check_stdout`."""
+    named = [
+        (option, target)
+        for option, target in (
+            ("--json", run.json_out),
+            ("--csv", run.csv_out),
+            ("--xlsx", run.xlsx_out),
+            ("--report", run.report_out),
+            ("--html", run.html_out),
+        )
+        if target is not None
+    ]
+    for i, (first, a) in enumerate(named):
+        for second, b in named[i + 1 :]:
+            if "-" in (str(a), str(b)):
+                continue  # standard output: at most one export, see check_stdout
+            pa, pb = Path(a), Path(b)
+            same = str(a) == str(b) or pa.resolve() == pb.resolve()
+            with contextlib.suppress(OSError):
+                same = same or (pa.exists() and pb.exists() and os.path.samefile(pa, pb))
+            if same:
+                raise ConfigError(
+                    f"{first} and {second} both write to {a}; give each export its own file."
+                )
 
 
 def exit_status(result: AuditResult, fail_on: str | None) -> int:

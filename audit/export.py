@@ -11,6 +11,7 @@ from __future__ import annotations
 import contextlib
 import csv
 import io
+import itertools
 import os
 import re
 import sys
@@ -34,7 +35,9 @@ __all__ = [
     "atomic_output",
     "files_read",
     "neutralise_formula",
+    "pending_temporary_files",
     "refuse_overwrite",
+    "remove_pending_temporary_files",
     "studies_frame",
     "write_csv",
     "write_json",
@@ -55,7 +58,11 @@ _PLAIN_NUMBER = re.compile(r"^[+-]?(\d[\d,]*\.?\d*|\.\d+)([eE][+-]?\d+)?%?$")
 def atomic_output(path: str | Path, mode: str = "w") -> Iterator[IO]:
     """Open ``path`` for writing through a temporary file renamed into place on success.
 
-    ``path`` ``"-"`` writes to standard output instead.
+    ``path`` ``"-"`` writes to standard output instead. A path that exists and is not a regular
+    file (``/dev/null``, a named pipe, a terminal) is written directly: renaming a file over a
+    device would replace the device. A failed write (a full disk) is an :class:`OutputError`
+    and leaves no temporary file; so does a run stopped by a signal the command line handles
+    (see :func:`pending_temporary_files`).
     """
     if str(path) == "-":
         stream = sys.stdout.buffer if "b" in mode else sys.stdout
@@ -65,24 +72,60 @@ def atomic_output(path: str | Path, mode: str = "w") -> Iterator[IO]:
     target = Path(path)
     if target.is_dir():
         raise OutputError(f"{target} is a folder; give a file name for the export.")
+    encoding = None if "b" in mode else "utf-8"
+    newline = None if "b" in mode else ""
+    if target.exists() and not target.is_file():
+        try:
+            with open(target, mode, encoding=encoding, newline=newline) as handle:
+                yield handle
+        except OSError as exc:
+            raise OutputError(_write_failure(target, exc)) from exc
+        return
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     except OSError as exc:
         raise OutputError(f"{target}: cannot write here ({exc.strerror or exc}).") from exc
+    _PENDING.add(tmp)
     try:
         # mkstemp creates the file readable by its owner only; give the export the mode a
         # plainly created file would have (or keep the mode of the file it replaces).
         os.chmod(tmp, target.stat().st_mode & 0o777 if target.exists() else 0o666 & ~_umask())
-        encoding = None if "b" in mode else "utf-8"
-        newline = None if "b" in mode else ""
         with os.fdopen(fd, mode, encoding=encoding, newline=newline) as handle:
             yield handle
         os.replace(tmp, target)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise OutputError(_write_failure(target, exc)) from exc
     except BaseException:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+    finally:
+        _PENDING.discard(tmp)
+
+
+#: Temporary files of the exports being written (removed if the run is stopped by a signal).
+_PENDING: set[str] = set()
+
+
+def pending_temporary_files() -> list[str]:
+    """The temporary files :func:`atomic_output` has open now (for a signal handler)."""
+    return sorted(_PENDING)
+
+
+def remove_pending_temporary_files() -> None:
+    """Remove the temporary files of unfinished exports (the targets are left as they were)."""
+    for tmp in list(_PENDING):
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        _PENDING.discard(tmp)
+
+
+def _write_failure(target: Path, exc: OSError) -> str:
+    reason = exc.strerror or str(exc) or type(exc).__name__
+    return f"{target}: the export could not be written ({reason}); nothing was replaced."
 
 
 def _umask() -> int:
@@ -341,12 +384,17 @@ def _csv_cells(column: pd.Series) -> tuple[list[object], np.ndarray | None]:
     ):
         values = column.to_numpy(dtype=float)
         cells = values.astype(object)
-        cells[np.isnan(values)] = None
+        # Blank where not computed, and where not finite: "inf" is no number a spreadsheet
+        # reads, and the JSON export writes null there too.
+        cells[~np.isfinite(values)] = None
         return cells.tolist(), None
     if pd.api.types.is_integer_dtype(column.dtype) and not column.hasnans:
         return column.to_numpy(dtype=np.int64).tolist(), None
     cells = np.array(column.astype(object).to_numpy(dtype=object), dtype=object)  # a copy
     cells[pd.isna(cells)] = None
+    floats = np.fromiter(map(isinstance, cells.tolist(), itertools.repeat(float)), dtype=bool)
+    if floats.any():  # a number held among text (a user column given as a frame)
+        cells[np.flatnonzero(floats)[~np.isfinite(cells[floats].astype(float))]] = None
     codes, uniques = pd.factorize(cells, use_na_sentinel=True)
     texts = np.asarray(uniques, dtype=object).tolist()
     with_return = [i for i, v in enumerate(texts) if isinstance(v, str) and "\r" in v]

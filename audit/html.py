@@ -31,6 +31,7 @@ import numpy as np
 from audit import __version__
 from audit._format import format_number
 from audit.export import CAUTION, atomic_output, refuse_input
+from audit.plots import PALETTE
 from audit.portfolio import BLANK_GROUP
 from audit.report import (
     _EFFECT_COLUMNS,
@@ -79,8 +80,6 @@ STUDY_METRICS = (
 _TEMPLATES = Path(__file__).resolve().parent / "templates"
 #: Curve plot geometry (SVG user units).
 _W, _H, _LEFT, _RIGHT, _TOP, _BOTTOM = 560, 300, 52, 16, 16, 44
-_CURVE_COLOURS = {"planned": "#1F5A96", "realized": "#C8553D"}
-_MARK_COLOURS = {"planned_effect": "#3B3B3B", "mde": "#8C4FA8", "sesoi": "#2E8B57"}
 _MARK_DASH = {"planned_effect": "", "mde": "6 4", "sesoi": "2 3"}
 
 
@@ -214,7 +213,7 @@ def _curve_plot(
             f"{px(x):.1f},{py(p):.1f}" for x, p in zip(effect[ok], power[ok], strict=True)
         )
         if points:
-            lines.append({"points": points, "colour": _CURVE_COLOURS[stage], "label": label})
+            lines.append({"points": points, "colour": PALETTE[stage], "label": label})
     marks = []
     for mark in curve_marks(result, pos):
         for x in (mark["x"], mark["mirror"]):
@@ -222,7 +221,7 @@ def _curve_plot(
                 marks.append(
                     {
                         "x": f"{px(x):.1f}",
-                        "colour": _MARK_COLOURS[mark["kind"]],
+                        "colour": PALETTE[mark["kind"]],
                         "dash": _MARK_DASH[mark["kind"]],
                         "label": f"{mark['label']} = {format_number(mark['x'])}",
                         "first": x == mark["x"],
@@ -237,6 +236,7 @@ def _curve_plot(
             "x": f"{px(planned[0]['x']):.1f}",
             "y": f"{py(achieved):.1f}",
             "label": f"{achieved:.2f}",
+            "colour": PALETTE["realized"],
         }
     return {
         "width": _W,

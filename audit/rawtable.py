@@ -23,6 +23,7 @@ __all__ = [
     "MAX_UNPACKED_BYTES",
     "SHEET_ROWS",
     "UNCACHED",
+    "UNICODE_DASHES",
     "RawTable",
     "Sheet",
     "normalise_header",
@@ -106,7 +107,14 @@ def normalise_header(text: object) -> str:
     'study_id'
     """
     s = str(text).strip().lower()
-    return re.sub(r"[\s\-_]+", "_", s).strip("_")
+    # Control characters (invisible in a spreadsheet) count as spaces.
+    return re.sub(rf"[\s\-_{UNICODE_DASHES}\x00-\x1f\x7f-\x9f]+", "_", s).strip("_")
+
+
+#: Dashes other than the ASCII hyphen-minus that a header may hold (word processors and
+#: spreadsheet autocorrect write them): hyphen, non-breaking hyphen, figure dash, en and em
+#: dashes, horizontal bar, minus sign, small and full-width hyphen-minus. Read like '-'.
+UNICODE_DASHES = "\u2010\u2011\u2012\u2013\u2014\u2015\u2212\ufe63\uff0d"
 
 
 @dataclass

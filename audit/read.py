@@ -74,6 +74,12 @@ def read_table(path: str | Path, sheet: str | None = None) -> RawTable:
         raise InputError(f"{path}: no such file.")
     if path.is_dir():
         raise InputError(f"{path} is a folder; give a .xlsx, .csv or .tsv file.")
+    if not path.is_file():
+        # A named pipe would block the read until a writer comes (and could be read once).
+        raise InputError(
+            f"{path} is not a regular file (a named pipe, socket or device); save the table to "
+            "a .xlsx, .csv or .tsv file and give that."
+        )
     try:
         size = path.stat().st_size
         if size > MAX_FILE_BYTES:

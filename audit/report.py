@@ -170,7 +170,16 @@ def _results_lines(portfolio: dict) -> list[str]:
     lines = []
     verdicts = portfolio.get("ci_verdict_counts") or {}
     if verdicts:
-        order = ("detected", "excludes_sesoi", "excludes_planned_effect", "inconclusive")
+        order = (
+            "detected",
+            "excludes_sesoi",
+            "excludes_planned_effect",
+            "non_inferior",
+            "equivalent",
+            "inferior",
+            "not_equivalent",
+            "inconclusive",
+        )
         counts = " · ".join(f"{k} {verdicts[k]:,}" for k in order if verdicts.get(k))
         lines.append(f"{sum(verdicts.values()):,} studies with a confidence interval: {counts}")
     exaggeration = portfolio.get("median_exaggeration")

@@ -85,7 +85,8 @@ CONTRACT_METRICS: dict[str, str] = {
     "exaggeration": "expected exaggeration ratio of a significant estimate (Type M)",
     "observed_power": "power at the observed effect: a transform of the p-value, never evidence",
     "ci_verdict": "what the reported CI shows: detected, excludes_planned_effect, "
-    "excludes_sesoi or inconclusive",
+    "excludes_sesoi or inconclusive; against a margin: non_inferior, inferior, equivalent, "
+    "not_equivalent or inconclusive",
     "events_required_plan": "events needed at the planned hazard ratio (survival)",
     "icc_ratio": "realized / planned intracluster correlation (cluster designs)",
     "events_ratio": "realized / planned number of events (survival)",

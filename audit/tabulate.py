@@ -14,6 +14,7 @@ from audit.rawtable import (
     HEADER_SEARCH_ROWS,
     MAX_COLUMNS,
     MAX_ROWS,
+    UNICODE_DASHES,
     RawTable,
     Sheet,
     column_letter,
@@ -232,6 +233,13 @@ def to_raw(
         keep.append(j)
         written.append(str(text).strip())
         names.append(normalise_header(text) or f"column_{column_letter(j).lower()}")
+        dashes = sorted({ch for ch in str(text) if ch in UNICODE_DASHES})
+        if dashes:
+            codes = ", ".join(f"U+{ord(ch):04X}" for ch in dashes)
+            notes.append(
+                f"the header '{str(text).strip()}' (column {column_letter(j)}) holds a dash "
+                f"other than '-' ({codes}); it was read like '-', as {names[-1]}"
+            )
     if len(keep) > MAX_COLUMNS:
         raise InputError(too_many_columns(source, len(keep)))
     seen: dict[str, int] = {}

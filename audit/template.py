@@ -100,8 +100,15 @@ def _ordered_columns() -> list[Column]:
     return sorted(COLUMNS, key=lambda c: order.index(c.group) if c.group in order else len(order))
 
 
+#: Columns of non-inferiority and equivalence tests: used by the designs that can test them.
+_MARGIN_COLUMNS = ("hypothesis", "margin", "control_effect")
+
+
 def _designs_using(column: str) -> list[str]:
-    """Designs that read ``column`` (each design's declared :meth:`Design.inputs`)."""
+    """Designs that read ``column`` (each design's declared :meth:`Design.inputs`); the margin
+    columns by the designs that test margins (for binary designs: the risk difference)."""
+    if column in _MARGIN_COLUMNS:
+        return [name for name, design in DESIGNS.items() if design.margin_support() is None]
     return [name for name, design in DESIGNS.items() if column in design.inputs()]
 
 
@@ -178,11 +185,30 @@ def write_template(path: str | Path) -> None:
         guide.append([spec.name, heading, spec.meaning, _allowed(spec), users or "-"])
         guide.cell(row=guide.max_row, column=2).fill = PatternFill("solid", fgColor=colour)
     guide.append([])
-    guide.append(["design", "", "what it is", "effect unit", "standardized as"])
+    guide.append(
+        [
+            "design",
+            "",
+            "what it is",
+            "effect unit",
+            "standardized as",
+            "non-inferiority, equivalence",
+        ]
+    )
     guide.cell(row=guide.max_row, column=1).font = bold
     for name, design in DESIGNS.items():
-        guide.append([name, "", design.title, design.effect_unit, design.standardized_as or "-"])
-    for letter, width in zip("ABCDE", (24, 14, 70, 40, 40), strict=True):
+        why = design.margin_support()
+        guide.append(
+            [
+                name,
+                "",
+                design.title,
+                design.effect_unit,
+                design.standardized_as or "-",
+                "yes (hypothesis, margin)" if why is None else "no: " + why,
+            ]
+        )
+    for letter, width in zip("ABCDEF", (24, 14, 70, 40, 40, 40), strict=True):
         guide.column_dimensions[letter].width = width
     for row in guide.iter_rows(min_row=2):
         for cell in row:

@@ -33,13 +33,14 @@ import math
 import re
 from collections.abc import Iterable
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import IO, TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 import xlsxwriter
 
 from audit._format import format_number
+from audit.errors import OutputError
 from audit.export import CAUTION, ILLEGAL_XLSX, atomic_output, files_read, refuse_overwrite
 from audit.jsonout import portfolio_document
 from audit.metrics import METRICS
@@ -751,6 +752,68 @@ def write_workbook(result: AuditResult, path: str | Path) -> None:
         export.finish(result)
 
 
+class _Guarded:
+    """The export's file as xlsxwriter's zip writer sees it: after a failed write, or once the
+    export is over, every further call does nothing.
+
+    A write that fails (a full disk) leaves the zip writer inside xlsxwriter unfinished; when
+    it is collected, later, it tries again to write its directory to a file that is closed by
+    then, and Python prints "Exception ignored ... Traceback" on standard error. The failure
+    itself has already been reported (as one sentence) by then.
+    """
+
+    def __init__(self, handle: IO[bytes]) -> None:
+        self._handle: IO[bytes] | None = handle
+        self._position = 0  # kept so that the zip writer's arithmetic stays consistent
+        try:
+            self._seekable = bool(handle.seekable())
+        except (OSError, ValueError, AttributeError):
+            self._seekable = False
+
+    def retire(self) -> None:
+        self._handle = None
+
+    def write(self, data: bytes) -> int:
+        if self._handle is not None:
+            try:
+                self._handle.write(data)
+            except (OSError, ValueError):
+                self._handle = None
+                raise
+        self._position += len(data)
+        return len(data)
+
+    def tell(self) -> int:
+        if not self._seekable:  # a pipe: the zip writer then writes without seeking back
+            raise OSError("not seekable")
+        return self._position
+
+    def seek(self, offset: int, whence: int = 0) -> int:
+        if self._handle is not None:
+            try:
+                self._position = self._handle.seek(offset, whence)
+            except (OSError, ValueError):
+                self._handle = None
+                raise
+        else:
+            self._position = offset if whence == 0 else self._position + offset
+        return self._position
+
+    def flush(self) -> None:
+        if self._handle is not None:
+            try:
+                self._handle.flush()
+            except (OSError, ValueError):
+                self._handle = None
+                raise
+
+    def seekable(self) -> bool:
+        return self._seekable
+
+    def writable(self) -> bool:
+        return True
+
+
 class WorkbookExport:
     """The annotated workbook, streamed: xlsxwriter's constant-memory mode writes each row as
     it comes, with formats made once. The ``audit`` sheet takes the studies one part at a time
@@ -764,7 +827,8 @@ class WorkbookExport:
         self._stack = contextlib.ExitStack()
 
     def __enter__(self) -> WorkbookExport:
-        handle = self._stack.enter_context(atomic_output(self._path, "wb"))
+        handle = _Guarded(self._stack.enter_context(atomic_output(self._path, "wb")))
+        self._stack.callback(handle.retire)
         self._wb = xlsxwriter.Workbook(
             handle,
             {"constant_memory": True, "strings_to_formulas": False, "strings_to_urls": False},
@@ -793,4 +857,13 @@ class WorkbookExport:
         _rules_sheet(self._wb, result, self._styles)
         _invalid_sheet(self._wb, result, self._styles)
         _readme_sheet(self._wb, result, self._styles)
-        self._wb.close()
+        from xlsxwriter.exceptions import FileCreateError
+
+        try:
+            self._wb.close()
+        except FileCreateError as exc:  # xlsxwriter's wrapper of the OSError of a write
+            cause = exc.__cause__ or exc.__context__
+            reason = getattr(cause, "strerror", None) or str(exc)
+            raise OutputError(
+                f"{self._path}: the export could not be written ({reason}); nothing was replaced."
+            ) from exc

@@ -27,7 +27,9 @@ def test_demo_has_an_audited_study_of_every_design(tmp_path):
             assert set(METRICS) <= set(s["metrics"])
             if s["metrics"]["planned_effect_used"] is not None:
                 assert s["metrics"]["power_at_planned_effect"] is not None, s["study_id"]
-            assert s["metrics"]["mde"] is not None, s["study_id"]
+            # Non-inferiority and equivalence rows have detectable_margin in place of the MDE.
+            shown = "detectable_margin" if s["metrics"]["detectable_margin"] is not None else "mde"
+            assert s["metrics"][shown] is not None, s["study_id"]
 
 
 def _explained(metric: str, notes: list[str]) -> bool:

@@ -431,6 +431,26 @@ def _usable_terminal_escapes(doc):
     assert all(s["status"] == "audited" for s in doc["studies"])
 
 
+def _usable_unicode_dashes(doc):
+    _expect_plain(doc)
+    for written in (
+        "planned\u2010n1",
+        "realized\u2011n1",
+        "planned\u2013sd",
+        "planned\u2212effect",
+    ):
+        assert _note_in(doc, f"the header '{written}'"), written
+    assert _note_in(doc, "(U+2212); it was read like '-', as planned_effect")
+    assert doc["studies"][0]["metrics"]["mde"] is not None
+
+
+def _usable_duplicate_control(doc):
+    s = _by_id(doc)
+    assert s["OM-1"]["status"] == "audited"
+    assert s["OM-2"]["status"] == "invalid"
+    assert any("given twice with different values" in e for e in s["OM-2"]["errors"])
+
+
 def _usable_bad_values(doc):
     pass  # checked case by case in test_bad_values
 
@@ -458,6 +478,8 @@ USABLE = {
     "formula_text.csv": _usable_formula_text,
     "bad_values.csv": _usable_bad_values,
     "terminal_escapes.csv": _usable_terminal_escapes,
+    "unicode_dash_headers.csv": _usable_unicode_dashes,
+    "duplicate_columns_control.csv": _usable_duplicate_control,
 }
 
 
@@ -801,9 +823,34 @@ def test_fuzz_workbook_parts(tmp_path_factory, parts):
     _read_or_refuse(path)
 
 
+#: Awkward pieces of text the fuzzers mix in: a lone separator, a bare carriage return,
+#: control characters and escape sequences, and digits of other scripts (Arabic-Indic,
+#: Extended Arabic-Indic, Devanagari, full-width), which a number parser must read or refuse.
+_AWKWARD = [
+    ",",
+    ";",
+    "\r",
+    "a\rb",
+    "\r\n",
+    "\x00",
+    "\x01",
+    "\x1b[31m",
+    "\x1b]52;c;aGk=\x07",
+    "\x85",
+    "\u202e",
+    "\u0663\u0660",  # ٣٠
+    "\u06f4\u06f0",  # ۴۰
+    "\u0968\u0966",  # २०
+    "\uff14\uff10",  # ４０
+    "\u0660.\u0665",  # ٠.٥
+]
+_AWKWARD_TEXT = st.lists(
+    st.one_of(st.sampled_from(_AWKWARD), st.text(max_size=3)), min_size=1, max_size=4
+).map("".join)
 _CELL = st.one_of(
     st.none(),
     st.text(max_size=12),
+    _AWKWARD_TEXT,
     st.sampled_from(
         [
             "NA",
@@ -901,7 +948,9 @@ def test_fuzz_random_cells(tmp_path_factory, columns, rows, data):
 @given(
     body=st.lists(
         st.lists(
-            st.text(alphabet=st.characters(codec="utf-8"), max_size=8), min_size=0, max_size=5
+            st.one_of(st.text(alphabet=st.characters(codec="utf-8"), max_size=8), _AWKWARD_TEXT),
+            min_size=0,
+            max_size=5,
         ),
         max_size=8,
     ),
@@ -947,6 +996,8 @@ def test_archive_limit_constants_are_documented():
         "MAX_UNPACKED_BYTES",
         "MAX_PACKING_RATIO",
         "MAX_ARCHIVE_MEMBERS",
+        "SHEET_ROWS",
+        "MAX_CELL_CHARS",
     ):
         assert name in text, name
         assert getattr(rawtable, name) > 0
@@ -966,3 +1017,176 @@ def test_zip_directory_sizes_are_checked_before_parsing(corpus, monkeypatch):
     with zipfile.ZipFile(corpus["zip_bomb.xlsx"]) as z:
         info = z.getinfo("xl/worksheets/sheet1.xml")
         assert info.file_size / info.compress_size > 500
+
+
+# -- clean refusals (issue 20) ---------------------------------------------------------------------
+
+
+def test_every_export_of_a_file_with_control_characters_is_written(corpus, tmp_path, capsys):
+    path = corpus["duplicate_columns_control.csv"]
+    out = tmp_path / "a.xlsx"
+    status = main(
+        ["check", str(path), "--quiet", "--xlsx", str(out), "--csv", str(tmp_path / "a.csv")]
+    )
+    assert status == 0, capsys.readouterr().err
+    import openpyxl
+
+    ws = openpyxl.load_workbook(out)["audit"]
+    headers = [c.value for c in next(ws.iter_rows(max_row=1))]
+    assert any(h and "\ufffd" in h for h in headers)  # replaced, not dropped
+
+
+def _export_options(target: str) -> list[list[str]]:
+    return [["--json", target], ["--csv", target], ["--xlsx", target]]
+
+
+@pytest.mark.skipif(not Path("/dev/full").exists(), reason="no /dev/full")
+@pytest.mark.parametrize("option", ["--json", "--csv", "--xlsx"])
+def test_a_full_disk_is_one_sentence(corpus, capsys, option):
+    before = Path("/dev/full").stat()
+    status = main(["check", str(corpus["bom.csv"]), "--quiet", option, "/dev/full"])
+    err = capsys.readouterr().err
+    assert status == 2 and err.count("\n") == 1, err
+    assert "could not be written (No space left on device)" in err
+    assert "Traceback" not in err and "Exception ignored" not in err
+    # The device is still the device (a rename over it would have replaced it by a file).
+    import stat
+
+    assert (
+        stat.S_ISCHR(Path("/dev/full").stat().st_mode)
+        and before.st_rdev == Path("/dev/full").stat().st_rdev
+    )
+
+
+def test_a_failed_workbook_write_prints_no_ignored_exception(corpus, tmp_path):
+    # In a child process: "Exception ignored" is printed when the zip writer is collected.
+    import subprocess
+
+    code = (
+        "import sys, builtins\n"
+        "from audit.cli import main\n"
+        "import audit.workbook as w\n"
+        "class Full:\n"
+        "    def __init__(self, h): self.h = h\n"
+        "    def write(self, d): raise OSError(28, 'No space left on device')\n"
+        "    def __getattr__(self, n): return getattr(self.h, n)\n"
+        "real = w.atomic_output\n"
+        "import contextlib\n"
+        "@contextlib.contextmanager\n"
+        "def fake(p, m='w'):\n"
+        "    with real(p, m) as h: yield Full(h)\n"
+        "w.atomic_output = fake\n"
+        f"args = ['check', {str(corpus['bom.csv'])!r}, '--quiet']\n"
+        f"sys.exit(main(args + ['--xlsx', {str(tmp_path / 'a.xlsx')!r}]))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 2, done.stderr
+    assert done.stderr.count("\n") == 1 and "No space left on device" in done.stderr
+    assert list(tmp_path.iterdir()) == []  # no temporary file left
+
+
+def test_broken_pipe_exits_quietly(corpus):
+    import subprocess
+
+    for option in ("--json", "--csv"):
+        cmd = [
+            sys.executable,
+            "-m",
+            "audit",
+            "check",
+            str(corpus["bom.csv"]),
+            "--quiet",
+            option,
+            "-",
+        ]
+        with subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE) as child:
+            child.stdout.close()  # the reader goes away at once (like head)
+            err = child.stderr.read().decode()
+            status = child.wait(timeout=120)
+        assert status == 141 and err == "", (status, err)
+
+
+def test_sigterm_leaves_no_temporary_file(corpus, tmp_path):
+    import signal
+    import subprocess
+    import time
+
+    # A child that writes an export slowly, then is sent SIGTERM mid-write.
+    code = (
+        "import sys, time\n"
+        "import audit.export as e\n"
+        "def slow(result, path):\n"
+        "    with e.atomic_output(path) as h:\n"
+        "        h.write('partial'); h.flush(); print('writing', flush=True); time.sleep(60)\n"
+        "e.write_json = slow\n"
+        "import audit.cli\n"
+        f"args = ['check', {str(corpus['bom.csv'])!r}, '--quiet']\n"
+        f"sys.exit(audit.cli.main(args + ['--json', {str(tmp_path / 'a.csv')!r}]))\n"
+    )
+    with subprocess.Popen(
+        [sys.executable, "-c", code], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+    ) as child:
+        assert child.stdout.readline().strip() == "writing"
+        assert next(p.name for p in tmp_path.iterdir()).startswith(".a.csv.")
+        child.send_signal(signal.SIGTERM)
+        status = child.wait(timeout=60)
+        err = child.stderr.read()
+    assert status == 128 + signal.SIGTERM, err
+    assert "stopped by SIGTERM" in err and "Traceback" not in err
+    time.sleep(0.1)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_fifo_as_input_is_refused_at_once(tmp_path, capsys):
+    import os
+
+    fifo = tmp_path / "portfolio.csv"
+    os.mkfifo(fifo)
+    status = main(["check", str(fifo), "--quiet"])
+    err = capsys.readouterr().err
+    assert status == 2 and "is not a regular file (a named pipe" in err
+
+
+@pytest.mark.parametrize(
+    "first,second", [("--json", "--csv"), ("--csv", "--xlsx"), ("--json", "--xlsx")]
+)
+def test_two_exports_to_one_file_are_refused(corpus, tmp_path, capsys, first, second):
+    target = str(tmp_path / "out.dat")
+    status = main(["check", str(corpus["bom.csv"]), "--quiet", first, target, second, target])
+    err = capsys.readouterr().err
+    assert status == 2 and f"{first} and {second} both write to" in err
+    assert not (tmp_path / "out.dat").exists()
+    # The same file through another spelling of its path counts too.
+    other = str(tmp_path / "." / "out.dat")
+    assert main(["check", str(corpus["bom.csv"]), "--quiet", first, target, second, other]) == 2
+    capsys.readouterr()
+    assert main(["check", str(corpus["bom.csv"]), "--quiet", "--json", "-", "--csv", "-"]) == 2
+    assert "both ask for standard output" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("value", ["nan", "inf", "-inf", "NaN"])
+def test_respond_effect_must_be_finite(corpus, capsys, value):
+    with pytest.raises(SystemExit) as stop:
+        main(["respond", str(corpus["bom.csv"]), "OM-1", f"--effect={value}"])
+    assert stop.value.code == 2
+    assert "expected a finite number" in capsys.readouterr().err
+
+
+def test_csv_export_never_holds_inf(tmp_path):
+    import numpy as np
+
+    table = pd.DataFrame(
+        {
+            "study_id": ["A", "B"],
+            "design": ["estimate", "estimate"],
+            "realized_se": [1.0, 1.0],
+            "weight": [float("inf"), "x"],
+            "score": [float("-inf"), float("inf")],
+        }
+    )
+    result = audit.audit_table(table)
+    result.metrics.loc[0, "mde"] = np.inf  # a metric that came out infinite
+    export.write_csv(result, tmp_path / "a.csv")
+    rows = list(csv.DictReader((tmp_path / "a.csv").open(newline="")))
+    assert "inf" not in (tmp_path / "a.csv").read_text().lower()
+    assert rows[0]["mde"] == "" and rows[0]["weight"] == "" and rows[1]["weight"] == "x"

@@ -440,3 +440,138 @@ def test_respond_writes_the_non_inferiority_version():
     other = respond_text(result, "EQ")
     assert "two one-sided tests, each at α = 0.05" in other
     assert "90% CI" in other and "neither shows equivalence" in other
+
+
+# -- robustness -----------------------------------------------------------------------------------
+
+_SUPPORTED = (
+    "one_mean",
+    "paired_means",
+    "two_means",
+    "crossover",
+    "cluster_two_means",
+    "two_proportions",
+    "survival",
+    "estimate",
+)
+
+
+@pytest.mark.parametrize("seed", [4, 9])
+def test_random_margin_rows_audit_and_every_null_metric_has_a_note(seed):
+    # Random non-inferiority and equivalence rows of every supported design with random blanks:
+    # none raises (RuntimeWarnings are errors in the test run), and each null metric of an
+    # audited row is explained by a note.
+    from test_designs_all import _explained
+
+    rng = np.random.default_rng(seed)
+    k = 240
+    design = rng.choice(_SUPPORTED, k)
+    n1 = rng.integers(10, 300, k).astype(float)
+    survival = design == "survival"
+    p1 = rng.uniform(0.1, 0.9, k)
+    data = {
+        "study_id": [f"M{i}" for i in range(k)],
+        "design": design,
+        "hypothesis": rng.choice(["non_inferiority", "equivalence"], k),
+        "margin": np.where(survival, rng.uniform(1.05, 1.6, k), rng.uniform(0.05, 2.0, k)),
+        "direction": rng.choice(["increase", "decrease"], k),
+        "alpha": rng.choice([0.025, 0.05], k),
+        "target_power": rng.choice([0.8, 0.9], k),
+        "planned_n1": n1,
+        "planned_n2": np.round(n1 * rng.choice([0.5, 1.0, 2.0], k)),
+        "realized_n1": np.round(n1 * rng.uniform(0.5, 1.0, k)),
+        "realized_n2": np.round(n1 * rng.uniform(0.5, 1.0, k)),
+        "planned_sd": rng.uniform(0.5, 5.0, k),
+        "realized_sd": rng.uniform(0.5, 5.0, k),
+        "planned_effect": np.where(
+            survival, np.exp(rng.uniform(-0.1, 0.1, k)), rng.normal(0, 0.1, k)
+        ),
+        "planned_p1": p1,
+        "planned_p2": np.clip(p1 + rng.uniform(-0.05, 0.05, k), 0.01, 0.99),
+        "realized_p1": np.clip(p1 + rng.uniform(-0.05, 0.05, k), 0.01, 0.99),
+        "planned_icc": rng.uniform(0.0, 0.1, k),
+        "planned_cluster_size": rng.uniform(5, 30, k),
+        "planned_events": np.round(n1 * 1.5 * rng.uniform(0.3, 0.9, k)),
+        "realized_events": np.round(n1 * 1.5 * rng.uniform(0.2, 0.8, k)),
+        "planned_se": rng.uniform(0.05, 0.5, k),
+        "realized_se": rng.uniform(0.05, 0.5, k),
+        "control_effect": np.where(survival, rng.uniform(0.4, 0.9, k), rng.uniform(0.2, 3.0, k)),
+        "observed_effect": np.where(survival, np.exp(rng.normal(0, 0.1, k)), rng.normal(0, 0.2, k)),
+        "observed_se": rng.uniform(0.02, 0.4, k),
+        "planned_dropout": rng.choice([0.0, 0.1, 0.2], k),
+    }
+    binary = design == "two_proportions"
+    data["planned_effect"] = np.where(binary, np.nan, data["planned_effect"])
+    df = pd.DataFrame(data).astype(object)
+    blank = rng.uniform(size=df.shape) < 0.15
+    blank[:, :4] = False  # id, design, hypothesis, margin
+    for j, column in enumerate(df.columns):
+        blank[:, j] |= ~np.isin(
+            design, [n for n, d in audit.DESIGNS.items() if column in d.inputs()]
+        )
+    df = df.mask(blank)
+    result = audit.audit_table(df)
+    assert len(result.table) == k
+    audited = np.flatnonzero(result.valid)
+    assert len(audited) > k // 2
+    notes = result.by_row(result.notes, "text")
+    for i in audited:
+        row = result.metrics.iloc[i]
+        for metric in audit.METRICS:
+            if pd.isna(row[metric]):
+                assert _explained(metric, notes[i]), (design[i], metric, notes[i])
+        power = row["power_at_planned_effect"]
+        assert np.isnan(power) or 0.0 <= power <= 1.0
+
+
+# -- Farrington-Manning -------------------------------------------------------------------------
+
+
+def test_restricted_proportions_maximise_the_constrained_likelihood():
+    # Issue 15 (a grid search and the Miettinen-Nurminen cubic): 0.8 vs 0.8 with a null
+    # difference of -0.1 has the restricted maximum at 0.84106 (statsmodels'
+    # score_test_proportions_2indep gives 0.8363 there and is not used as a reference).
+    from scipy import optimize
+
+    from audit.hypotheses import restricted_proportions
+
+    p1, p2 = restricted_proportions(0.8, 0.8, 1.0, -0.1)
+    assert float(p1) == pytest.approx(0.84106, abs=5e-6)
+    assert float(p2) == pytest.approx(float(p1) - 0.1, abs=1e-14)
+    # Random settings against scipy.optimize.minimize_scalar on the log-likelihood.
+    rng = np.random.default_rng(31)
+    k = 25
+    a, b = rng.uniform(0.05, 0.95, k), rng.uniform(0.05, 0.95, k)
+    r = rng.choice([0.5, 1.0, 2.0, 3.0], k)
+    d = rng.uniform(-0.25, 0.25, k)
+    got, _ = restricted_proportions(a, b, r, d)
+    for i in range(k):
+        lo, hi = max(0.0, -d[i]) + 1e-12, min(1.0, 1.0 - d[i]) - 1e-12
+
+        def nll(x, i=i):
+            y = x + d[i]
+            return -(
+                a[i] * np.log(x) + (1 - a[i]) * np.log(1 - x)
+                + r[i] * (b[i] * np.log(y) + (1 - b[i]) * np.log(1 - y))
+            )  # fmt: skip
+
+        best = optimize.minimize_scalar(nll, bounds=(lo, hi), method="bounded",
+                                        options={"xatol": 1e-12})  # fmt: skip
+        assert got[i] == pytest.approx(best.x, abs=1e-7)
+
+
+def test_farrington_manning_size_is_a_reproduction_method_for_proportions():
+    # Farrington & Manning (1990), sample-size formula for H0: p2 - p1 <= -M: n per group
+    # = (z_a sqrt(V0) + z_b sqrt(V1))^2 / M^2 with V0 at the restricted proportions on the
+    # margin. 0.8 vs 0.8, margin 0.1, one-sided .025, power .8: V0 = 2 x ... from the RMLE
+    # 0.84106 / 0.74106 (issue 15), V1 = 2 x 0.16.
+    v0 = 0.84106 * 0.15894 + 0.74106 * 0.25894
+    v1 = 2 * 0.16
+    n = (special.ndtri(0.975) * np.sqrt(v0) + special.ndtri(0.8) * np.sqrt(v1)) ** 2 / 0.01
+    planned = int(np.ceil(n))
+    row = dict(_NI, planned_n1=planned, planned_n2=planned)
+    m = _audit([row]).metrics.iloc[0]
+    assert m["plan_reproduced_by"] == "Farrington-Manning (restricted MLE variance)"
+    assert m["plan_discrepancy_closest"] == pytest.approx(0.0, abs=1e-12)
+    # The audit's own (Blackwelder) size differs: 2 x (z_a + z_b)^2 x 0.16 / 0.01 = 251.2.
+    assert m["n_required_plan"] == 2 * 252

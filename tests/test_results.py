@@ -387,7 +387,17 @@ def test_demo_json_carries_the_retrospective_block(tmp_path):
     for key in ("type_s", "exaggeration", "observed_power", "ci_verdict"):
         assert any(s["metrics"][key] is not None for s in audited), key
     verdicts = {s["metrics"]["ci_verdict"] for s in audited} - {None}
-    assert verdicts <= {"detected", "excludes_sesoi", "excludes_planned_effect", "inconclusive"}
+    assert verdicts <= {
+        "detected",
+        "excludes_sesoi",
+        "excludes_planned_effect",
+        "inconclusive",
+        # Non-inferiority and equivalence rows (issue 15).
+        "non_inferior",
+        "inferior",
+        "equivalent",
+        "not_equivalent",
+    }
     block = doc["portfolio"]["excess_significance"]
     assert set(block) >= {"observed", "expected", "p_value", "basis", "method"}
     assert 0.0 <= block["p_value"] <= 1.0
