@@ -34,13 +34,13 @@ from audit.export import CAUTION, atomic_output, refuse_input
 from audit.plots import PALETTE
 from audit.portfolio import BLANK_GROUP
 from audit.report import (
-    _EFFECT_COLUMNS,
-    _PAIR_LABELS,
-    _RESULT_COLUMNS,
-    _pairs,
+    EFFECT_COLUMNS,
+    RESULT_COLUMNS,
     build_overview,
     key_numbers,
+    pair_ratio,
     plan_reproduction,
+    planned_realized_pairs,
 )
 from audit.rules import SEVERITY_RANK
 
@@ -379,10 +379,10 @@ def _study_sections(
         else f.assign(item=[]),
         "item",
     )
-    pairs = _pairs()
+    pairs = planned_realized_pairs()
     wanted = [
         "study_id", "title", "_row", "design", "sides", "alpha", "comparisons", "target_power",
-        *(c for _, a, b in pairs for c in (a, b)), *_EFFECT_COLUMNS, *_RESULT_COLUMNS,
+        *(c for _, a, b in pairs for c in (a, b)), *EFFECT_COLUMNS, *RESULT_COLUMNS,
     ]  # fmt: skip
     # Plain records and columns once (a frame's row lookups cost per call).
     rows = table[[c for c in dict.fromkeys(wanted) if c in table.columns]].to_dict("records")
@@ -423,23 +423,15 @@ def _study_sections(
             f"target power {_num(row['target_power'])}"
         )
         section["pairs"] = []
-        for key, planned, realized in pairs:
+        for label, planned, realized in pairs:
             a, b = row.get(planned), row.get(realized)
             if _num(a) == "" and _num(b) == "":
                 continue
-            ratio = ""
-            if isinstance(a, float) and isinstance(b, float) and a and math.isfinite(a * b):
-                ratio = format_number(b / a)
             section["pairs"].append(
-                {
-                    "label": _PAIR_LABELS.get(key, key),
-                    "planned": _num(a),
-                    "realized": _num(b),
-                    "ratio": ratio,
-                }
+                {"label": label, "planned": _num(a), "realized": _num(b), "ratio": pair_ratio(a, b)}
             )
-        section["effects"] = [(c, _num(row[c])) for c in _EFFECT_COLUMNS if _num(row.get(c))]
-        section["reported"] = [(c, _num(row[c])) for c in _RESULT_COLUMNS if _num(row.get(c))]
+        section["effects"] = [(c, _num(row[c])) for c in EFFECT_COLUMNS if _num(row.get(c))]
+        section["reported"] = [(c, _num(row[c])) for c in RESULT_COLUMNS if _num(row.get(c))]
         section["reproduction"] = plan_reproduction(result, pos)
         section["key_numbers"] = key_numbers(result, pos)
         cells = [(name, _num(values[name][pos])) for name in shown]

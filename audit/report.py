@@ -35,12 +35,17 @@ if TYPE_CHECKING:
     from audit.pipeline import AuditResult
 
 __all__ = [
+    "EFFECT_COLUMNS",
     "MAX_LISTED",
+    "PAIR_LABELS",
+    "RESULT_COLUMNS",
     "THEME",
     "StageBar",
     "build_overview",
     "format_number",
     "make_console",
+    "pair_ratio",
+    "planned_realized_pairs",
     "render_report",
     "render_rule",
     "render_rules",
@@ -976,19 +981,29 @@ def render_report(
 # -- one study in depth ---------------------------------------------------------------------------
 
 
-def _pairs() -> list[tuple[str, str, str]]:
-    """(label, planned column, realized column) for every planned/realized pair of the input."""
+def planned_realized_pairs() -> list[tuple[str, str, str]]:
+    """(label, planned column, realized column) for every planned/realized pair of the input,
+    as the study view and the HTML report show them."""
     names = {c.name: c for c in COLUMNS}
     out = []
     for c in COLUMNS:
         if c.name.startswith("planned_"):
             key = c.name.removeprefix("planned_")
             if f"realized_{key}" in names:
-                out.append((key.replace("_", " "), c.name, f"realized_{key}"))
+                label = key.replace("_", " ")
+                out.append((PAIR_LABELS.get(label, label), c.name, f"realized_{key}"))
     return out
 
 
-_PAIR_LABELS = {
+def pair_ratio(planned: object, realized: object) -> str:
+    """realized / planned as shown beside a pair; blank unless both are numbers."""
+    if isinstance(planned, float) and isinstance(realized, float):
+        if planned and math.isfinite(planned * realized):
+            return format_number(realized / planned)
+    return ""
+
+
+PAIR_LABELS = {
     "n1": "size, group 1",
     "n2": "size, group 2",
     "sd": "outcome SD",
@@ -1000,7 +1015,7 @@ _PAIR_LABELS = {
     "p2": "intervention proportion",
     "rate1": "control event rate",
 }
-_EFFECT_COLUMNS = (
+EFFECT_COLUMNS = (
     "planned_effect",
     "sesoi",
     "planned_p1",
@@ -1013,7 +1028,7 @@ _EFFECT_COLUMNS = (
     "periods",
     "period_correlation",
 )
-_RESULT_COLUMNS = (
+RESULT_COLUMNS = (
     "observed_effect",
     "observed_se",
     "observed_ci_low",
@@ -1129,19 +1144,16 @@ def render_study(result: AuditResult, console: Console, positions: Sequence[int]
         table.add_column("quantity", no_wrap=True)
         for name in ("planned", "realized", "realized / planned"):
             table.add_column(name, justify="right", no_wrap=True)
-        for key, planned, realized in _pairs():
+        for label, planned, realized in planned_realized_pairs():
             a, b = row.get(planned), row.get(realized)
             if _cell(a) == "" and _cell(b) == "":
                 continue
-            ratio = ""
-            if isinstance(a, float) and isinstance(b, float) and a and math.isfinite(a * b):
-                ratio = format_number(b / a)
-            table.add_row(_PAIR_LABELS.get(key, key), _cell(a), _cell(b), ratio)
+            table.add_row(label, _cell(a), _cell(b), pair_ratio(a, b))
         console.print(Padding(table, (0, 0, 0, 1)))
-        effects = [f"{c} {_cell(row[c])}" for c in _EFFECT_COLUMNS if _cell(row.get(c)) != ""]
+        effects = [f"{c} {_cell(row[c])}" for c in EFFECT_COLUMNS if _cell(row.get(c)) != ""]
         if effects:
             console.print(" effects: " + ", ".join(effects))
-        reported = [f"{c} {_cell(row[c])}" for c in _RESULT_COLUMNS if _cell(row.get(c)) != ""]
+        reported = [f"{c} {_cell(row[c])}" for c in RESULT_COLUMNS if _cell(row.get(c)) != ""]
         if reported:
             console.print(" reported result: " + ", ".join(reported))
         reproduction = plan_reproduction(result, pos)
