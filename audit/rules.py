@@ -147,6 +147,7 @@ class _Data:
         self.metrics = metrics
         self.n = len(table)
         self._numeric: dict[str, np.ndarray] = {}
+        self._text: dict[str, np.ndarray] = {}
 
     def has(self, name: str) -> bool:
         return name in self.metrics.columns or name in self.table.columns
@@ -169,16 +170,31 @@ class _Data:
         return self._numeric[name]
 
     def text(self, name: str) -> np.ndarray:
-        values = pd.Series(self.raw(name), dtype=object)
-        blank = values.isna()
-        return values.where(blank, values.astype(str).str.strip()).to_numpy(dtype=object)
+        """The column as trimmed texts (blank cells as they are), made once per evaluation."""
+        if name not in self._text:
+            self._text[name] = _trimmed(self.raw(name))
+        return self._text[name]
 
     def blank(self, name: str) -> np.ndarray:
         values = self.raw(name)
         if values.dtype.kind in "fiub":
             return np.isnan(values.astype(float))
-        series = pd.Series(values, dtype=object)
-        return (series.isna() | (series.astype(str).str.strip() == "")).to_numpy()
+        text = self.text(name)
+        return pd.isna(text) | (text == "")
+
+
+def _trimmed(values: np.ndarray) -> np.ndarray:
+    """``str(value).strip()`` of each value, missing values kept; a column of texts (the usual
+    case: a few distinct texts over many rows) is trimmed once per distinct text."""
+    series = pd.Series(values, dtype=object)
+    blank = series.isna().to_numpy()
+    if pd.api.types.infer_dtype(series, skipna=True) in ("string", "empty"):
+        codes, uniques = pd.factorize(series, use_na_sentinel=True)
+        table = np.append(np.asarray([u.strip() for u in uniques.tolist()], dtype=object), None)
+        out = table[codes]
+        out[blank] = series.to_numpy(dtype=object)[blank]
+        return out
+    return series.where(blank, series.astype(str).str.strip()).to_numpy(dtype=object)
 
 
 #: (true, false) masks; a row in neither is unknown.
@@ -510,16 +526,21 @@ def _sharpened_specs(values: np.ndarray, threshold: np.ndarray, spec: str | None
     if m is None:
         return [spec or ""] * len(values)
     head, digits, kind = m.group("head"), int(m.group("digits")), m.group("kind")
-    out = []
-    for v, t in zip(
-        values.tolist(), np.broadcast_to(threshold, values.shape).tolist(), strict=True
-    ):
-        d = digits
-        while d < digits + 4 and v != t and math.isfinite(v) and math.isfinite(t):
-            if format(v, f"{head}.{d}{kind}") != format(t, f"{head}.{d}{kind}"):
-                break
+    specs = [f"{head}.{d}{kind}" for d in range(digits, digits + 5)]
+    out = [specs[0]] * len(values)
+    thresholds = np.broadcast_to(threshold, values.shape)
+    # Only values that print as their threshold at the spec's own precision need more digits
+    # (thresholds are a few distinct numbers: each printed once).
+    shown = {t: format(t, specs[0]) for t in set(thresholds.tolist())}
+    for i, (v, t) in enumerate(zip(values.tolist(), thresholds.tolist(), strict=True)):
+        if v == t or not (math.isfinite(v) and math.isfinite(t)):
+            continue
+        if format(v, specs[0]) != shown[t]:
+            continue
+        d = 1
+        while d < 4 and format(v, specs[d]) == format(t, specs[d]):
             d += 1
-        out.append(f"{head}.{d}{kind}")
+        out[i] = specs[d]
     return out
 
 

@@ -619,3 +619,44 @@ def test_unless_is_checked_like_a_condition(tmp_path):
                 )
             ]
         )
+
+
+def test_column_texts_are_trimmed_as_text_once_per_distinct_value():
+    # str(value).strip() per value, missing values kept as they are (the expression the
+    # per-distinct-text path replaces, applied value by value).
+    from audit.rules import _trimmed
+
+    cases = [
+        np.array([" a", "a ", None, "", "  ", "b\t", float("nan")], dtype=object),
+        np.array([1, " 1", 1.0, True, None, "x "], dtype=object),
+        np.array([None, None], dtype=object),
+    ]
+    for values in cases:
+        expected = [v if v is None or v != v else str(v).strip() for v in values.tolist()]
+        got = _trimmed(values).tolist()
+        assert len(got) == len(expected)
+        for g, e in zip(got, expected, strict=True):
+            assert (g is None and e is None) or (g != g and e != e) or g == e, (g, e)
+
+
+def test_sharpened_precision_is_the_first_that_tells_value_from_threshold():
+    # The value is printed with the fewest extra decimals (at most four) at which it no longer
+    # reads as the threshold printed the same way; checked by formatting at each precision.
+    from audit.rules import _sharpened_specs
+
+    rng = np.random.default_rng(7)
+    threshold = np.full(2000, 0.5)
+    values = 0.5 + rng.choice([-1, 1], 2000) * 10.0 ** rng.uniform(-7, -0.5, 2000)
+    values[:3] = [0.5, 0.4996, 0.50004]
+    for spec, head, digits, kind in ((".2f", "", 2, "f"), (".0%", "", 0, "%")):
+        got = _sharpened_specs(values, threshold, spec)
+        for v, s in zip(values.tolist(), got, strict=True):
+            d = digits
+            while (
+                d < digits + 4
+                and v != 0.5
+                and format(v, f".{d}{kind}") == format(0.5, f".{d}{kind}")
+            ):
+                d += 1
+            assert s == f"{head}.{d}{kind}", (v, s)
+    assert _sharpened_specs(values[:2], threshold[:2], ".2f") == [".2f", ".4f"]
