@@ -27,6 +27,7 @@ from audit._format import format_number
 from audit.designs import design_of
 from audit.metrics import METRICS, REFERENCE_PREFIX
 from audit.portfolio import BLANK_GROUP
+from audit.result import MAX_LISTED, flagged_rows, listing_order
 from audit.rules import CONTRACT_METRICS, SEVERITIES, SEVERITY_RANK, Rule, RuleSet, known_columns
 from audit.schema import COLUMNS
 from audit.terminal import clean, clean_frame, clean_value
@@ -71,9 +72,6 @@ THEME = Theme(
     }
 )
 
-#: At most this many studies with findings, and this many invalid rows, are listed; the
-#: exports hold them all.
-MAX_LISTED = 50
 #: At most this many ids of studies without findings are named.
 MAX_CLEAN_NAMED = 20
 
@@ -319,20 +317,13 @@ def build_overview(result: AuditResult, *, limit: int = MAX_LISTED) -> Overview:
             )
         )
 
-    n = len(table)
-    worst = np.full(n, -1)
-    count = np.zeros(n, dtype=int)
-    if len(findings):
-        # For the listing order only; the counts are the portfolio's.
-        ranks = findings["severity"].map(SEVERITY_RANK).to_numpy(dtype=int)
-        positions = findings["pos"].to_numpy(dtype=int)
-        np.maximum.at(worst, positions, ranks)
-        np.add.at(count, positions, 1)
+    # For the listing order only; the counts are the portfolio's.
+    flagged_pos, flagged_worst, flagged_count = flagged_rows(findings, len(table))
     by_worst = dict(p["studies_by_worst_finding"])
-    flagged_pos = np.flatnonzero(worst >= 0)
-    # Most severe first, then most findings, then input order.
-    order = np.lexsort((flagged_pos, -count[flagged_pos], -worst[flagged_pos]))
+    order = listing_order(flagged_pos, flagged_worst, flagged_count)
     listed = flagged_pos[order][:limit]
+    worst = np.full(len(table), -1)
+    worst[flagged_pos] = flagged_worst
     entries = []
     if len(listed):
         grouped = {

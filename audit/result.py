@@ -11,9 +11,35 @@ import numpy as np
 import pandas as pd
 
 from audit.read import RawTable
-from audit.rules import Rule
+from audit.rules import SEVERITY_RANK, Rule
 
-__all__ = ["AuditResult"]
+__all__ = ["MAX_LISTED", "AuditResult", "flagged_rows", "listing_order"]
+
+#: At most this many studies with findings, and this many invalid rows, are listed by the
+#: report; the exports hold them all.
+MAX_LISTED = 50
+
+
+def flagged_rows(findings: pd.DataFrame, n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The rows of ``n`` with findings: their positions (ascending), the rank of each one's most
+    severe finding (:data:`~audit.rules.SEVERITY_RANK`) and its number of findings."""
+    worst = np.full(n, -1)
+    count = np.zeros(n, dtype=int)
+    if len(findings):
+        ranks = findings["severity"].map(SEVERITY_RANK).to_numpy(dtype=int)
+        positions = findings["pos"].to_numpy(dtype=int)
+        np.maximum.at(worst, positions, ranks)
+        np.add.at(count, positions, 1)
+    flagged = np.flatnonzero(worst >= 0)
+    return flagged, worst[flagged], count[flagged]
+
+
+def listing_order(positions: np.ndarray, worst: np.ndarray, count: np.ndarray) -> np.ndarray:
+    """The order in which the report lists studies with findings (indices into the arrays of
+    :func:`flagged_rows`): most severe first, then most findings, then input order. Each
+    study's place depends on its own findings only, so the first ``k`` of a whole table are the
+    first ``k`` of the first ``k`` of each of its parts."""
+    return np.lexsort((positions, -count, -worst))
 
 
 @dataclass
