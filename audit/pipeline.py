@@ -34,7 +34,7 @@ from audit.portfolio import (
 from audit.rawtable import normalise_header
 from audit.read import RawTable, raw_from_frame, read_table
 from audit.reaudit import set_aside_output_columns
-from audit.result import AuditResult
+from audit.result import MAX_LISTED, AuditResult, flagged_rows, listing_order
 from audit.rules import Evaluation, RuleSet, evaluate_rules, resolve_rules
 from audit.schema import SPECS
 from audit.validate import Validated, WholeTable, validate, whole_table
@@ -477,6 +477,7 @@ def audit_stream(
     progress: Progress | None = None,
     on_part: Callable[[AuditResult], None] | None = None,
     consume: bool = False,
+    lean: bool = False,
     chunk_rows: int | None = None,
 ) -> AuditResult:
     """Audit ``raw`` a chunk of rows at a time; the whole result at the end.
@@ -484,7 +485,11 @@ def audit_stream(
     ``on_part`` is called with each part's result as it is done (an export written a part at a
     time). ``consume``: the cells of ``raw`` are let go once their part is audited and handed
     on (the result's ``raw`` then holds the header only), so a large file's text does not stay
-    in memory beside its results. Whether a rule failed on a part is known only at the end: a
+    in memory beside its results. ``lean`` (with ``on_part``): once a part is handed on, its
+    notes and the messages of its findings are let go, except the messages of the studies the
+    report lists (the first :data:`~audit.result.MAX_LISTED` in its order); the result then
+    serves the portfolio summary, the report and the exit status, not a study's details or the
+    exports (which ``on_part`` wrote). Whether a rule failed on a part is known only at the end: a
     rule that failed anywhere is applied again to the whole table (it then reports no findings
     at all), and the result's ``settings["rules_reapplied"]`` says so; parts handed on before
     then carry that rule's findings.
@@ -501,7 +506,8 @@ def audit_stream(
     )
     families = _names_families(raw)
     if families:
-        consume = False  # the single export at the end needs the cells
+        consume = lean = False  # the single export at the end needs the cells and notes
+    listing = _Listing(MAX_LISTED) if lean and on_part is not None else None
     missing = [c for c in ("study_id", "design") if c not in raw.data.columns]
     if missing:
         validate(raw)  # raises the whole-file error naming the missing columns
@@ -531,6 +537,10 @@ def audit_stream(
         if on_part is not None and not families:
             on_part(part.result(raw))
         part.raw = None
+        if listing is not None:
+            part.notes = part.notes.iloc[:0]
+            part.table = part.table[_lean_columns(part.table, run)]
+            listing.keep_messages(part, parts)
         if tables is not None and metrics is not None:
             tables.put(start, part.table)
             metrics.put(start, part.metrics)
@@ -544,11 +554,60 @@ def audit_stream(
         ruleset,
         run,
         families=families,
+        lean=listing is not None,
         progress=progress,
     )
     if on_part is not None and families:
         on_part(result)
     return result
+
+
+def _lean_columns(table: pd.DataFrame, run: RunSettings) -> list[str]:
+    """The columns of the table a lean result keeps: the texts but the title (identity, design,
+    effect measure, hypothesis: what the report shows and a design's variant is told by), the
+    numbers the portfolio summary and the report read, and the ``group_by`` columns. A table
+    that names an outcome_family is never lean (its pooling reads the results' columns)."""
+    numbers = {"_row", "target_power", "margin", *run.group_by}
+    return [c for c in table.columns if c in numbers or (table[c].dtype == object and c != "title")]
+
+
+class _Listing:
+    """The studies the report can still list, in a stream of parts: the first ``limit`` in its
+    order (:func:`~audit.result.listing_order`) among the parts seen so far. A study's place
+    depends on its own findings only, so one that falls out never comes back; the messages of
+    every other study's findings are let go."""
+
+    def __init__(self, limit: int) -> None:
+        self.limit = limit
+        self.kept = (np.empty(0, dtype=int), np.empty(0, dtype=int), np.empty(0, dtype=int))
+
+    def keep_messages(self, part: Part, earlier: list[Part]) -> None:
+        findings = part.evaluation.findings
+        pos, worst, count = flagged_rows(findings, len(part.status))
+        candidates = [
+            np.concatenate([a, b])
+            for a, b in zip(self.kept, (pos + part.start, worst, count), strict=True)
+        ]
+        order = listing_order(*candidates)[: self.limit]
+        dropped = np.setdiff1d(self.kept[0], candidates[0][order])
+        self.kept = tuple(c[order] for c in candidates)
+        _drop_messages(part, ~np.isin(findings["pos"].to_numpy() + part.start, self.kept[0]))
+        if len(dropped):
+            for other in earlier:
+                at = other.evaluation.findings["pos"].to_numpy() + other.start
+                _drop_messages(other, np.isin(at, dropped))
+
+
+def _drop_messages(part: Part, mask: np.ndarray) -> None:
+    """The messages of ``part``'s findings where ``mask`` is set, replaced by None."""
+    if not mask.any():
+        return
+    findings = part.evaluation.findings
+    messages = findings["message"].to_numpy(dtype=object).copy()
+    messages[mask] = None
+    part.evaluation = dataclasses.replace(
+        part.evaluation, findings=findings.assign(message=messages)
+    )
 
 
 class _Columns:
@@ -561,6 +620,10 @@ class _Columns:
         self.columns: dict[str, np.ndarray] = {}
 
     def put(self, start: int, frame: pd.DataFrame) -> None:
+        stop = start + len(frame)
+        for name, column in self.columns.items():
+            if name not in frame.columns:  # blank in this part's rows (as in one pass)
+                column[start:stop] = np.nan if column.dtype.kind == "f" else None
         for name in frame.columns:
             values = frame[name].to_numpy()
             column = self.columns.get(name)
@@ -568,13 +631,14 @@ class _Columns:
                 column = self.columns[name] = column.astype(object)
                 values = values.astype(object)
             if column is None:
+                # Allocated, not written: the system gives the memory as the parts fill it.
                 # Rows of earlier parts without this column are blank (as in one pass).
-                fill = np.nan if values.dtype.kind == "f" else None
-                dtype = values.dtype if values.dtype.kind in "fO" else object
-                column = self.columns[name] = np.full(self.n, fill, dtype=dtype)
-                if values.dtype.kind in "iub" and start == 0:
-                    column = self.columns[name] = np.empty(self.n, dtype=values.dtype)
-            column[start : start + len(values)] = values
+                kind = values.dtype.kind
+                dtype = values.dtype if kind in "fO" or (kind in "iub" and start == 0) else object
+                column = self.columns[name] = np.empty(self.n, dtype=dtype)
+                if start:
+                    column[:start] = np.nan if dtype.kind == "f" else None
+            column[start:stop] = values
 
     def frame(self) -> pd.DataFrame:
         """The filled columns as one frame (object columns kept as objects)."""
@@ -624,10 +688,13 @@ def _merged(
     run: RunSettings,
     *,
     families: bool,
+    lean: bool = False,
     progress: Progress | None,
 ) -> AuditResult:
     """One result from the parts of a table (each frame stacked once, then let go); with
-    ``families``, the pooled powers over the whole table and then the rules."""
+    ``families``, the pooled powers over the whole table and then the rules. A rule that must be
+    applied again to the whole table is not, in a ``lean`` result (the columns it reads are
+    gone): its ``settings["rules_reapplied"]`` then tells the caller to audit the file whole."""
     starts = [p.start for p in parts]
     first = parts[0]
     metric_names = [list(p.metrics.columns) for p in parts]
@@ -654,18 +721,19 @@ def _merged(
     else:
         problems = any(len(e.problems) for e in evaluations)
         waiting = [e.waiting for e in evaluations]
-        if problems or not same_metrics or any(w != waiting[0] for w in waiting):
+        again = problems or not same_metrics or any(w != waiting[0] for w in waiting)
+        if again and not lean:
             # As one pass would: a failing rule reports no findings at all (and supersedes none).
             evaluation = evaluate_rules(ruleset, table, metrics, valid)
             reapplied = len(parts) > 1
         else:
+            reapplied = again and len(parts) > 1  # lean: the caller audits the file whole
             findings = _stacked([e.findings for e in evaluations], starts)
             judged: dict[str, int] = {}
             for e in evaluations:
                 for rule, count in e.judged.items():
                     judged[rule] = judged.get(rule, 0) + count
             evaluation = dataclasses.replace(evaluations[0], findings=findings, judged=judged)
-            reapplied = False
     validated = Validated(
         table=table,
         failures=failures,
@@ -730,10 +798,12 @@ def stream_file(
     reference_effects: Any = REFERENCE_EFFECTS,
     group_by: Any = (),
     progress: Progress | None = None,
+    lean: bool = False,
 ) -> AuditResult:
     """Read and audit a file as the command line does: each part of the studies is handed to
     ``on_part`` as it is audited (exports written a part at a time) and the file's cells are let
-    go once handed on, so the result's ``raw`` holds the header only. For the whole result,
+    go once handed on, so the result's ``raw`` holds the header only; ``lean``: so are the notes
+    and the messages the report does not list (see :func:`audit_stream`). For the whole result,
     cells included, use :func:`audit_file`."""
     ruleset = resolve_rules(rules)
     excess = _excess_settings(excess_basis, excess_method, excess_pooling, excess_min_studies)
@@ -749,4 +819,5 @@ def stream_file(
         progress=progress,
         on_part=on_part,
         consume=True,
+        lean=lean,
     )

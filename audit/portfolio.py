@@ -172,7 +172,14 @@ def portfolio_summary(
     design, and their sign only says which way a study looked). The report and the figures
     read these numbers; they compute none of their own.
     """
-    audited = metrics.loc[valid]
+    from audit.metrics import reference_columns
+
+    references = reference_columns(metrics.columns)
+    # The audited rows of the columns read here only (a copy of every metric column would
+    # double the metrics' memory for a moment).
+    read = ["power_at_planned_effect", "mde_std", "ci_verdict", "exaggeration"]
+    read += [c for _, c in references]
+    audited = metrics.loc[valid, [c for c in read if c in metrics.columns]]
     power = audited["power_at_planned_effect"]
     spread = power_distribution(
         power.to_numpy(dtype=float), table.loc[valid, "target_power"].to_numpy(dtype=float)
@@ -201,8 +208,6 @@ def portfolio_summary(
         name: int((basis == name).sum()) for name in ("planned", "pooled", "reference")
     }
     by_basis["reference_effect"] = key or None
-    from audit.metrics import reference_columns
-
     return {
         "studies": len(table),
         "audited": int(valid.sum()),
@@ -221,9 +226,7 @@ def portfolio_summary(
         "excess_significance": excess_test,
         "excess_significance_note": excess_note,
         "power_distribution_by_basis": by_basis,
-        "median_reference_power": {
-            k: _median(audited[c]) for k, c in reference_columns(metrics.columns)
-        },
+        "median_reference_power": {k: _median(audited[c]) for k, c in references},
         "families": family_summary(table, metrics, valid, excess, pool),
         "rows_judged_by_rule": dict(judged or {}),
     }

@@ -164,3 +164,103 @@ def test_families_are_pooled_over_every_part_before_the_rules(monkeypatch):
     assert np.isfinite(pooled).sum() >= 10
     np.testing.assert_allclose(parts.metrics["power_at_pooled_effect"], pooled, rtol=1e-10)
     pd.testing.assert_frame_equal(parts.findings, whole.findings)
+
+
+# -- the lean stream of the command line ------------------------------------------------------
+
+
+def _without_families(tmp_path):
+    """The demo without its outcome_family column (a table naming families is never lean)."""
+    plain = tmp_path / "plain.csv"
+    demo = pd.read_csv(DEMO, dtype=object, keep_default_na=False)
+    demo.drop(columns="outcome_family").to_csv(plain, index=False)
+    return plain
+
+
+def _report(result, limit=None):
+    import io
+
+    from rich.console import Console
+
+    from audit.report import MAX_LISTED, THEME, render_report
+
+    console = Console(file=io.StringIO(), width=100, color_system=None, theme=THEME)
+    render_report(result, console, fail_on="warning", limit=limit or MAX_LISTED)
+    return console.file.getvalue()
+
+
+def _lean(path, tmp_path, chunk, **kwargs):
+    """A lean stream of ``path`` with its JSON written a part at a time, as the command line."""
+    from audit.export import JsonExport
+
+    with JsonExport(tmp_path / "lean.json", []) as sink:
+        result = pipeline.audit_stream(
+            read_table(path), on_part=sink.add, consume=True, lean=True, chunk_rows=chunk, **kwargs
+        )
+        sink.finish(result)
+    return result, json.loads((tmp_path / "lean.json").read_bytes())
+
+
+@pytest.mark.parametrize("chunk", [1, 4, 9, 1000])
+def test_a_lean_stream_reports_and_writes_what_the_whole_result_does(tmp_path, monkeypatch, chunk):
+    # The lean result lets go of the notes, most finding messages and the columns the summary
+    # and the report do not read; what is rendered from it must not change. With at most three
+    # studies listed, studies fall out of the listing as later parts come.
+    plain = _without_families(tmp_path)
+    whole = audit.audit_file(plain)
+    write_json(whole, tmp_path / "whole.json")
+    monkeypatch.setattr(pipeline, "MAX_LISTED", 3)
+    lean, document = _lean(plain, tmp_path, chunk)
+    assert _rounded(document) == _rounded(json.loads((tmp_path / "whole.json").read_bytes()))
+    assert _report(lean, limit=3) == _report(whole, limit=3)
+    assert _rounded(lean.portfolio) == _rounded(whole.portfolio)  # last bits: see _same
+    assert lean.caveats == whole.caveats
+    pd.testing.assert_frame_equal(
+        lean.findings.drop(columns="message"), whole.findings.drop(columns="message")
+    )
+    # What was let go: the notes, and the messages of every study but the three listed.
+    assert not len(lean.notes) and len(whole.notes)
+    kept = lean.findings.dropna(subset=["message"])
+    assert kept["pos"].nunique() == 3 < whole.findings["pos"].nunique()
+    assert "title" not in lean.table and "planned_n1" not in lean.table
+
+
+def test_a_lean_stream_of_every_corpus_file_reports_the_same(tmp_path, monkeypatch):
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).parent / "fixtures"))
+    import make_fixtures
+
+    corpus = make_fixtures.build(tmp_path / "corpus")
+    monkeypatch.setattr(pipeline, "MAX_LISTED", 2)
+    audited = 0
+    for path in corpus.values():
+        try:
+            whole = audit.audit_file(path)
+        except audit.AuditError:
+            continue
+        lean, document = _lean(path, tmp_path, 2)
+        assert _report(lean, limit=2) == _report(whole, limit=2), path.name
+        assert _rounded(document) == _rounded(whole.to_dict()), path.name
+        audited += 1
+    assert audited >= 15
+
+
+def test_the_command_line_reports_the_same_from_a_lean_stream(tmp_path, monkeypatch, capsys):
+    # check without --html, --plots or --study streams lean; with --html it keeps every detail.
+    plain = _without_families(tmp_path)
+    monkeypatch.setattr(pipeline, "CHUNK_ROWS", 4)
+    monkeypatch.setenv("COLUMNS", "100")
+    args = ["check", str(plain), "--fail-on", "serious"]
+    lean_status = main([*args, "--json", str(tmp_path / "lean.json")])
+    lean_out = capsys.readouterr().out
+    full_status = main([*args, "--html", str(tmp_path / "r.html")])
+    full_out = capsys.readouterr().out
+    assert lean_status == full_status
+    assert lean_out == full_out and "Studies with findings" in lean_out
+    whole = audit.audit_file(plain)
+    write_json(whole, tmp_path / "whole.json")
+    assert _rounded(json.loads((tmp_path / "lean.json").read_bytes())) == _rounded(
+        json.loads((tmp_path / "whole.json").read_bytes())
+    )
