@@ -457,7 +457,7 @@ def _analysis(args: argparse.Namespace) -> dict[str, Any]:
 
 
 def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
-    from audit.export import refuse_overwrite, write_json
+    from audit.export import refuse_overwrite
     from audit.pipeline import STAGES
     from audit.report import make_console, render_report, render_study, study_ids_hint
     from audit.rules import load_rules
@@ -494,9 +494,6 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
                     f"{study_ids_hint(result)})."
                 )
             positions.extend(p for p in found if p not in positions)
-        if run.json_out:
-            progress("writing JSON")
-            write_json(result, run.json_out)
         if run.html_out:
             from audit.html import write_html
 
@@ -627,13 +624,20 @@ def _stdin_copy(run: CheckRun) -> Any:
 def _audit_with_exports(
     run: CheckRun, ruleset: Any, reads: list[tuple[str, Any]], progress: Any
 ) -> AuditResult:
-    """Audit the file a part of the studies at a time, the CSV and workbook exports written as
-    the parts come (the file's cells are let go once written: see pipeline.stream_file)."""
-    from audit.export import CsvExport, write_csv
+    """Audit the file a part of the studies at a time, the JSON, CSV and workbook exports
+    written as the parts come (the file's cells are let go once written: see
+    pipeline.stream_file). Unless the HTML report, the figures or one study's view need every
+    detail of every study, the result keeps only what the portfolio summary, the report's
+    listing and the exit status read, so memory stays about flat however large the file."""
+    from audit.export import CsvExport, JsonExport, write_csv, write_json
     from audit.pipeline import audit_file, stream_file
 
     with contextlib.ExitStack() as exports:
         sinks: list[Any] = []
+        document = None
+        if run.json_out:
+            document = exports.enter_context(JsonExport(run.json_out, reads))
+            sinks.append(document)
         if run.csv_out:
             sinks.append(exports.enter_context(CsvExport(run.csv_out, reads)))
         workbook = None
@@ -654,6 +658,7 @@ def _audit_with_exports(
             progress=progress,
             on_part=on_part if sinks else None,
             group_by=run.group_by,
+            lean=run.html_out is None and run.plots_dir is None and run.study is None,
             **run.analysis,
         )
         if run.source_name is not None:
@@ -667,13 +672,20 @@ def _audit_with_exports(
             full = audit_file(
                 run.path, sheet=run.sheet, rules=ruleset, group_by=run.group_by, **run.analysis
             )
+            full.settings = result.settings  # the source as named, and rules_reapplied
+            if run.json_out:
+                progress("writing JSON")
+                write_json(full, run.json_out)
             if run.csv_out:
                 write_csv(full, run.csv_out)
             if run.xlsx_out:
                 from audit.workbook import write_workbook
 
                 write_workbook(full, run.xlsx_out)
-            return result
+            return full
+        if document is not None:
+            progress("writing JSON")
+            document.finish(result)
         if run.csv_out:
             progress("writing CSV")
         if workbook is not None:

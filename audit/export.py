@@ -14,6 +14,7 @@ import io
 import itertools
 import os
 import re
+import shutil
 import sys
 import tempfile
 from collections.abc import Iterable, Iterator
@@ -24,7 +25,15 @@ import numpy as np
 import pandas as pd
 
 from audit.errors import OutputError
-from audit.jsonout import INTEGER_METRICS, JSON_INDENT_LIMIT, document_bytes, document_parts
+from audit.jsonout import (
+    INTEGER_METRICS,
+    JSON_INDENT_LIMIT,
+    document_bytes,
+    document_frame,
+    document_parts,
+    indented,
+    study_chunks,
+)
 
 if TYPE_CHECKING:
     from audit.result import AuditResult
@@ -32,6 +41,7 @@ if TYPE_CHECKING:
 __all__ = [
     "CAUTION",
     "CsvExport",
+    "JsonExport",
     "atomic_output",
     "files_read",
     "neutralise_formula",
@@ -209,6 +219,70 @@ def write_json(result: AuditResult, path: str | Path) -> None:
         for part in document_parts(result):
             writer.write(part)
         writer.write(b"\n")
+
+
+class JsonExport:
+    """The contract JSON document written a part of the studies at a time: each part's studies
+    are encoded as it comes (``add``) into a spool (a temporary file), and ``finish`` writes the
+    head, the studies and the tail, which hold the settings and portfolio of the whole result.
+    The same bytes as :func:`write_json` of the whole result, without the whole result; the
+    folder of the export needs room for the document twice while it is put together.
+
+    Raises
+    ------
+    OutputError
+        ``path`` is a file the run reads (``reads``, see :func:`refuse_overwrite`) or a folder.
+    """
+
+    def __init__(self, path: str | Path, reads: Iterable[tuple[str, str | Path | None]]) -> None:
+        refuse_overwrite(path, reads)
+        self._path = path
+        self._studies = 0
+
+    def __enter__(self) -> JsonExport:
+        # The spool lies beside the export (not in a temporary folder that may live in memory):
+        # the document needs the room of its studies twice while it is put together.
+        target = Path(self._path)
+        beside = str(self._path) != "-" and (target.is_file() or not target.exists())
+        folder = target.parent if beside else None
+        try:
+            if folder is not None:
+                folder.mkdir(parents=True, exist_ok=True)
+            self._spool = tempfile.TemporaryFile(prefix=f".{target.name}.", dir=folder)
+        except OSError as exc:
+            raise OutputError(
+                f"{self._path}: the temporary file of the export cannot be made "
+                f"({exc.strerror or exc})."
+            ) from exc
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._spool.close()
+
+    def add(self, result: AuditResult) -> None:
+        """Encode the studies of ``result`` (the next rows of the table) into the spool."""
+        try:
+            for chunk in study_chunks(result):
+                self._spool.write(b"," + chunk if self._studies else chunk)
+                self._studies += 1
+        except OSError as exc:
+            raise OutputError(_write_failure(Path(self._path), exc)) from exc
+
+    def finish(self, result: AuditResult) -> None:
+        """Write the document: ``result``'s head, the spooled studies, ``result``'s tail."""
+        head, tail = document_frame(result)
+        self._spool.seek(0)
+        if len(result.table) <= JSON_INDENT_LIMIT:
+            data = indented(head + self._spool.read() + tail)
+            with atomic_output(self._path, "wb") as handle:
+                handle.write(data)
+                handle.write(b"\n")
+            return
+        with atomic_output(self._path, "wb") as handle:
+            handle.write(head)
+            shutil.copyfileobj(self._spool, handle, 2**22)
+            handle.write(tail)
+            handle.write(b"\n")
 
 
 class _BackgroundWriter:

@@ -31,7 +31,9 @@ __all__ = [
     "JSON_INDENT_LIMIT",
     "SCHEMA_VERSION",
     "document_bytes",
+    "document_frame",
     "document_parts",
+    "indented",
     "json_default",
     "portfolio_document",
     "schema_text",
@@ -340,20 +342,30 @@ def _tail(result: AuditResult) -> bytes:
     return _encode(tail)[1:]
 
 
+def document_frame(result: AuditResult) -> tuple[bytes, bytes]:
+    """The compact document's text before the members of ``studies`` and after them (the
+    settings, the portfolio block, the groups and the caveats of ``result``)."""
+    return _head(result) + b',"studies":[', b"]," + _tail(result)
+
+
 def document_parts(result: AuditResult, chunk: int = 10_000) -> Iterator[bytes]:
     """The compact JSON document in pieces: head, ``chunk`` studies at a time, tail."""
-    yield _head(result) + b',"studies":['
+    head, tail = document_frame(result)
+    yield head
     for i, part in enumerate(study_chunks(result, chunk)):
         yield b"," + part if i else part
-    yield b"]," + _tail(result)
+    yield tail
+
+
+def indented(compact: bytes) -> bytes:
+    """A compact document laid out for reading (two spaces)."""
+    return _encode(orjson.loads(compact), indent=True)
 
 
 def document_bytes(result: AuditResult, *, indent: bool = False) -> bytes:
     """The whole JSON document; ``indent`` lays it out for reading (two spaces)."""
     compact = b"".join(document_parts(result))
-    if not indent:
-        return compact
-    return _encode(orjson.loads(compact), indent=True)
+    return indented(compact) if indent else compact
 
 
 def schema_text() -> str:
