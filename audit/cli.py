@@ -636,7 +636,7 @@ def _audit_with_exports(
         sinks: list[Any] = []
         document = None
         if run.json_out:
-            document = exports.enter_context(JsonExport(run.json_out, reads))
+            document = exports.enter_context(JsonExport(run.json_out, reads, run.source_name))
             sinks.append(document)
         if run.csv_out:
             sinks.append(exports.enter_context(CsvExport(run.csv_out, reads)))

@@ -10,11 +10,11 @@ from __future__ import annotations
 
 import contextlib
 import csv
+import dataclasses
 import io
 import itertools
 import os
 import re
-import shutil
 import sys
 import tempfile
 from collections.abc import Iterable, Iterator
@@ -222,11 +222,16 @@ def write_json(result: AuditResult, path: str | Path) -> None:
 
 
 class JsonExport:
-    """The contract JSON document written a part of the studies at a time: each part's studies
-    are encoded as it comes (``add``) into a spool (a temporary file), and ``finish`` writes the
-    head, the studies and the tail, which hold the settings and portfolio of the whole result.
-    The same bytes as :func:`write_json` of the whole result, without the whole result; the
-    folder of the export needs room for the document twice while it is put together.
+    """The contract JSON document written a part of the studies at a time (``add``), put in place
+    by ``finish``: the same bytes as :func:`write_json` of the whole result, without the whole
+    result.
+
+    The head (tool, version, settings) is written with the first part, whose settings are the
+    whole result's (``source``: the name the input is given in the document, where it differs
+    from the path read); ``finish`` checks that they are, then writes the tail (portfolio,
+    groups, caveats). A document of up to :data:`~audit.jsonout.JSON_INDENT_LIMIT` studies is
+    kept until ``finish`` and indented. The file is written by a second thread while the next
+    studies are encoded.
 
     Raises
     ------
@@ -234,55 +239,70 @@ class JsonExport:
         ``path`` is a file the run reads (``reads``, see :func:`refuse_overwrite`) or a folder.
     """
 
-    def __init__(self, path: str | Path, reads: Iterable[tuple[str, str | Path | None]]) -> None:
+    def __init__(
+        self,
+        path: str | Path,
+        reads: Iterable[tuple[str, str | Path | None]],
+        source: str | None = None,
+    ) -> None:
         refuse_overwrite(path, reads)
         self._path = path
-        self._studies = 0
+        self._source = source
+        self._stack = contextlib.ExitStack()
+        self._pending: list[bytes] | None = []  # the studies while few enough to indent
+        self._count = 0  # studies added
+        self._written = False  # whether a study was written to the file
+        self._head = b""
+        self._writer: _BackgroundWriter | None = None
+        self._finished = False
 
     def __enter__(self) -> JsonExport:
-        # The spool lies beside the export (not in a temporary folder that may live in memory):
-        # the document needs the room of its studies twice while it is put together.
-        target = Path(self._path)
-        beside = str(self._path) != "-" and (target.is_file() or not target.exists())
-        folder = target.parent if beside else None
-        try:
-            if folder is not None:
-                folder.mkdir(parents=True, exist_ok=True)
-            self._spool = tempfile.TemporaryFile(prefix=f".{target.name}.", dir=folder)
-        except OSError as exc:
-            raise OutputError(
-                f"{self._path}: the temporary file of the export cannot be made "
-                f"({exc.strerror or exc})."
-            ) from exc
         return self
 
-    def __exit__(self, *exc: object) -> None:
-        self._spool.close()
+    def __exit__(self, *exc: object) -> bool | None:
+        if exc[0] is None and not self._finished:  # a document without its tail: not put in place
+            unfinished = RuntimeError("the JSON export was not finished")
+            self._stack.__exit__(RuntimeError, unfinished, None)
+            return None
+        return self._stack.__exit__(*exc)  # type: ignore[arg-type]
+
+    def _head_of(self, result: AuditResult) -> tuple[bytes, bytes]:
+        if self._source is not None:
+            result = dataclasses.replace(
+                result, settings={**result.settings, "source": self._source}
+            )
+        return document_frame(result)
 
     def add(self, result: AuditResult) -> None:
-        """Encode the studies of ``result`` (the next rows of the table) into the spool."""
-        try:
-            for chunk in study_chunks(result):
-                self._spool.write(b"," + chunk if self._studies else chunk)
-                self._studies += 1
-        except OSError as exc:
-            raise OutputError(_write_failure(Path(self._path), exc)) from exc
+        """Encode and write the studies of ``result``, the next rows of the table."""
+        self._count += len(result.table)
+        if self._pending is not None and self._count <= JSON_INDENT_LIMIT:
+            self._pending.extend(study_chunks(result))
+            return
+        if self._writer is None:
+            self._head = self._head_of(result)[0]
+            handle = self._stack.enter_context(atomic_output(self._path, "wb"))
+            self._writer = self._stack.enter_context(_BackgroundWriter(handle))
+            self._writer.write(self._head)
+        for chunk in [*(self._pending or ()), *study_chunks(result)]:
+            self._writer.write(b"," + chunk if self._written else chunk)
+            self._written = True
+        self._pending = None
 
     def finish(self, result: AuditResult) -> None:
-        """Write the document: ``result``'s head, the spooled studies, ``result``'s tail."""
-        head, tail = document_frame(result)
-        self._spool.seek(0)
-        if len(result.table) <= JSON_INDENT_LIMIT:
-            data = indented(head + self._spool.read() + tail)
+        """Write the tail of the whole ``result`` and put the document in place."""
+        head, tail = self._head_of(result)
+        self._finished = True
+        if self._writer is None:  # few studies: the document indented, in one piece
+            data = indented(head + b",".join(self._pending or ()) + tail)
             with atomic_output(self._path, "wb") as handle:
                 handle.write(data)
                 handle.write(b"\n")
             return
-        with atomic_output(self._path, "wb") as handle:
-            handle.write(head)
-            shutil.copyfileobj(self._spool, handle, 2**22)
-            handle.write(tail)
-            handle.write(b"\n")
+        if head != self._head:
+            raise RuntimeError("the settings of the JSON document changed after its first part")
+        self._writer.write(tail + b"\n")
+        self._stack.close()
 
 
 class _BackgroundWriter:

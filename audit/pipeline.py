@@ -224,6 +224,40 @@ def _metrics_of(
     return table, metrics, notes, status
 
 
+def run_settings(
+    raw: RawTable,
+    file_notes: list[str],
+    evaluation: Evaluation,
+    ruleset: RuleSet,
+    run: RunSettings,
+) -> dict[str, Any]:
+    """The ``settings`` of a result: what the run used (rules, defaults, source, excess test)."""
+    enabled = ruleset.enabled()
+    return {
+        "rules": [r.id for r in enabled],
+        "rules_disabled": [r.id for r in ruleset.rules.values() if not r.enabled],
+        "rules_waiting": evaluation.waiting,
+        "rule_parameters": {r.id: r.param_values() for r in enabled if r.parameters},
+        "rule_files": list(ruleset.files),
+        "rule_problems": evaluation.problems.to_dict("records"),
+        "target_power_default": 0.8,
+        "alpha_default": 0.05,
+        "continuity_correction_default": bool(run.continuity_correction),
+        "source": raw.source,
+        "sheet": raw.sheet,
+        "excess_significance": run.excess.as_dict(),
+        # The tolerance within which a published method reproduces the plan
+        # (plan_reproduced_by): max_discrepancy of rule sample-size-not-reproducible in force.
+        "plan_reproduction_tolerance": tolerance_in_force(ruleset),
+        "reference_effects": list(run.reference_effects),
+        "group_by": [raw.headers.get(c, c) for c in run.group_by],
+        "header_row": raw.header_row,
+        # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
+        # title rows, merged or repeated headers).
+        "input_notes": list(file_notes),
+    }
+
+
 def _summarised(
     validated: Validated,
     table: pd.DataFrame,
@@ -254,30 +288,8 @@ def _summarised(
         if run.group_by
         else {}
     )
+    settings = run_settings(validated.raw, validated.file_notes, evaluation, ruleset, run)
     enabled = ruleset.enabled()
-    settings = {
-        "rules": [r.id for r in enabled],
-        "rules_disabled": [r.id for r in ruleset.rules.values() if not r.enabled],
-        "rules_waiting": evaluation.waiting,
-        "rule_parameters": {r.id: r.param_values() for r in enabled if r.parameters},
-        "rule_files": list(ruleset.files),
-        "rule_problems": evaluation.problems.to_dict("records"),
-        "target_power_default": 0.8,
-        "alpha_default": 0.05,
-        "continuity_correction_default": bool(run.continuity_correction),
-        "source": validated.raw.source,
-        "sheet": validated.raw.sheet,
-        "excess_significance": run.excess.as_dict(),
-        # The tolerance within which a published method reproduces the plan
-        # (plan_reproduced_by): max_discrepancy of rule sample-size-not-reproducible in force.
-        "plan_reproduction_tolerance": tolerance_in_force(ruleset),
-        "reference_effects": list(run.reference_effects),
-        "group_by": [validated.raw.headers.get(c, c) for c in run.group_by],
-        "header_row": validated.raw.header_row,
-        # What the reader assumed or noticed about the file as a whole (encoding, other sheets,
-        # title rows, merged or repeated headers).
-        "input_notes": list(validated.file_notes),
-    }
     return AuditResult(
         table=table,
         metrics=metrics,
@@ -395,8 +407,9 @@ class Part:
     evaluation: Evaluation
     file_notes: list[str]
 
-    def result(self, source: RawTable) -> AuditResult:
-        """The part as a result of its own, for exports written a part at a time."""
+    def result(self, source: RawTable, ruleset: RuleSet, run: RunSettings) -> AuditResult:
+        """The part as a result of its own, for exports written a part at a time; its settings
+        are those the whole result will have unless a rule must be applied again."""
         assert self.raw is not None
         return AuditResult(
             table=self.table,
@@ -406,7 +419,7 @@ class Part:
             notes=self.notes,
             findings=self.evaluation.findings,
             portfolio={},
-            settings={"source": source.source},
+            settings=run_settings(source, self.file_notes, self.evaluation, ruleset, run),
             raw=self.raw,
         )
 
@@ -485,11 +498,12 @@ def audit_stream(
     ``on_part`` is called with each part's result as it is done (an export written a part at a
     time). ``consume``: the cells of ``raw`` are let go once their part is audited and handed
     on (the result's ``raw`` then holds the header only), so a large file's text does not stay
-    in memory beside its results. ``lean`` (with ``on_part``): once a part is handed on, its
-    notes and the messages of its findings are let go, except the messages of the studies the
-    report lists (the first :data:`~audit.result.MAX_LISTED` in its order); the result then
-    serves the portfolio summary, the report and the exit status, not a study's details or the
-    exports (which ``on_part`` wrote). Whether a rule failed on a part is known only at the end: a
+    in memory beside its results. ``lean``: once a part is audited (and handed on), its notes,
+    the columns of its table the summary and the report do not read, and the messages of its
+    findings are let go, except the messages of the studies the report lists (the first
+    :data:`~audit.result.MAX_LISTED` in its order); the result then serves the portfolio
+    summary, the report and the exit status, not a study's details or the exports (which
+    ``on_part`` wrote). Whether a rule failed on a part is known only at the end: a
     rule that failed anywhere is applied again to the whole table (it then reports no findings
     at all), and the result's ``settings["rules_reapplied"]`` says so; parts handed on before
     then carry that rule's findings.
@@ -507,7 +521,7 @@ def audit_stream(
     families = _names_families(raw)
     if families:
         consume = lean = False  # the single export at the end needs the cells and notes
-    listing = _Listing(MAX_LISTED) if lean and on_part is not None else None
+    listing = _Listing(MAX_LISTED) if lean else None
     missing = [c for c in ("study_id", "design") if c not in raw.data.columns]
     if missing:
         validate(raw)  # raises the whole-file error naming the missing columns
@@ -535,7 +549,7 @@ def audit_stream(
         part = _audit_part(rows, start, chunk, ruleset, run, announce, apply_rules=not families)
         del rows
         if on_part is not None and not families:
-            on_part(part.result(raw))
+            on_part(part.result(raw, ruleset, run))
         part.raw = None
         if listing is not None:
             part.notes = part.notes.iloc[:0]
@@ -568,7 +582,8 @@ def _lean_columns(table: pd.DataFrame, run: RunSettings) -> list[str]:
     numbers the portfolio summary and the report read, and the ``group_by`` columns. A table
     that names an outcome_family is never lean (its pooling reads the results' columns)."""
     numbers = {"_row", "target_power", "margin", *run.group_by}
-    return [c for c in table.columns if c in numbers or (table[c].dtype == object and c != "title")]
+    texts = [c for c in table.columns if not pd.api.types.is_numeric_dtype(table[c].dtype)]
+    return [c for c in table.columns if c in numbers or (c in texts and c != "title")]
 
 
 class _Listing:

@@ -249,11 +249,16 @@ def test_a_lean_stream_of_every_corpus_file_reports_the_same(tmp_path, monkeypat
 
 def test_the_command_line_reports_the_same_from_a_lean_stream(tmp_path, monkeypatch, capsys):
     # check without --html, --plots or --study streams lean; with --html it keeps every detail.
+    # With a low indentation limit the JSON is written a part at a time, head first.
+    from audit import export
+
     plain = _without_families(tmp_path)
     monkeypatch.setattr(pipeline, "CHUNK_ROWS", 4)
+    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 10)
     monkeypatch.setenv("COLUMNS", "100")
     args = ["check", str(plain), "--fail-on", "serious"]
-    lean_status = main([*args, "--json", str(tmp_path / "lean.json")])
+    outputs = ["--json", str(tmp_path / "lean.json"), "--csv", str(tmp_path / "lean.csv")]
+    lean_status = main([*args, *outputs, "--xlsx", str(tmp_path / "lean.xlsx")])
     lean_out = capsys.readouterr().out
     full_status = main([*args, "--html", str(tmp_path / "r.html")])
     full_out = capsys.readouterr().out
@@ -261,6 +266,54 @@ def test_the_command_line_reports_the_same_from_a_lean_stream(tmp_path, monkeypa
     assert lean_out == full_out and "Studies with findings" in lean_out
     whole = audit.audit_file(plain)
     write_json(whole, tmp_path / "whole.json")
-    assert _rounded(json.loads((tmp_path / "lean.json").read_bytes())) == _rounded(
+    write_csv(whole, tmp_path / "whole.csv")
+    write_workbook(whole, tmp_path / "whole.xlsx")
+    lean_text = (tmp_path / "lean.json").read_bytes()
+    assert not lean_text.startswith(b"{\n")  # compact: written a part at a time
+    assert _rounded(json.loads(lean_text)) == _rounded(
         json.loads((tmp_path / "whole.json").read_bytes())
     )
+
+    def rows(name):
+        with (tmp_path / name).open(newline="", encoding="utf-8") as handle:
+            return _rounded(list(csv.reader(handle)))
+
+    assert rows("lean.csv") == rows("whole.csv")
+    from openpyxl import load_workbook
+
+    def cells(path):
+        book = load_workbook(path, read_only=True)
+        return {ws.title: _rounded(list(ws.iter_rows(values_only=True))) for ws in book.worksheets}
+
+    assert cells(tmp_path / "lean.xlsx") == cells(tmp_path / "whole.xlsx")
+
+
+def test_a_json_written_a_part_at_a_time_from_standard_input_names_it(
+    tmp_path, monkeypatch, capsys
+):
+    import io
+
+    from audit import export
+
+    plain = _without_families(tmp_path)
+    monkeypatch.setattr(pipeline, "CHUNK_ROWS", 4)
+    monkeypatch.setattr(export, "JSON_INDENT_LIMIT", 10)
+    monkeypatch.setattr("sys.stdin", io.TextIOWrapper(io.BytesIO(plain.read_bytes())))
+    out = tmp_path / "a.json"
+    assert main(["check", "-", "--quiet", "--json", str(out)]) == 0
+    document = json.loads(out.read_bytes())
+    assert document["settings"]["source"] == "standard input"
+    assert len(document["studies"]) == len(audit.audit_file(plain).table)
+    assert sorted(tmp_path.iterdir()) == sorted([plain, out])  # no temporary file left
+
+
+def test_an_unfinished_json_export_is_not_put_in_place(tmp_path):
+    from audit import export
+
+    whole = audit.audit_file(DEMO)
+    target = tmp_path / "a.json"
+    target.write_text("earlier")
+    with export.JsonExport(target, []) as sink:
+        for _ in range(60):  # past the indentation limit: written to the file as it comes
+            sink.add(whole)
+    assert target.read_text() == "earlier" and list(tmp_path.iterdir()) == [target]
