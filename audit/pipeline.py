@@ -636,8 +636,10 @@ class _Columns:
 
     def put(self, start: int, frame: pd.DataFrame) -> None:
         stop = start + len(frame)
-        for name, column in self.columns.items():
+        for name, column in list(self.columns.items()):
             if name not in frame.columns:  # blank in this part's rows (as in one pass)
+                if column.dtype.kind not in "fO":
+                    column = self.columns[name] = column.astype(object)
                 column[start:stop] = np.nan if column.dtype.kind == "f" else None
         for name in frame.columns:
             values = frame[name].to_numpy()
