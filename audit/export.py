@@ -284,10 +284,10 @@ class JsonExport:
             handle = self._stack.enter_context(atomic_output(self._path, "wb"))
             self._writer = self._stack.enter_context(_BackgroundWriter(handle))
             self._writer.write(self._head)
-        for chunk in [*(self._pending or ()), *study_chunks(result)]:
+        pending, self._pending = self._pending or [], None
+        for chunk in itertools.chain(pending, study_chunks(result)):  # one chunk at a time
             self._writer.write(b"," + chunk if self._written else chunk)
             self._written = True
-        self._pending = None
 
     def finish(self, result: AuditResult) -> None:
         """Write the tail of the whole ``result`` and put the document in place."""

@@ -102,18 +102,22 @@ def test_exports_written_a_part_at_a_time_equal_those_of_the_whole(tmp_path, mon
 
     assert document("parts.json") == document("whole.json")
 
-    def rows(name):
-        with (tmp_path / name).open(newline="", encoding="utf-8") as handle:
-            return _rounded(list(csv.reader(handle)))
+    assert _csv_rows(tmp_path / "parts.csv") == _csv_rows(tmp_path / "whole.csv")
+    assert _workbook_cells(tmp_path / "parts.xlsx") == _workbook_cells(tmp_path / "whole.xlsx")
 
-    assert rows("parts.csv") == rows("whole.csv")
+
+def _csv_rows(path):
+    """The rows of a CSV export, numbers to 11 significant digits (see _same)."""
+    with path.open(newline="", encoding="utf-8") as handle:
+        return _rounded(list(csv.reader(handle)))
+
+
+def _workbook_cells(path):
+    """The cells of every sheet of a workbook export, numbers as in _csv_rows."""
     from openpyxl import load_workbook
 
-    def cells(path):
-        book = load_workbook(path, read_only=True)
-        return {ws.title: _rounded(list(ws.iter_rows(values_only=True))) for ws in book.worksheets}
-
-    assert cells(tmp_path / "parts.xlsx") == cells(tmp_path / "whole.xlsx")
+    book = load_workbook(path, read_only=True)
+    return {ws.title: _rounded(list(ws.iter_rows(values_only=True))) for ws in book.worksheets}
 
 
 def test_a_rule_failing_on_a_later_part_reports_no_findings_anywhere(tmp_path, monkeypatch):
@@ -274,18 +278,8 @@ def test_the_command_line_reports_the_same_from_a_lean_stream(tmp_path, monkeypa
         json.loads((tmp_path / "whole.json").read_bytes())
     )
 
-    def rows(name):
-        with (tmp_path / name).open(newline="", encoding="utf-8") as handle:
-            return _rounded(list(csv.reader(handle)))
-
-    assert rows("lean.csv") == rows("whole.csv")
-    from openpyxl import load_workbook
-
-    def cells(path):
-        book = load_workbook(path, read_only=True)
-        return {ws.title: _rounded(list(ws.iter_rows(values_only=True))) for ws in book.worksheets}
-
-    assert cells(tmp_path / "lean.xlsx") == cells(tmp_path / "whole.xlsx")
+    assert _csv_rows(tmp_path / "lean.csv") == _csv_rows(tmp_path / "whole.csv")
+    assert _workbook_cells(tmp_path / "lean.xlsx") == _workbook_cells(tmp_path / "whole.xlsx")
 
 
 def test_a_json_written_a_part_at_a_time_from_standard_input_names_it(
