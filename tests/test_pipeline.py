@@ -229,6 +229,21 @@ def test_a_lean_stream_reports_and_writes_what_the_whole_result_does(tmp_path, m
     assert "title" not in lean.table and "planned_n1" not in lean.table
 
 
+@pytest.mark.parametrize("basis", ["planned", "pooled"])
+def test_a_lean_stream_summarises_groups_as_the_whole_result(tmp_path, monkeypatch, basis):
+    # --group-by reads its columns (a text and a number here) over every part.
+    plain = _without_families(tmp_path)
+    groups = ("field", "alpha")
+    whole = audit.audit_file(plain, group_by=groups, excess_basis=basis)
+    monkeypatch.setattr(pipeline, "MAX_LISTED", 3)
+    lean, document = _lean(
+        plain, tmp_path, 5, group_by=groups, excess=pipeline.ExcessSettings(basis=basis)
+    )
+    assert lean.groups and _rounded(lean.groups) == _rounded(whole.groups)
+    assert _rounded(document) == _rounded(whole.to_dict())
+    assert _report(lean, limit=3) == _report(whole, limit=3)
+
+
 def test_a_lean_stream_of_every_corpus_file_reports_the_same(tmp_path, monkeypatch):
     import sys
     from pathlib import Path
