@@ -672,7 +672,10 @@ def _audit_with_exports(
             full = audit_file(
                 run.path, sheet=run.sheet, rules=ruleset, group_by=run.group_by, **run.analysis
             )
-            full.settings = result.settings  # the source as named, and rules_reapplied
+            # The whole file's settings (its rule problems), with the source as named.
+            full.settings["rules_reapplied"] = True
+            if run.source_name is not None:
+                full.settings["source"] = run.source_name
             if run.json_out:
                 progress("writing JSON")
                 write_json(full, run.json_out)

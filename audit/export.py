@@ -28,9 +28,7 @@ from audit.errors import OutputError
 from audit.jsonout import (
     INTEGER_METRICS,
     JSON_INDENT_LIMIT,
-    document_bytes,
     document_frame,
-    document_parts,
     indented,
     study_chunks,
 )
@@ -206,19 +204,11 @@ def write_json(result: AuditResult, path: str | Path) -> None:
     Indented for portfolios of up to :data:`~audit.jsonout.JSON_INDENT_LIMIT` studies. Larger
     documents are compact and streamed: studies are encoded a chunk at a time while a second
     thread writes the previous chunk (file writes release the interpreter lock), so the memory
-    the text takes stays bounded.
+    the text takes stays bounded (see :class:`JsonExport`, of which this is one part).
     """
-    refuse_input(result, path)
-    if len(result.table) <= JSON_INDENT_LIMIT:
-        data = document_bytes(result, indent=True)
-        with atomic_output(path, "wb") as handle:
-            handle.write(data)
-            handle.write(b"\n")
-        return
-    with atomic_output(path, "wb") as handle, _BackgroundWriter(handle) as writer:
-        for part in document_parts(result):
-            writer.write(part)
-        writer.write(b"\n")
+    with JsonExport(path, files_read(result)) as export:
+        export.add(result)
+        export.finish(result)
 
 
 class JsonExport:

@@ -150,8 +150,15 @@ def test_a_rule_failing_on_a_later_part_reports_no_findings_anywhere(tmp_path, m
     assert list(result.rule_problems["rule"]) == ["size-short-of-plan"]
     out = tmp_path / "a.csv"
     calls["n"] = 0
-    assert main(["check", str(plain), "--quiet", "--csv", str(out)]) == 0
+    document = tmp_path / "a.json"
+    assert main(["check", str(plain), "--quiet", "--csv", str(out), "--json", str(document)]) == 0
     assert "size-short-of-plan (" not in out.read_text("utf-8")
+    # The JSON is written again from the whole file too, and says which rule failed.
+    settings = json.loads(document.read_bytes())["settings"]
+    assert [p["rule"] for p in settings["rule_problems"]] == ["size-short-of-plan"]
+    assert settings["rules_reapplied"] is True
+    flags = {f["rule"] for s in json.loads(document.read_bytes())["studies"] for f in s["flags"]}
+    assert "size-short-of-plan" not in flags and flags
 
 
 def test_families_are_pooled_over_every_part_before_the_rules(monkeypatch):
