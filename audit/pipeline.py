@@ -20,7 +20,7 @@ import pandas as pd
 
 from audit.caveats import caveats
 from audit.errors import ConfigError
-from audit.metrics import METRICS, REFERENCE_EFFECTS, compute_metrics
+from audit.metrics import METRICS, REFERENCE_EFFECTS, REFERENCE_PREFIX, compute_metrics
 from audit.plan_methods import tolerance_in_force
 from audit.portfolio import (
     EXCESS_DEFAULTS,
@@ -406,6 +406,8 @@ class Part:
     valid: np.ndarray
     evaluation: Evaluation
     file_notes: list[str]
+    #: The part's metric columns as computed (a lean stream keeps fewer of them).
+    metric_names: list[str]
 
     def result(self, source: RawTable, ruleset: RuleSet, run: RunSettings) -> AuditResult:
         """The part as a result of its own, for exports written a part at a time; its settings
@@ -459,6 +461,7 @@ def _audit_part(
         valid=validated.valid,
         evaluation=evaluation,
         file_notes=validated.file_notes,
+        metric_names=list(metrics.columns),
     )
 
 
@@ -554,6 +557,7 @@ def audit_stream(
         if listing is not None:
             part.notes = part.notes.iloc[:0]
             part.table = part.table[_lean_columns(part.table, run)]
+            part.metrics = part.metrics[_lean_metrics(part.metrics)]
             listing.keep_messages(part, parts)
         if tables is not None and metrics is not None:
             tables.put(start, part.table)
@@ -584,6 +588,43 @@ def _lean_columns(table: pd.DataFrame, run: RunSettings) -> list[str]:
     numbers = {"_row", "target_power", "margin", *run.group_by}
     texts = [c for c in table.columns if not pd.api.types.is_numeric_dtype(table[c].dtype)]
     return [c for c in table.columns if c in numbers or (c in texts and c != "title")]
+
+
+#: The metrics a lean result keeps: those the portfolio summary, the caveats, the report's
+#: listing and the command line's exit read (and the powers at the reference effects). A line of
+#: the report that reads another metric must add it here (tests/test_pipeline.py checks the
+#: modules' metric names against this set).
+LEAN_METRICS = frozenset(
+    {
+        "power_at_planned_effect",
+        "power_at_pooled_effect",
+        "power_at_sesoi",
+        "mde",
+        "mde_std",
+        "detectable_margin",
+        "margin_share_of_control_effect",
+        "n_ratio",
+        "n_required_closest",
+        "plan_closest_method",
+        "plan_discrepancy_closest",
+        "plan_reproduced_by",
+        "direction_used",
+        "ci_verdict",
+        "ci_halfwidth_observed",
+        "result_effect",
+        "result_se",
+        "result_significant",
+        "observed_power",
+        "type_s",
+        "exaggeration",
+        "reported_p_recomputed",
+    }
+)
+
+
+def _lean_metrics(metrics: pd.DataFrame) -> list[str]:
+    """The metric columns a lean result keeps (:data:`LEAN_METRICS`), in their order."""
+    return [c for c in metrics.columns if c in LEAN_METRICS or c.startswith(REFERENCE_PREFIX)]
 
 
 class _Listing:
@@ -714,14 +755,16 @@ def _merged(
     gone): its ``settings["rules_reapplied"]`` then tells the caller to audit the file whole."""
     starts = [p.start for p in parts]
     first = parts[0]
-    metric_names = [list(p.metrics.columns) for p in parts]
+    metric_names = [p.metric_names for p in parts]
     if tables is None or columns is None:  # one part: its own frames
         table, metrics = first.table, first.metrics
     else:
         table, metrics = tables.frame(), columns.frame()
     same_metrics = all(names == metric_names[0] for names in metric_names)
     if not same_metrics:  # a design's own metrics in some parts only: contract order first
-        metrics = metrics[[*METRICS, *[c for c in metrics if c not in METRICS]]]
+        metrics = metrics[
+            [*[c for c in METRICS if c in metrics], *[c for c in metrics if c not in METRICS]]
+        ]
     texts = [p.notes["text"] for p in parts]
     notes = _stacked([p.notes for p in parts], starts)
     if len(parts) > 1:  # the parts' categories united, each text still stored once

@@ -120,7 +120,7 @@ def _workbook_cells(path):
     return {ws.title: _rounded(list(ws.iter_rows(values_only=True))) for ws in book.worksheets}
 
 
-def test_a_rule_failing_on_a_later_part_reports_no_findings_anywhere(tmp_path, monkeypatch):
+def test_a_rule_failing_on_a_later_part_reports_no_findings_anywhere(tmp_path, monkeypatch, capsys):
     # One pass: a rule that raises reports no findings at all. In parts it may raise on a later
     # part only, after earlier parts found flags: they are dropped and the exports rewritten.
     from audit import rules as rules_module
@@ -234,6 +234,27 @@ def test_a_lean_stream_reports_and_writes_what_the_whole_result_does(tmp_path, m
     kept = lean.findings.dropna(subset=["message"])
     assert kept["pos"].nunique() == 3 < whole.findings["pos"].nunique()
     assert "title" not in lean.table and "planned_n1" not in lean.table
+    assert set(lean.metrics) < set(whole.metrics) and "n_required_plan" not in lean.metrics
+
+
+def test_the_lean_metrics_hold_every_metric_the_summary_and_the_report_read():
+    # A lean result keeps pipeline.LEAN_METRICS only; a metric named in a module that renders
+    # from it (or summarises it) and missing there would be read as "not computed".
+    import re
+    from pathlib import Path
+
+    from audit.metrics import METRICS
+
+    package = Path(audit.__file__).parent
+    readers = ("report", "portfolio", "caveats", "cli", "excess", "result", "terminal")
+    named = {
+        name
+        for module in readers
+        for name in METRICS
+        if re.search(rf"[\"']{re.escape(name)}[\"']", (package / f"{module}.py").read_text())
+    }
+    assert named and named <= pipeline.LEAN_METRICS, sorted(named - pipeline.LEAN_METRICS)
+    assert pipeline.LEAN_METRICS <= set(METRICS)  # no name misspelt
 
 
 @pytest.mark.parametrize("basis", ["planned", "pooled"])
