@@ -159,6 +159,18 @@ def test_a_rule_failing_on_a_later_part_reports_no_findings_anywhere(tmp_path, m
     assert settings["rules_reapplied"] is True
     flags = {f["rule"] for s in json.loads(document.read_bytes())["studies"] for f in s["flags"]}
     assert "size-short-of-plan" not in flags and flags
+    # On standard output too, the parts already written are not left before the rewrite: one
+    # document (written a part at a time, past the indentation limit), one CSV header.
+    monkeypatch.setattr("audit.export.JSON_INDENT_LIMIT", 5)
+    for option in ("--json", "--csv"):
+        calls["n"] = 0
+        capsys.readouterr()
+        assert main(["check", str(plain), "--quiet", option, "-"]) == 0
+        printed = capsys.readouterr().out
+        if option == "--json":
+            assert json.loads(printed)["settings"]["rules_reapplied"] is True
+        else:
+            assert printed.count("study_id,") == 1 and "size-short-of-plan (" not in printed
 
 
 def test_families_are_pooled_over_every_part_before_the_rules(monkeypatch):
