@@ -23,7 +23,7 @@ import os
 import signal
 import sys
 import tempfile
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -484,16 +484,20 @@ def _run_check(run: CheckRun) -> tuple[int, AuditResult]:
         _stdin_copy(run) as run,
         _progress(run.path, stages, show=not run.quiet) as progress,
     ):
-        result = _audit_with_exports(run, ruleset, reads, progress)
         positions: list[int] = []
-        for study in run.study or ():
-            found = result.positions_of(study)
-            if not found:
-                raise ConfigError(
-                    f"no study with study_id '{study}' in {run.path} (ids look like: "
-                    f"{study_ids_hint(result)})."
-                )
-            positions.extend(p for p in found if p not in positions)
+
+        def find_studies(result: AuditResult) -> None:
+            # Before the exports are put in place: an unknown id writes none of them.
+            for study in run.study or ():
+                found = result.positions_of(study)
+                if not found:
+                    raise ConfigError(
+                        f"no study with study_id '{study}' in {run.path} (ids look like: "
+                        f"{study_ids_hint(result)})."
+                    )
+                positions.extend(p for p in found if p not in positions)
+
+        result = _audit_with_exports(run, ruleset, reads, progress, find_studies)
         if run.html_out:
             from audit.html import write_html
 
@@ -622,13 +626,18 @@ def _stdin_copy(run: CheckRun) -> Any:
 
 
 def _audit_with_exports(
-    run: CheckRun, ruleset: Any, reads: list[tuple[str, Any]], progress: Any
+    run: CheckRun,
+    ruleset: Any,
+    reads: list[tuple[str, Any]],
+    progress: Any,
+    accept: Callable[[AuditResult], None],
 ) -> AuditResult:
     """Audit the file a part of the studies at a time, the JSON, CSV and workbook exports
     written as the parts come (the file's cells are let go once written: see
-    pipeline.stream_file). Unless the HTML report, the figures or one study's view need every
-    detail of every study, the result keeps only what the portfolio summary, the report's
-    listing and the exit status read, so memory stays about flat however large the file."""
+    pipeline.stream_file) and put in place once ``accept`` took the result without raising.
+    Unless the HTML report, the figures or one study's view need every detail of every study,
+    the result keeps only what the portfolio summary, the report's listing and the exit status
+    read, so memory stays about flat however large the file."""
     from audit.export import CsvExport, JsonExport, write_csv, write_json
     from audit.pipeline import audit_file, stream_file
 
@@ -676,6 +685,7 @@ def _audit_with_exports(
             full.settings["rules_reapplied"] = True
             if run.source_name is not None:
                 full.settings["source"] = run.source_name
+            accept(full)
             if run.json_out:
                 progress("writing JSON")
                 write_json(full, run.json_out)
@@ -686,6 +696,7 @@ def _audit_with_exports(
 
                 write_workbook(full, run.xlsx_out)
             return full
+        accept(result)
         if document is not None:
             progress("writing JSON")
             document.finish(result)

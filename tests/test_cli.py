@@ -168,6 +168,18 @@ def test_unknown_study_exits_2(capsys):
     assert "no study with study_id 'RX-99'" in err and "RX-01" in err
 
 
+def test_unknown_study_writes_no_export(tmp_path, capsys):
+    # Exit 2 (an option could not be used) leaves every export as it was: none is put in place.
+    outputs = {flag: tmp_path / f"out.{flag[2:]}" for flag in ("--json", "--csv", "--xlsx")}
+    outputs["--csv"].write_text("earlier\n")
+    args = [a for flag, path in outputs.items() for a in (flag, str(path))]
+    assert main(["check", str(FIXTURE), "--study", "RX-99", *args]) == 2
+    assert "no study with study_id 'RX-99'" in capsys.readouterr().err
+    assert outputs["--csv"].read_text() == "earlier\n"
+    assert not outputs["--json"].exists() and not outputs["--xlsx"].exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out.csv"]  # no temporary file left
+
+
 def test_quiet_prints_nothing(tmp_path, capsys):
     assert main(["check", str(FIXTURE), "--quiet", "--csv", str(tmp_path / "a.csv")]) == 0
     captured = capsys.readouterr()
