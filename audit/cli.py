@@ -647,8 +647,10 @@ def _audit_with_exports(
         if run.json_out:
             document = exports.enter_context(JsonExport(run.json_out, reads, run.source_name))
             sinks.append(document)
+        table = None
         if run.csv_out:
-            sinks.append(exports.enter_context(CsvExport(run.csv_out, reads)))
+            table = exports.enter_context(CsvExport(run.csv_out, reads))
+            sinks.append(table)
         workbook = None
         if run.xlsx_out:
             from audit.workbook import WorkbookExport  # xlsxwriter only when a workbook is asked
@@ -674,7 +676,19 @@ def _audit_with_exports(
             result.settings["source"] = run.source_name
         if sinks and result.settings.get("rules_reapplied"):
             # A rule failed on a later part: the parts written carry findings a failing rule
-            # does not have. The exports are written again from the whole file (rare: a bug).
+            # does not have. The exports are written again from the whole file (rare: a bug),
+            # except on standard output, where the parts are gone already.
+            for flag, target, sink in (
+                ("--json", run.json_out, document),
+                ("--csv", run.csv_out, table),
+            ):
+                if str(target) == "-" and sink is not None and sink.streamed:
+                    raise OutputError(
+                        f"a rule could not be evaluated on a later part of {run.path} after "
+                        f"{flag} - had begun writing to standard output: that output is "
+                        f"incomplete and must not be used. Give {flag} a file name: it is then "
+                        "written again from the whole file."
+                    )
             exports.pop_all()
             for sink in sinks:
                 sink.__exit__(RuntimeError, RuntimeError("rewritten"), None)

@@ -15,7 +15,6 @@ import io
 import itertools
 import os
 import re
-import shutil
 import sys
 import tempfile
 from collections.abc import Iterable, Iterator
@@ -67,29 +66,15 @@ _PLAIN_NUMBER = re.compile(r"^[+-]?(\d[\d,]*\.?\d*|\.\d+)([eE][+-]?\d+)?%?$")
 def atomic_output(path: str | Path, mode: str = "w") -> Iterator[IO]:
     """Open ``path`` for writing through a temporary file renamed into place on success.
 
-    ``path`` ``"-"`` writes to standard output instead, on success only, as a file is put in
-    place: the text goes to an unnamed temporary file first, so an export written a part at a
-    time and then abandoned (a rule re-applied to the whole file, an error) never leaves half a
-    document on standard output. A path that exists and is not a regular file (``/dev/null``,
-    a named pipe, a terminal) is written directly: renaming a file over a device would replace
-    the device. A failed write (a full disk) is an :class:`OutputError` and leaves no temporary
-    file; so does a run stopped by a signal the command line handles (see
-    :func:`pending_temporary_files`).
+    ``path`` ``"-"`` writes to standard output instead. A path that exists and is not a regular
+    file (``/dev/null``, a named pipe, a terminal) is written directly: renaming a file over a
+    device would replace the device. A failed write (a full disk) is an :class:`OutputError`
+    and leaves no temporary file; so does a run stopped by a signal the command line handles
+    (see :func:`pending_temporary_files`).
     """
     if str(path) == "-":
         stream = sys.stdout.buffer if "b" in mode else sys.stdout
-        text = {} if "b" in mode else {"encoding": "utf-8", "newline": ""}
-        try:
-            spool = tempfile.TemporaryFile("w+b" if "b" in mode else "w+", **text)
-        except OSError as exc:
-            raise OutputError(f"standard output: no room for a temporary copy ({exc}).") from exc
-        with spool:
-            try:
-                yield spool
-                spool.seek(0)
-            except OSError as exc:
-                raise OutputError(f"standard output: the temporary copy failed ({exc}).") from exc
-            shutil.copyfileobj(spool, stream)
+        yield stream
         stream.flush()
         return
     target = Path(path)
@@ -278,6 +263,11 @@ class JsonExport:
             )
         return document_frame(result)
 
+    @property
+    def streamed(self) -> bool:
+        """Whether the document has begun to be written (to a file, only once put in place)."""
+        return self._writer is not None
+
     def add(self, result: AuditResult) -> None:
         """Encode and write the studies of ``result``, the next rows of the table."""
         self._count += len(result.table)
@@ -438,6 +428,11 @@ class CsvExport:
 
     def __exit__(self, *exc: object) -> bool | None:
         return self._stack.__exit__(*exc)  # type: ignore[arg-type]
+
+    @property
+    def streamed(self) -> bool:
+        """Whether rows have begun to be written (to a file, only once put in place)."""
+        return self._header is not None
 
     def add(self, result: AuditResult) -> None:
         """Append the studies of ``result`` (the header with the first ones)."""

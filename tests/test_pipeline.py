@@ -159,18 +159,20 @@ def test_a_rule_failing_on_a_later_part_reports_no_findings_anywhere(tmp_path, m
     assert settings["rules_reapplied"] is True
     flags = {f["rule"] for s in json.loads(document.read_bytes())["studies"] for f in s["flags"]}
     assert "size-short-of-plan" not in flags and flags
-    # On standard output too, the parts already written are not left before the rewrite: one
-    # document (written a part at a time, past the indentation limit), one CSV header.
-    monkeypatch.setattr("audit.export.JSON_INDENT_LIMIT", 5)
-    for option in ("--json", "--csv"):
+    # On standard output the parts written are gone already: the run says the output there is
+    # incomplete (exit 2) rather than print a second document after the first. A JSON document
+    # of few studies is held until the end, and so is still written whole.
+    for option, limit in (("--json", 5), ("--csv", 2_000), ("--json", 2_000)):
+        monkeypatch.setattr("audit.export.JSON_INDENT_LIMIT", limit)
         calls["n"] = 0
         capsys.readouterr()
-        assert main(["check", str(plain), "--quiet", option, "-"]) == 0
-        printed = capsys.readouterr().out
-        if option == "--json":
-            assert json.loads(printed)["settings"]["rules_reapplied"] is True
+        status = main(["check", str(plain), "--quiet", option, "-"])
+        printed, err = capsys.readouterr()
+        if limit == 2_000 and option == "--json":
+            assert status == 0 and json.loads(printed)["settings"]["rules_reapplied"] is True
         else:
-            assert printed.count("study_id,") == 1 and "size-short-of-plan (" not in printed
+            assert status == 2 and f"after {option} - had begun" in err, err
+            assert printed.count('"tool"') + printed.count("study_id,") <= 1  # one start only
 
 
 def test_families_are_pooled_over_every_part_before_the_rules(monkeypatch):
