@@ -6,7 +6,7 @@ import csv
 import io
 import itertools
 import re
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 import numpy as np
@@ -139,10 +139,8 @@ def parse_delimited(
         records = split
     else:
         try:
-            # extend keeps the records read before a parse error; each distinct text once.
-            seen: dict[str, str] = {}
-            reader = csv.reader(_lines(text), delimiter=delimiter)
-            records.extend(list(map(seen.setdefault, r, r)) for r in reader)
+            # extend keeps the records read before a parse error.
+            records.extend(_shared_texts(csv.reader(_lines(text), delimiter=delimiter)))
         except csv.Error as exc:
             failure = exc
     if not quoted:
@@ -239,6 +237,18 @@ def _well_formed_records(text: str, delimiter: str) -> int:
 _SPLIT_BLOCK = 50_000
 
 
+def _shared_texts(
+    records: Iterable[list[str]], seen: dict[str, str] | None = None
+) -> Iterator[list[object]]:
+    """``records`` with each distinct text one object (``seen``: the texts met so far).
+
+    One object for the many cells that read "0.05" or "two_means": a million studies' cells
+    take a fraction of the memory, and the hashes that validation's distinct-value look-ups need
+    are computed once per text."""
+    seen = {} if seen is None else seen
+    return (list(map(seen.setdefault, r, r)) for r in records)
+
+
 def _split_lines(text: str, delimiter: str) -> list[list[object]] | None:
     """The records of text without quote marks, as the csv module reads them, or None where
     only the csv module can say what it makes of the text.
@@ -265,11 +275,7 @@ def _split_lines(text: str, delimiter: str) -> list[list[object]] | None:
     while lines:  # a block of lines at a time, each let go once split
         block = lines[:_SPLIT_BLOCK]
         del lines[:_SPLIT_BLOCK]
-        split = map(str.split, block, itertools.repeat(delimiter))
-        # Each distinct text once (one object for the many cells that read "0.05" or "two_means"):
-        # a million studies' cells take a fraction of the memory, and the hashes that validation's
-        # distinct-value look-ups need are computed once per text.
-        records.extend(list(map(seen.setdefault, r, r)) for r in split)
+        records.extend(_shared_texts(map(str.split, block, itertools.repeat(delimiter)), seen))
     for i in np.flatnonzero(lengths == 0):
         records[i] = []
     return records

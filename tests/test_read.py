@@ -208,3 +208,19 @@ def test_a_quote_that_swallows_lines_up_to_a_later_quote_is_still_reported(tmp_p
     assert status["U-1"] == "audited"
     assert status["U-2"] == "invalid"
     assert any("quote mark is probably unbalanced" in e for e in result.error_sentences())
+
+
+@pytest.mark.parametrize("quoted", [False, True])
+def test_equal_cell_texts_are_one_object(tmp_path, quoted):
+    # A large file's cells repeat ("two_means", "0.05"): each distinct text is stored once, on
+    # the plain path (str.split) and on the quoted one (the csv module) alike.
+    title = '"a, b"' if quoted else "a b"
+    lines = ["study_id,design,alpha,title"]
+    lines += [f"S{i},two_means,{0.05 if i % 2 else 0.025},{title}" for i in range(6)]
+    path = tmp_path / "t.csv"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    data = read_table(path).data
+    assert data["design"].iat[0] is data["design"].iat[5]
+    assert data["alpha"].iat[1] is data["alpha"].iat[3] and data["alpha"].iat[1] == "0.05"
+    assert data["title"].iat[0] == ("a, b" if quoted else "a b")
+    assert len({id(v) for v in data["study_id"]}) == 6
